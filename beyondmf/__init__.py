@@ -1,0 +1,37 @@
+"""beyondmf: light from dense, laser-driven clouds of two-level emitters, level by level of correlation.
+
+One `Model`, two entry points (`evolve`, `steady`), levels chosen by name; every level returns the same
+`xarray.Dataset` (conventions.md, "the data contract").
+"""
+
+__version__ = "0.1.0"
+
+from . import _config  # noqa: F401,E402  (64-bit JAX before anything else touches JAX)
+from . import geometry  # noqa: E402
+from .api import evolve, steady  # noqa: E402
+from .couplings import couplings  # noqa: E402
+from .levels import Level, Moments, available_levels, get_level, register  # noqa: E402
+from .model import Model  # noqa: E402
+from .results import load, save  # noqa: E402
+
+
+def level_options(level: str) -> dict:
+    """The options a level accepts, with their defaults."""
+    return dict(get_level(level).options)
+
+
+__all__ = [
+    "Model",
+    "evolve",
+    "steady",
+    "couplings",
+    "geometry",
+    "available_levels",
+    "level_options",
+    "get_level",
+    "register",
+    "Level",
+    "Moments",
+    "save",
+    "load",
+]

@@ -1,0 +1,139 @@
+"""The two entry points: `evolve` (dynamics) and `steady` (steady state), for every level."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from .levels.base import Level, Probes, get_level
+from .model import Model
+from .observables import assemble
+from .results import provenance
+
+__all__ = ["evolve", "steady", "initial_bloch"]
+
+
+def initial_bloch(model: Model, initial) -> np.ndarray:
+    """Per-emitter Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩) of the product state named by ``initial``."""
+    if isinstance(initial, str):
+        if initial == "ground":
+            return np.tile([0.0, 0.0, -1.0], (model.n, 1))
+        if initial == "excited":
+            return np.tile([0.0, 0.0, 1.0], (model.n, 1))
+        raise ValueError(f"initial must be 'ground', 'excited' or Bloch vectors, got {initial!r}")
+    s = np.asarray(initial, dtype=float)
+    if s.shape == (3,):
+        s = np.tile(s, (model.n, 1))
+    if s.shape != (model.n, 3):
+        raise ValueError(f"initial Bloch vectors must have shape ({model.n}, 3) or (3,), got {s.shape}")
+    if not np.all(np.isfinite(s)):
+        raise ValueError("initial Bloch vectors contain NaN or infinite values")
+    length = np.linalg.norm(s, axis=1)
+    if np.any(length > 1 + 1e-9):
+        i = int(np.argmax(length))
+        raise ValueError(f"initial Bloch vector of emitter {i} has length {length[i]:.6g} > 1")
+    return s
+
+
+def _detectors(model: Model, detectors) -> dict[str, Any]:
+    if detectors is None:
+        return {"forward": model.laser}
+    if not isinstance(detectors, Mapping) or not detectors:
+        raise ValueError("detectors must map a name to a direction, e.g. {'forward': (0, 0, 1)}")
+    return dict(detectors)
+
+
+def _options(level: Level, given: dict[str, Any]) -> dict[str, Any]:
+    unknown = sorted(set(given) - set(level.options))
+    if unknown:
+        allowed = ", ".join(sorted(level.options)) or "none"
+        raise ValueError(f"level {level.name!r} takes no option {', '.join(map(repr, unknown))}; its options: {allowed}")
+    return {**level.options, **given}
+
+
+def _seed(level: Level, seed):
+    if seed is None and level.stochastic:
+        return int(np.random.SeedSequence().entropy % 2**31)
+    if seed is not None and (int(seed) != seed or seed < 0):
+        raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
+    return None if seed is None else int(seed)
+
+
+def _attrs(model: Model, level: Level, kind: str, options, seed, extra) -> dict[str, Any]:
+    attrs = {"level": level.name, "calculation": kind, **model.parameters(), "options": options}
+    attrs["seed"] = -1 if seed is None else seed
+    attrs.update(extra)
+    attrs.update(provenance())
+    return attrs
+
+
+def _check_model(model) -> None:
+    if not isinstance(model, Model):
+        raise TypeError(f"model must be a beyondmf.Model, got {type(model).__name__}")
+
+
+def evolve(
+    model: Model,
+    level: str,
+    times,
+    initial="ground",
+    detectors: Mapping[str, Any] | None = None,
+    seed: int | None = None,
+    **options,
+) -> xr.Dataset:
+    """Dynamics of ``model`` at one level of description.
+
+    Parameters
+    ----------
+    model : the emitters, couplings and drive.
+    level : a registered level name (`beyondmf.available_levels()`), e.g. "meanfield".
+    times : increasing times (1/Γ0) at which to report; the state is ``initial`` at times[0].
+    initial : "ground", "excited", or Bloch vectors ((N, 3) or one (3,) for all) of a product state.
+    detectors : name → direction of observation; default one detector, "forward", along the laser.
+    seed : random seed of sampling levels (drawn and recorded when None).
+    options : the level's options (see ``beyondmf.level_options(level)``); anything else is an error.
+
+    Returns
+    -------
+    xarray.Dataset with the variables of the data contract (conventions.md) along ``time``.
+    """
+    _check_model(model)
+    lvl = get_level(level)
+    opts = _options(lvl, options)
+    ts = np.asarray(times, dtype=float).reshape(-1)
+    if ts.size == 0 or not np.all(np.isfinite(ts)) or np.any(np.diff(ts) <= 0):
+        raise ValueError("times must be a non-empty, finite, strictly increasing sequence")
+    bloch = initial_bloch(model, initial)
+    probes = Probes.build(model, _detectors(model, detectors))
+    lvl.check(model)
+    seed = _seed(lvl, seed)
+    moments = lvl.evolve(model, ts, bloch, probes, seed, opts)
+    init = initial if isinstance(initial, str) else "bloch vectors"
+    attrs = _attrs(model, lvl, "evolve", opts, seed, {"initial": init})
+    return assemble(model, lvl.name, moments, probes, ts, attrs)
+
+
+def steady(
+    model: Model,
+    level: str,
+    detectors: Mapping[str, Any] | None = None,
+    seed: int | None = None,
+    **options,
+) -> xr.Dataset:
+    """Steady state of ``model`` under a constant drive, at one level of description.
+
+    Same parameters and result as `evolve`, without ``times``/``initial`` and without the time axis.
+    """
+    _check_model(model)
+    if not model.envelope.constant:
+        raise ValueError("steady needs a constant drive: build the model with envelope=None, or use evolve")
+    lvl = get_level(level)
+    opts = _options(lvl, options)
+    probes = Probes.build(model, _detectors(model, detectors))
+    lvl.check(model)
+    seed = _seed(lvl, seed)
+    moments = lvl.steady(model, probes, seed, opts)
+    return assemble(model, lvl.name, moments, probes, None, _attrs(model, lvl, "steady", opts, seed, {}))

@@ -1,0 +1,1 @@
+"""Imports every benchmark suite so that each registers itself."""

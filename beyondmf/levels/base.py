@@ -1,0 +1,142 @@
+"""The contract every level of description meets, and the registry that dispatches by name.
+
+A level turns a `Model` into `Moments`: the one-body moments and the few contractions of two- and
+four-body moments from which `beyondmf.observables` builds every observable of the data contract. A
+level never computes an observable itself, so `intensity` means the same at every level.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from dataclasses import dataclass, field
+from typing import Any, ClassVar
+
+import numpy as np
+
+from ..model import Model
+
+__all__ = ["Level", "Moments", "Probes", "register", "get_level", "available_levels"]
+
+
+@dataclass(frozen=True)
+class Probes:
+    """What the observables need from a level besides the one-body moments.
+
+    ``weights[d, j] = e^{−i 2π n̂_d·r_j}`` defines the far field E_d = Σ_j weights[d, j] σ_j⁻ towards
+    detector d; the total emission uses Γ of the model.
+    """
+
+    names: tuple[str, ...]
+    directions: np.ndarray  # (D, 3) unit vectors
+    weights: np.ndarray  # (D, N) complex
+
+    @classmethod
+    def build(cls, model: Model, detectors: dict[str, Any]) -> Probes:
+        names, dirs = [], []
+        for name, vec in detectors.items():
+            v = np.asarray(vec, dtype=float).reshape(-1)
+            if v.shape != (3,) or not np.all(np.isfinite(v)) or not np.linalg.norm(v) > 0:
+                raise ValueError(f"detector {name!r} needs a non-zero finite 3-vector direction, got {vec!r}")
+            names.append(str(name))
+            dirs.append(v / np.linalg.norm(v))
+        directions = np.array(dirs).reshape(-1, 3)
+        weights = np.exp(-2j * np.pi * directions @ model.positions.T)
+        return cls(tuple(names), directions, weights)
+
+
+@dataclass
+class Moments:
+    """What a level reports, each with a leading time axis (length 1 for a steady state).
+
+    excited   (T, N)  ⟨σ_i⁺σ_i⁻⟩
+    coherence (T, N)  ⟨σ_i⁻⟩, complex
+    field2    (T, D)  ⟨E_d†E_d⟩
+    field4    (T, D)  ⟨E_d†E_d†E_dE_d⟩
+    rate      (T,)    Σ_ij Γ_ij ⟨σ_i⁺σ_j⁻⟩
+    rate4     (T,)    Σ_ijkl Γ_ij Γ_kl ⟨σ_i⁺σ_k⁺σ_l⁻σ_j⁻⟩
+
+    Sampling levels fill ``stderr`` (same keys, standard errors of the means) and ``cov`` with the
+    covariances of the means that the ratios need: ``cov["field"] = cov(field4, field2)`` and
+    ``cov["rate"] = cov(rate4, rate)``. ``diagnostics`` maps extra data-variable names to (dims, array);
+    ``attrs`` adds attributes (solver statistics, residuals, warnings).
+    """
+
+    excited: Any
+    coherence: Any
+    field2: Any
+    field4: Any
+    rate: Any
+    rate4: Any
+    stderr: dict[str, Any] = field(default_factory=dict)
+    cov: dict[str, Any] = field(default_factory=dict)
+    diagnostics: dict[str, tuple[tuple[str, ...], Any]] = field(default_factory=dict)
+    attrs: dict[str, Any] = field(default_factory=dict)
+
+    KEYS: ClassVar[tuple[str, ...]] = ("excited", "coherence", "field2", "field4", "rate", "rate4")
+
+    def to_numpy(self) -> Moments:
+        conv = {k: np.asarray(getattr(self, k)) for k in self.KEYS}
+        return Moments(
+            **conv,
+            stderr={k: np.asarray(v) for k, v in self.stderr.items()},
+            cov={k: np.asarray(v) for k, v in self.cov.items()},
+            diagnostics={k: (d, np.asarray(v)) for k, (d, v) in self.diagnostics.items()},
+            attrs=dict(self.attrs),
+        )
+
+
+class Level(ABC):
+    """One level of description. Subclasses set the class attributes and implement two methods.
+
+    ``options`` maps each option the level accepts to its default; `evolve`/`steady` reject any other.
+    ``initial`` reaches a level as (N, 3) Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩) of a product state.
+    """
+
+    name: ClassVar[str]
+    summary: ClassVar[str]
+    options: ClassVar[dict[str, Any]] = {}
+    stochastic: ClassVar[bool] = False
+
+    def check(self, model: Model) -> None:  # noqa: B027 - optional hook
+        """Refuse, with a ValueError that says why, a model this level cannot treat."""
+
+    @abstractmethod
+    def evolve(
+        self,
+        model: Model,
+        times: np.ndarray,
+        initial: np.ndarray,
+        probes: Probes,
+        seed: int | None,
+        options: dict[str, Any],
+    ) -> Moments:
+        """Moments at each of ``times``, starting from the product state ``initial`` at times[0]."""
+
+    @abstractmethod
+    def steady(self, model: Model, probes: Probes, seed: int | None, options: dict[str, Any]) -> Moments:
+        """Moments of the steady state (time axis of length 1)."""
+
+
+_REGISTRY: dict[str, type[Level]] = {}
+
+
+def register(cls: type[Level]) -> type[Level]:
+    """Class decorator: make a level available to `evolve`/`steady` under ``cls.name``."""
+    if cls.name in _REGISTRY and _REGISTRY[cls.name] is not cls:
+        raise ValueError(f"a level named {cls.name!r} is already registered")
+    _REGISTRY[cls.name] = cls
+    return cls
+
+
+def available_levels() -> dict[str, str]:
+    """Registered level names with a one-line summary each."""
+    return {name: cls.summary for name, cls in sorted(_REGISTRY.items())}
+
+
+def get_level(name: str) -> Level:
+    try:
+        return _REGISTRY[name]()
+    except KeyError:
+        raise ValueError(
+            f"unknown level {name!r}; known levels: {', '.join(sorted(_REGISTRY))}"
+        ) from None

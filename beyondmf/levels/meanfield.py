@@ -1,0 +1,124 @@
+"""Level "meanfield": every emitter a classical dipole in the field of the laser and the others.
+
+The state is a product state. With β_i = ⟨σ_i⁻⟩, n_i = ⟨σ_i⁺σ_i⁻⟩, z_i = 2n_i − 1 and the coupling field
+φ_i = Σ_{j≠i} (iJ_ij + ½Γ_ij) β_j, the Heisenberg equations of conventions.md factorised at one-body
+order are (derivation: docs/meanfield.md)
+
+    dβ_i/dt = (iΔ − ½) β_i + (i/2) Ω_i(t) z_i + z_i φ_i
+    dn_i/dt = −n_i − Im(Ω_i* β_i) − 2 Re(β_i* φ_i)
+
+Exact for one emitter and, to first order in Ω, for any cloud (the coupled-dipole linear optics of
+J. Ruostekoski and J. Javanainen, Phys. Rev. A 55, 513 (1997)). Trustworthy where pair correlations are
+weak: dilute clouds, weak drive. It has no quantum noise: an inverted cloud with zero coherence stays
+inverted (an unstable fixed point), and g2 is that of a product state.
+"""
+
+from __future__ import annotations
+
+import functools
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from ..estimators import product_field_moments, product_rate_moments
+from ..integrate import ODE_OPTIONS, pick_solver, settle, solve
+from ..memory import require
+from ..model import Envelope, Model
+from .base import Level, Moments, Probes, register
+
+__all__ = ["MeanField", "meanfield_rhs"]
+
+
+def _coupled(args, B):
+    """(Jβ, Γβ) as (real, imag) pairs for B = [Re β, Im β] stacked as (N, 2)."""
+    JB = args["J"] @ B
+    GB = args["G"] @ B
+    if "Ji" in args:  # complex Hermitian couplings: (Jr + iJi)(br + i bi)
+        JiB, GiB = args["Ji"] @ B, args["Gi"] @ B
+        return (JB[:, 0] - JiB[:, 1], JB[:, 1] + JiB[:, 0]), (GB[:, 0] - GiB[:, 1], GB[:, 1] + GiB[:, 0])
+    return (JB[:, 0], JB[:, 1]), (GB[:, 0], GB[:, 1])
+
+
+def meanfield_rhs(envelope: Envelope):
+    """The mean-field right-hand side for one envelope (cached so equal envelopes share a compile)."""
+    return _rhs_for(envelope)
+
+
+@functools.lru_cache(maxsize=64)
+def _rhs_for(envelope: Envelope):
+    def rhs(t, y, args):
+        br, bi, n = y[0], y[1], y[2]
+        (jr, ji), (gr, gi) = _coupled(args, jnp.stack([br, bi], axis=1))
+        phr = -ji + 0.5 * (gr - br)  # φ = iJβ + ½(Γ − 1)β
+        phi = jr + 0.5 * (gi - bi)
+        z = 2 * n - 1
+        env = envelope(t)
+        orr, ori = env * args["omega"][0], env * args["omega"][1]
+        det = args["detuning"]
+        dbr = -0.5 * br - det * bi - 0.5 * ori * z + z * phr
+        dbi = det * br - 0.5 * bi + 0.5 * orr * z + z * phi
+        dn = -n - (orr * bi - ori * br) - 2 * (br * phr + bi * phi)
+        return jnp.stack([dbr, dbi, dn])
+
+    return rhs
+
+
+def _observe(y, obs_args):
+    weights, gamma = obs_args
+    beta = y[0] + 1j * y[1]
+    n = y[2]
+    f2, f4 = product_field_moments(beta, n, weights)
+    r2, r4 = product_rate_moments(beta, n, gamma)
+    return {"excited": n, "coherence": beta, "field2": f2, "field4": f4, "rate": r2, "rate4": r4}
+
+
+def coupling_args(model: Model) -> dict[str, Any]:
+    """The model's arrays as the JAX pytree the right-hand sides read."""
+    args = {"J": jnp.asarray(model.J.real), "G": jnp.asarray(model.Gamma.real)}
+    if model.complex_couplings:
+        args["Ji"] = jnp.asarray(np.imag(model.J))
+        args["Gi"] = jnp.asarray(np.imag(model.Gamma))
+    om = model.rabi_sites
+    args["omega"] = jnp.asarray(np.stack([om.real, om.imag]))
+    args["detuning"] = jnp.asarray(model.detuning)
+    return args
+
+
+def bloch_to_state(initial: np.ndarray) -> jnp.ndarray:
+    """(N, 3) Bloch vectors → mean-field state (Re β, Im β, n), β = (s_x − i s_y)/2, n = (1 + s_z)/2."""
+    s = np.asarray(initial, dtype=float)
+    return jnp.asarray(np.stack([s[:, 0] / 2, -s[:, 1] / 2, (1 + s[:, 2]) / 2]))
+
+
+@register
+class MeanField(Level):
+    name = "meanfield"
+    summary = "product state of classical dipoles (one-body moments); exact for N = 1 and weak drive"
+    options = dict(ODE_OPTIONS)
+
+    def _prepare(self, model: Model, probes: Probes, options):
+        n_mats = 4 if model.complex_couplings else 2
+        require(8 * model.n**2 * (n_mats + 1), f"mean field for {model.n} emitters")
+        solver = pick_solver(options["solver"], 3 * model.n, model.stiffness())
+        args = coupling_args(model)
+        gamma = args["G"] + 1j * args["Gi"] if "Gi" in args else args["G"]
+        return solver, args, (jnp.asarray(probes.weights), gamma)
+
+    def evolve(self, model, times, initial, probes, seed, options) -> Moments:
+        solver, args, obs_args = self._prepare(model, probes, options)
+        rhs = meanfield_rhs(model.envelope)
+        obs, _, stats = solve(
+            rhs, _observe, bloch_to_state(initial), args, obs_args, times, options, solver,
+            jump_ts=model.envelope.jumps, what="mean-field evolution",
+        )
+        return Moments(**obs, attrs=stats)
+
+    def steady(self, model, probes, seed, options) -> Moments:
+        solver, args, obs_args = self._prepare(model, probes, options)
+        rhs = meanfield_rhs(model.envelope)
+        y0 = bloch_to_state(np.tile([0.0, 0.0, -1.0], (model.n, 1)))
+        y, info = settle(rhs, _observe, y0, args, obs_args, options, solver, what="mean-field steady state")
+        obs = jax.tree.map(lambda a: a[None], _observe(y, obs_args))
+        return Moments(**obs, attrs={"solver": solver, **info})

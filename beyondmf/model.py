@@ -1,0 +1,216 @@
+"""The one model every level solves: emitters, their couplings, and the drive (conventions.md)."""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .couplings import KINDS, _unit, couplings, validate_custom
+from .geometry import nearest_distance
+from .memory import require
+
+__all__ = ["Model", "Envelope", "MIN_SEPARATION"]
+
+# Emitters closer than this (λ0) are refused: |J| ~ (3/4)/(2π r)³ exceeds 10⁶ Γ0 and no level is meaningful.
+MIN_SEPARATION = 1e-3
+
+
+@dataclass(frozen=True)
+class Envelope:
+    """Time dependence of the Rabi frequency, Ω(t) = Ω · envelope(t).
+
+    ``windows`` is a tuple of (t_on, t_off) pairs during which the laser is on (envelope 1, else 0);
+    ``function`` is a JAX-traceable callable of time. Neither: the envelope is 1 at all times.
+    """
+
+    windows: tuple[tuple[float, float], ...] | None = None
+    function: Callable[[Any], Any] | None = None
+
+    @property
+    def constant(self) -> bool:
+        return self.windows is None and self.function is None
+
+    def __call__(self, t):
+        import jax.numpy as jnp
+
+        if self.function is not None:
+            return self.function(t)
+        if self.windows is None:
+            return jnp.ones_like(t)
+        on = jnp.zeros_like(t)
+        for t0, t1 in self.windows:
+            on = on + jnp.where((t >= t0) & (t < t1), 1.0, 0.0)
+        return on
+
+    @property
+    def jumps(self) -> tuple[float, ...]:
+        """Times where the envelope is discontinuous (the integrator steps onto them)."""
+        return tuple(sorted({t for w in (self.windows or ()) for t in w}))
+
+    def describe(self) -> str:
+        if self.function is not None:
+            return f"function {getattr(self.function, '__name__', repr(self.function))}"
+        if self.windows is not None:
+            return "windows " + ", ".join(f"[{a:g}, {b:g})" for a, b in self.windows)
+        return "constant"
+
+    @classmethod
+    def parse(cls, envelope) -> Envelope:
+        if envelope is None:
+            return cls()
+        if isinstance(envelope, Envelope):
+            return envelope
+        if callable(envelope):
+            return cls(function=envelope)
+        try:
+            wins = tuple((float(a), float(b)) for a, b in envelope)
+        except (TypeError, ValueError) as err:
+            raise ValueError(
+                "envelope must be None, a list of (t_on, t_off) windows, or a JAX-traceable function of time"
+            ) from err
+        for a, b in wins:
+            if not (np.isfinite(a) and np.isfinite(b) and b > a):
+                raise ValueError(f"envelope window ({a}, {b}) must have finite t_on < t_off")
+        return cls(windows=wins)
+
+
+def _finite_scalar(value, name: str, complex_ok: bool = False):
+    v = complex(value) if complex_ok else value
+    if not complex_ok:
+        try:
+            v = float(value)
+        except (TypeError, ValueError) as err:
+            raise ValueError(f"{name} must be a real number, got {value!r}") from err
+    if not np.isfinite(v):
+        raise ValueError(f"{name} must be finite, got {value!r}")
+    return v
+
+
+@dataclass(frozen=True, eq=False)
+class Model:
+    """N two-level emitters driven by a plane-wave laser, in the units of conventions.md.
+
+    H = Σ_i [−Δ σ_i⁺σ_i⁻ + ½(Ω_i σ_i⁺ + h.c.)] + Σ_{i≠j} J_ij σ_i⁺σ_j⁻, Ω_i = Ω(t) e^{i2π l̂·r_i},
+    with collective decay Γ_ij. Immutable; validated once on construction.
+
+    Parameters
+    ----------
+    positions : (N, 3) positions in λ0.
+    dipole : transition dipole unit vector ê (complex allowed; normalised).
+    coupling : "vector", "scalar", "all-to-all", or a (J, Gamma) pair of (N, N) arrays.
+    rabi : Rabi frequency Ω in Γ0 (complex allowed: a phase of the laser).
+    detuning : Δ = ω_laser − ω_atom in Γ0.
+    laser : propagation direction l̂ (normalised).
+    envelope : None (constant), a list of (t_on, t_off) windows, or a JAX-traceable function of t.
+    """
+
+    positions: np.ndarray
+    dipole: Sequence[complex] = (1, 0, 0)
+    coupling: Any = "vector"
+    rabi: complex = 0.0
+    detuning: float = 0.0
+    laser: Sequence[float] = (0, 0, 1)
+    envelope: Any = None
+    J: np.ndarray = field(init=False, repr=False)
+    Gamma: np.ndarray = field(init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        pos = np.array(self.positions, dtype=float)
+        if pos.ndim == 1 and pos.shape == (3,):
+            pos = pos[None, :]
+        if pos.ndim != 2 or pos.shape[1] != 3 or len(pos) == 0:
+            raise ValueError(f"positions must be an (N, 3) array with N ≥ 1, got shape {pos.shape}")
+        if not np.all(np.isfinite(pos)):
+            bad = int(np.argwhere(~np.isfinite(pos))[0, 0])
+            raise ValueError(f"positions contain NaN or infinite values (emitter {bad})")
+        dip = _unit(self.dipole, "dipole")
+        las = _unit(self.laser, "laser")
+        if np.abs(las.imag).max() > 0:
+            raise ValueError("laser must be a real propagation direction")
+        las = las.real
+        rabi = _finite_scalar(self.rabi, "rabi", complex_ok=True)
+        det = _finite_scalar(self.detuning, "detuning")
+        env = Envelope.parse(self.envelope)
+
+        require(2 * 8 * len(pos) ** 2 * 1.1, f"the couplings of {len(pos)} emitters")
+        if isinstance(self.coupling, str):
+            if self.coupling not in KINDS:
+                raise ValueError(
+                    f"unknown coupling {self.coupling!r}; choose one of {', '.join(KINDS)} or pass (J, Gamma)"
+                )
+            if self.coupling != "all-to-all":
+                dmin, (i, j) = nearest_distance(pos)
+                if dmin < MIN_SEPARATION:
+                    raise ValueError(
+                        f"emitters {i} and {j} are {dmin:.3g} λ0 apart, closer than {MIN_SEPARATION} λ0: "
+                        "the couplings diverge there; draw the cloud with a min_distance"
+                    )
+            J, G = couplings(pos, dip, self.coupling)
+            kind = self.coupling
+        else:
+            try:
+                Jc, Gc = self.coupling
+            except (TypeError, ValueError) as err:
+                raise ValueError("coupling must be a kind name or a (J, Gamma) pair of arrays") from err
+            J, G = validate_custom(Jc, Gc, len(pos))
+            kind = "custom"
+        for a in (pos, J, G):
+            a.setflags(write=False)
+        set_ = object.__setattr__
+        set_(self, "positions", pos)
+        set_(self, "dipole", dip)
+        set_(self, "laser", las)
+        set_(self, "rabi", rabi)
+        set_(self, "detuning", det)
+        set_(self, "envelope", env)
+        set_(self, "coupling", kind)
+        set_(self, "J", J)
+        set_(self, "Gamma", G)
+
+    @property
+    def n(self) -> int:
+        """Number of emitters N."""
+        return len(self.positions)
+
+    @property
+    def complex_couplings(self) -> bool:
+        return np.iscomplexobj(self.J) or np.iscomplexobj(self.Gamma)
+
+    @property
+    def drive_phases(self) -> np.ndarray:
+        """e^{i 2π l̂·r_i}: the laser's phase at each emitter."""
+        return np.exp(2j * np.pi * self.positions @ self.laser)
+
+    @property
+    def rabi_sites(self) -> np.ndarray:
+        """Ω_i = Ω e^{i 2π l̂·r_i} (at envelope 1)."""
+        return self.rabi * self.drive_phases
+
+    @property
+    def saturation(self) -> float:
+        """Single-emitter saturation parameter s = 2|Ω|²/(1 + 4Δ²)."""
+        return 2 * abs(self.rabi) ** 2 / (1 + 4 * self.detuning**2)
+
+    def stiffness(self) -> float:
+        """Gershgorin bound on the coupling rates, max_i Σ_j |J_ij| + |Γ_ij|/2, in Γ0.
+
+        An explicit integrator needs steps of order 1/stiffness; far above the drive and decay scales
+        the equations are stiff.
+        """
+        return float(np.max(np.abs(self.J).sum(axis=1) + 0.5 * np.abs(self.Gamma).sum(axis=1)))
+
+    def parameters(self) -> dict[str, Any]:
+        """The model's parameters as plain values, for a results file's attributes."""
+        return {
+            "N": self.n,
+            "coupling": self.coupling,
+            "dipole": [complex(c) for c in self.dipole],
+            "laser": [float(c) for c in self.laser],
+            "rabi": complex(self.rabi),
+            "detuning": float(self.detuning),
+            "saturation": self.saturation,
+            "envelope": self.envelope.describe(),
+        }

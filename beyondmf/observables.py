@@ -1,0 +1,110 @@
+"""Every observable of the data contract, built once from the `Moments` any level reports.
+
+    I(n̂)      = (3/8π)(1 − |ê·n̂|²) ⟨E†E⟩,          E = Σ_j e^{−i2π n̂·r_j} σ_j⁻
+    coherent  = (3/8π)(1 − |ê·n̂|²) |Σ_j e^{−i2π n̂·r_j} ⟨σ_j⁻⟩|²,   incoherent = I − coherent
+    g2(n̂)     = ⟨E†E†EE⟩ / ⟨E†E⟩²,   g2_total = Σ Γ_ij Γ_kl ⟨σ_i⁺σ_k⁺σ_l⁻σ_j⁻⟩ / P²,   P = Σ Γ_ij ⟨σ_i⁺σ_j⁻⟩
+
+Standard errors of the ratios follow from the delta method with the covariances a sampling level reports.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from .levels.base import Moments, Probes
+from .model import Model
+
+__all__ = ["assemble", "detector_prefactor"]
+
+_UNITS = {
+    "excited": ("probability", "excited population ⟨σ_i⁺σ_i⁻⟩"),
+    "coherence": ("1", "coherence ⟨σ_i⁻⟩"),
+    "emission_rate": ("photons per 1/Γ0", "total emission rate P = Σ Γ_ij ⟨σ_i⁺σ_j⁻⟩"),
+    "intensity": ("photons per 1/Γ0 per steradian", "far-field intensity I(n̂)"),
+    "intensity_coherent": ("photons per 1/Γ0 per steradian", "coherent part of I(n̂)"),
+    "intensity_incoherent": ("photons per 1/Γ0 per steradian", "incoherent part of I(n̂)"),
+    "g2": ("1", "second-order coherence at zero delay, per detector"),
+    "g2_total": ("1", "second-order coherence of all emitted light"),
+}
+
+
+def detector_prefactor(model: Model, probes: Probes) -> np.ndarray:
+    """(3/8π)(1 − |ê·n̂|²) for each detector."""
+    proj = np.abs(probes.directions @ model.dipole) ** 2
+    return 3 / (8 * np.pi) * (1 - proj)
+
+
+def _ratio_stderr(a, b, sa, sb, cab):
+    """Delta-method standard error of a/b² from the errors and covariance of the means a, b."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        var = sa**2 / b**4 + 4 * a**2 * sb**2 / b**6 - 4 * a * cab / b**5
+    return np.sqrt(np.maximum(var, 0))
+
+
+def assemble(
+    model: Model,
+    level: str,
+    moments: Moments,
+    probes: Probes,
+    times: np.ndarray | None,
+    attrs: dict[str, Any],
+) -> xr.Dataset:
+    """The results Dataset of conventions.md; ``times=None`` drops the time axis (a steady state)."""
+    m = moments.to_numpy()
+    pref = detector_prefactor(model, probes)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        g2 = m.field4 / m.field2**2
+        g2_total = m.rate4 / m.rate**2
+    coherent = pref * np.abs(m.coherence @ probes.weights.T) ** 2
+    intensity = pref * m.field2
+    data = {
+        "excited": (("time", "atom"), m.excited),
+        "coherence": (("time", "atom"), m.coherence),
+        "emission_rate": (("time",), m.rate),
+        "intensity": (("time", "detector"), intensity),
+        "intensity_coherent": (("time", "detector"), coherent),
+        "intensity_incoherent": (("time", "detector"), intensity - coherent),
+        "g2": (("time", "detector"), g2),
+        "g2_total": (("time",), g2_total),
+    }
+    if m.stderr:
+        se = m.stderr
+        data["excited_stderr"] = (("time", "atom"), se["excited"])
+        data["coherence_stderr"] = (("time", "atom"), se["coherence"])
+        data["emission_rate_stderr"] = (("time",), se["rate"])
+        data["intensity_stderr"] = (("time", "detector"), pref * se["field2"])
+        data["g2_stderr"] = (
+            ("time", "detector"),
+            _ratio_stderr(m.field4, m.field2, se["field4"], se["field2"], m.cov.get("field", 0.0)),
+        )
+        data["g2_total_stderr"] = (
+            ("time",),
+            _ratio_stderr(m.rate4, m.rate, se["rate4"], se["rate"], m.cov.get("rate", 0.0)),
+        )
+    for name, (dims, arr) in m.diagnostics.items():
+        data[name] = (dims, arr)
+
+    coords = {
+        "atom": np.arange(model.n),
+        "detector": list(probes.names),
+        "axis": ["x", "y", "z"],
+        "position": (("atom", "axis"), model.positions),
+        "direction": (("detector", "axis"), probes.directions),
+    }
+    if times is not None:
+        coords["time"] = np.asarray(times, dtype=float)
+    ds = xr.Dataset(data, coords=coords)
+    if times is None:
+        ds = ds.isel(time=0, drop=True) if "time" in ds.dims else ds
+    for name, (unit, long) in _UNITS.items():
+        if name in ds:
+            ds[name].attrs.update(units=unit, long_name=long)
+    if times is not None:
+        ds["time"].attrs.update(units="1/Γ0")
+    ds["position"].attrs.update(units="λ0")
+    ds.attrs.update(attrs)
+    ds.attrs.update(m.attrs)
+    return ds
