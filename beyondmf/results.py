@@ -112,7 +112,9 @@ def load(path: str | os.PathLike) -> xr.Dataset:
         if name.endswith(_RE) and var.attrs.get("complex_parts") == 1:
             base = name[: -len(_RE)]
             attrs = {k: v for k, v in var.attrs.items() if k != "complex_parts"}
-            ds[base] = (var + 1j * raw[base + _IM]).assign_attrs(attrs)
+            merged = var + 1j * raw[base + _IM]
+            merged.attrs = attrs
+            ds[base] = merged
         elif not name.endswith(_IM):
             ds[name] = var
     for name in ds.variables:

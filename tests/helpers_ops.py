@@ -1,0 +1,54 @@
+"""Dense spin-½ operators for small-N reference calculations in tests (independent of the package)."""
+
+from functools import reduce
+
+import numpy as np
+
+SM = np.array([[0, 1], [0, 0]], dtype=complex)  # σ⁻|e⟩ = |g⟩ with |g⟩ = index 0, |e⟩ = index 1
+
+
+def site_op(op, i, n):
+    return reduce(np.kron, [op if k == i else np.eye(2) for k in range(n)])
+
+
+def lowering(n):
+    return [site_op(SM, i, n) for i in range(n)]
+
+
+def product_density(bloch):
+    """Density matrix of a product state with Bloch vectors (⟨σx⟩, ⟨σy⟩, ⟨σz⟩); σz = 2σ⁺σ⁻ − 1."""
+    mats = []
+    for sx, sy, sz in bloch:
+        # ρ = ½(1 + s·σ) with σz = diag(−1, +1) in (|g⟩, |e⟩) and σ⁻ = (σx − iσy)/2
+        rho = 0.5 * np.array([[1 - sz, sx + 1j * sy], [sx - 1j * sy, 1 + sz]], dtype=complex)
+        mats.append(rho)
+    return reduce(np.kron, mats)
+
+
+def liouvillian(H, Gamma, sm):
+    """Dense Lindblad generator L (row-major vec) for dρ/dt = −i[H,ρ] + Σ Γ_ij(σ_j ρ σ_i† − ½{σ_i†σ_j, ρ})."""
+    d = H.shape[0]
+    eye = np.eye(d)
+    L = -1j * (np.kron(H, eye) - np.kron(eye, H.T))
+    for i in range(len(sm)):
+        for j in range(len(sm)):
+            g = Gamma[i, j]
+            if g == 0:
+                continue
+            A, B = sm[j], sm[i].conj().T  # σ_j⁻ ρ σ_i⁺
+            BA = B @ A
+            L += g * (np.kron(A, B.T) - 0.5 * np.kron(BA, eye) - 0.5 * np.kron(eye, BA.T))
+    return L
+
+
+def hamiltonian(model, sm, envelope=1.0):
+    n = len(sm)
+    om = model.rabi_sites * envelope
+    H = np.zeros((2**n, 2**n), dtype=complex)
+    for i in range(n):
+        sp = sm[i].conj().T
+        H += -model.detuning * sp @ sm[i] + 0.5 * (om[i] * sp + np.conj(om[i]) * sm[i])
+        for j in range(n):
+            if i != j:
+                H += model.J[i, j] * sp @ sm[j]
+    return H

@@ -1,0 +1,102 @@
+"""Every bad input to the model and the entry points gives an error that says what was wrong."""
+
+import numpy as np
+import pytest
+
+import beyondmf as bm
+
+
+@pytest.mark.parametrize(
+    "kwargs, match",
+    [
+        ({"positions": [[0, 0, np.nan]]}, "NaN or infinite"),
+        ({"positions": [[0, 0, np.inf], [1, 0, 0]]}, "NaN or infinite"),
+        ({"positions": np.zeros((3, 2))}, r"\(N, 3\)"),
+        ({"positions": [[0, 0, 0]], "dipole": (0, 0, 0)}, "dipole must not be the zero vector"),
+        ({"positions": [[0, 0, 0]], "laser": (0, 0, 0)}, "laser must not be the zero vector"),
+        ({"positions": [[0, 0, 0]], "rabi": np.nan}, "rabi must be finite"),
+        ({"positions": [[0, 0, 0]], "detuning": "large"}, "detuning must be a real number"),
+        ({"positions": [[0, 0, 0]], "coupling": "dyadic"}, "unknown coupling"),
+        ({"positions": [[0, 0, 0]], "envelope": [(2, 1)]}, "t_on < t_off"),
+    ],
+)
+def test_bad_model_input_is_refused(kwargs, match):
+    with pytest.raises(ValueError, match=match):
+        bm.Model(**kwargs)
+
+
+def test_coincident_emitters_are_named_with_their_distance():
+    pos = [[0, 0, 0], [1, 0, 0], [1, 0, 1e-4]]
+    with pytest.raises(ValueError, match=r"emitters 1 and 2 are 0.0001 λ0 apart"):
+        bm.Model(pos)
+
+
+def test_coincident_emitters_allowed_for_all_to_all():
+    m = bm.Model(np.zeros((4, 3)), coupling="all-to-all")
+    assert m.n == 4 and np.all(m.Gamma == 1)
+
+
+def test_vectors_are_normalised_and_model_is_immutable():
+    m = bm.Model([[0, 0, 0], [0, 0, 0.5]], dipole=(2, 0, 0), laser=(0, 0, 3))
+    np.testing.assert_allclose(m.dipole, [1, 0, 0])
+    np.testing.assert_allclose(m.laser, [0, 0, 1])
+    with pytest.raises(AttributeError):
+        m.rabi = 2.0
+    with pytest.raises(ValueError):
+        m.positions[0, 0] = 1.0  # read-only array
+
+
+@pytest.mark.parametrize(
+    "J, G, match",
+    [
+        (np.array([[0, 1], [2, 0]]), np.eye(2), "J must be Hermitian"),
+        (np.zeros((2, 2)), np.array([[1, 2], [2, 1]]), "positive semi-definite"),
+        (np.zeros((2, 2)), 2 * np.eye(2), "unit diagonal"),
+        (np.zeros((3, 3)), np.eye(3), r"shape \(2, 2\)"),
+        (np.eye(2), np.eye(2), "zero diagonal"),
+    ],
+)
+def test_bad_custom_couplings_are_refused(J, G, match):
+    with pytest.raises(ValueError, match=match):
+        bm.Model([[0, 0, 0], [0, 0, 1]], coupling=(J, G))
+
+
+def test_custom_couplings_are_used():
+    J = np.array([[0, 0.3], [0.3, 0]])
+    G = np.array([[1, 0.5], [0.5, 1]])
+    m = bm.Model([[0, 0, 0], [0, 0, 1]], coupling=(J, G))
+    assert m.coupling == "custom" and m.J[0, 1] == 0.3
+
+
+def test_unknown_level_names_the_known_ones():
+    with pytest.raises(ValueError, match="unknown level 'mf'; known levels: .*meanfield"):
+        bm.evolve(bm.Model([[0, 0, 0]]), "mf", [0, 1])
+
+
+def test_unknown_option_is_an_error():
+    with pytest.raises(ValueError, match="takes no option 'tolerance'; its options: .*rtol"):
+        bm.evolve(bm.Model([[0, 0, 0]]), "meanfield", [0, 1], tolerance=1e-3)
+
+
+@pytest.mark.parametrize(
+    "call, match",
+    [
+        (lambda m: bm.evolve(m, "meanfield", [1, 0]), "strictly increasing"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], initial="up"), "initial must be"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], initial=[[0, 0, 2]]), "length 2 > 1"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], detectors={"a": (0, 0, 0)}), "non-zero"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], detectors=[(0, 0, 1)]), "map a name"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], seed=-3), "non-negative integer"),
+    ],
+)
+def test_bad_call_arguments_are_refused(call, match):
+    with pytest.raises(ValueError, match=match):
+        call(bm.Model([[0, 0, 0]], rabi=1.0))
+
+
+def test_memory_need_is_refused_before_allocating(monkeypatch):
+    from beyondmf import memory
+
+    monkeypatch.setattr(memory, "available_bytes", lambda: 10**6)
+    with pytest.raises(MemoryError, match="needs about .* GiB"):
+        bm.Model(bm.geometry.box_cloud(1000, 10, seed=0))
