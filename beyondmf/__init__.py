@@ -6,8 +6,10 @@ One `Model`, two entry points (`evolve`, `steady`), levels chosen by name; every
 
 __version__ = "0.1.0"
 
-from . import _config  # noqa: F401,E402  (64-bit JAX before anything else touches JAX)
-from . import geometry  # noqa: E402
+from . import (
+    _config,  # noqa: F401,E402  (64-bit JAX before anything else touches JAX)
+    geometry,  # noqa: E402
+)
 from .api import evolve, steady  # noqa: E402
 from .couplings import couplings  # noqa: E402
 from .levels import Level, Moments, available_levels, get_level, register  # noqa: E402

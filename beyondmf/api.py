@@ -50,7 +50,8 @@ def _options(level: Level, given: dict[str, Any]) -> dict[str, Any]:
     unknown = sorted(set(given) - set(level.options))
     if unknown:
         allowed = ", ".join(sorted(level.options)) or "none"
-        raise ValueError(f"level {level.name!r} takes no option {', '.join(map(repr, unknown))}; its options: {allowed}")
+        names = ", ".join(map(repr, unknown))
+        raise ValueError(f"level {level.name!r} takes no option {names}; its options: {allowed}")
     return {**level.options, **given}
 
 

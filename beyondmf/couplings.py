@@ -106,7 +106,7 @@ def validate_custom(J, Gamma, n: int, tol: float = 1e-9) -> tuple[np.ndarray, np
     for name, m in (("J", J), ("Gamma", Gamma)):
         a = np.asarray(m)
         if a.shape != (n, n):
-            raise ValueError(f"custom {name} must have shape ({n}, {n}) to match the positions, got {a.shape}")
+            raise ValueError(f"custom {name} must have shape ({n}, {n}) like the positions, got {a.shape}")
         if not np.all(np.isfinite(a)):
             raise ValueError(f"custom {name} contains NaN or infinite values")
         scale = max(1.0, float(np.abs(a).max()))

@@ -56,7 +56,7 @@ def _draw_with_exclusion(
     if packing > _MAX_PACKING:
         raise ValueError(
             f"{n} emitters with min_distance={min_distance} λ0 do not fit in the {what} "
-            f"(packing fraction {packing:.2f} > {_MAX_PACKING}): lower n or min_distance, or enlarge the cloud"
+            f"(packing fraction {packing:.2f} > {_MAX_PACKING}): lower n or min_distance, or enlarge it"
         )
     rng = np.random.default_rng(seed)
     pts = draw(rng, n)

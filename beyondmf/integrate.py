@@ -112,7 +112,9 @@ def _solver_fn(rhs, observe, solver: str, rtol, atol, max_steps, dtmin, jump_ts,
             progress_meter=meter,
         )
         obs, y_end = sol.ys
-        return obs, jax.tree.map(lambda a: a[-1], y_end), sol.result._value, sol.stats["num_accepted_steps"], sol.stats["num_rejected_steps"]
+        stats = sol.stats
+        y_last = jax.tree.map(lambda a: a[-1], y_end)
+        return obs, y_last, sol.result._value, stats["num_accepted_steps"], stats["num_rejected_steps"]
 
     _COMPILED[key] = run
     return run
@@ -139,7 +141,8 @@ def solve(
     """Integrate from times[0] to times[-1]; returns (observations at ``times``, final state, stats)."""
     ts = jnp.asarray(times, dtype=float)
     if len(ts) == 1:
-        return jax.tree.map(lambda a: a[None], observe(y0, obs_args)), y0, {"accepted_steps": 0, "rejected_steps": 0}
+        obs = jax.tree.map(lambda a: a[None], observe(y0, obs_args))
+        return obs, y0, {"solver": solver, "accepted_steps": 0, "rejected_steps": 0}
     run = _solver_fn(
         rhs,
         observe,

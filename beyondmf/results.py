@@ -29,7 +29,11 @@ def provenance() -> dict[str, str]:
 
     from . import __version__
 
-    return {"beyondmf_version": __version__, "jax_version": jax.__version__, "diffrax_version": diffrax.__version__}
+    return {
+        "beyondmf_version": __version__,
+        "jax_version": jax.__version__,
+        "diffrax_version": diffrax.__version__,
+    }
 
 
 def _json_default(obj: Any):

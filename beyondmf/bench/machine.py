@@ -54,13 +54,11 @@ def measure(matmul_n: int = 2048, stream_bytes: int = 512 * 2**20) -> Machine:
     b = jax.random.normal(key, (matmul_n, matmul_n), dtype=jnp.float64)
     mm = jax.jit(jnp.dot)
     t_mm = median_time(lambda: mm(a, b))
-    del a, b
 
     n = stream_bytes // 8
     x = jnp.ones(n, dtype=jnp.float64)
     rd = jax.jit(jnp.sum)
     t_rd = median_time(lambda: rd(x))
-    del x
 
     m = n // 2
     y, z = jnp.ones(m), jnp.full(m, 2.0)
