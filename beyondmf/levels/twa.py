@@ -38,7 +38,7 @@ from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
 
-__all__ = ["TruncatedWigner", "noise_factor", "sample_initial", "twa_drift"]
+__all__ = ["TruncatedWigner", "noise_factor", "sample_initial", "twa_args", "twa_drift"]
 
 # A spin component beyond this is a diverged sample (the exact dynamics keeps |s| ≤ √3 initially and
 # the sampled spins stay of order one).
@@ -125,6 +125,21 @@ def _drift_for(envelope: Envelope):
         return jnp.concatenate([2 * dbr, -2 * dbi, dz], axis=1)
 
     return drift
+
+
+def twa_args(model: Model) -> dict[str, Any]:
+    """The model's arrays as the pytree the drift reads: [J; Γ] stacked (2N × N), B (Γ = BBᵀ), Γ_ii, Ω_i, Δ."""
+    n = model.n
+    require(8 * n * n * 6, f"the coupling matrices of 'twa' for {n} emitters")
+    gamma = np.asarray(model.Gamma.real, dtype=float)
+    om = model.rabi_sites
+    return {
+        "JG": jnp.asarray(np.concatenate([np.asarray(model.J.real, dtype=float), gamma])),
+        "B": jnp.asarray(noise_factor(gamma)),
+        "gdiag": jnp.asarray(np.diag(gamma))[:, None],
+        "omega": jnp.asarray(np.stack([om.real, om.imag])),
+        "detuning": jnp.asarray(model.detuning),
+    }
 
 
 def _per_sample(Y, weights, gamma):
@@ -284,17 +299,8 @@ class TruncatedWigner(Level):
         if not (np.isfinite(dt) and dt > 0):
             raise ValueError(f"dt must be a positive time step (1/Γ0) or 'auto', got {options['dt']!r}")
         n = model.n
-        require(8 * n * n * 6, f"the coupling matrices of 'twa' for {n} emitters")
-        gamma = np.asarray(model.Gamma.real, dtype=float)
-        om = model.rabi_sites
-        args = {
-            "JG": jnp.asarray(np.concatenate([model.J.real, gamma])),
-            "B": jnp.asarray(noise_factor(gamma)),
-            "gdiag": jnp.asarray(np.diag(gamma))[:, None],
-            "omega": jnp.asarray(np.stack([om.real, om.imag])),
-            "detuning": jnp.asarray(model.detuning),
-        }
-        obs_args = (jnp.asarray(probes.weights), jnp.asarray(gamma))
+        args = twa_args(model)
+        obs_args = (jnp.asarray(probes.weights), args["JG"][n:])
         # per sample: the state and ~10 temporaries of its size, the noise, the estimator temporaries
         per_sample = 8 * (14 * 3 * n + 6 * n + 8 * probes.weights.shape[0] * n)
         chunk = int(max(1, min(samples, CHUNK_BYTES // per_sample)))
