@@ -37,7 +37,8 @@ def _lindblad_reference(model: Model, bloch: np.ndarray, times: np.ndarray):
     sm = [_site(_SM, i, n) for i in range(n)]
     sp = [s.conj().T for s in sm]
     om = model.rabi_sites
-    H = sum(-model.detuning * sp[i] @ sm[i] + 0.5 * (om[i] * sp[i] + np.conj(om[i]) * sm[i]) for i in range(n))
+    H = sum(-model.detuning * sp[i] @ sm[i] + 0.5 * (om[i] * sp[i] + np.conj(om[i]) * sm[i])
+            for i in range(n))
     H = H + sum(model.J[i, j] * sp[i] @ sm[j] for i in range(n) for j in range(n) if i != j)
     d = 2**n
     eye = np.eye(d)
@@ -45,7 +46,8 @@ def _lindblad_reference(model: Model, bloch: np.ndarray, times: np.ndarray):
     for i in range(n):
         for j in range(n):
             ba = sp[i] @ sm[j]
-            L += model.Gamma[i, j] * (np.kron(sm[j], sp[i].T) - 0.5 * np.kron(ba, eye) - 0.5 * np.kron(eye, ba.T))
+            jump = np.kron(sm[j], sp[i].T) - 0.5 * np.kron(ba, eye) - 0.5 * np.kron(eye, ba.T)
+            L += model.Gamma[i, j] * jump
     rhos = [0.5 * np.array([[1 + z, x - 1j * y], [x + 1j * y, 1 - z]]) for x, y, z in bloch]
     rho = reduce(np.kron, rhos).reshape(-1)
     nops = [sp[i] @ sm[i] for i in range(n)]
@@ -164,7 +166,8 @@ def test_standard_errors_fall_as_one_over_root_samples():
     small = evolve(m, "twa", ts, seed=2, samples=200)
     large = evolve(m, "twa", ts, seed=3, samples=800)
     for name in ("excited_stderr", "emission_rate_stderr"):
-        ratio = float(small[name].isel(time=slice(1, None)).mean() / large[name].isel(time=slice(1, None)).mean())
+        late = slice(1, None)
+        ratio = float(small[name].isel(time=late).mean() / large[name].isel(time=late).mean())
         assert 1.7 < ratio < 2.3, (name, ratio)
 
 
@@ -246,8 +249,8 @@ def test_superradiant_burst_matches_the_dicke_ladder():
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="known defect: the drifting dense ground state biases the linear response "
-                   "(measured errors up to 0.01 at |β| ≤ 0.046, 2–5σ; docs/twa.md)")
+@pytest.mark.xfail(strict=True, reason="known defect: the drifting dense ground state biases the linear "
+                   "response (measured errors up to 0.01 at |β| ≤ 0.046, 2–5σ; docs/twa.md)")
 def test_weak_drive_matches_the_coupled_dipole_solution():
     # J. Ruostekoski, J. Javanainen, PRA 55, 513 (1997): to first order in Ω,
     # 0 = (iΔ − ½)β_i − (i/2)Ω_i − (i/2)Σ_{j≠i}(2J_ij − iΓ_ij)β_j. At s = 2Ω² = 0.005 the saturation
@@ -268,7 +271,7 @@ def test_weak_drive_matches_the_coupled_dipole_solution():
     "n, spacing",
     [
         pytest.param(2, 0.15, marks=pytest.mark.xfail(
-            strict=True, reason="measured Σρ_ee error 0.12 at t = 1.5 > 0.065 + 4σ (docs/twa.md, error table)")),
+            strict=True, reason="measured Σρ_ee error 0.12 at t = 1.5 > 0.065 + 4σ (docs/twa.md)")),
         (3, 0.2),
         (4, 0.25),
     ],
@@ -283,4 +286,5 @@ def test_small_dense_clusters_against_the_lindblad_equation(n, spacing):
     tot = ds.excited.sum("atom").values
     tot_se = np.sqrt((ds.excited_stderr.values**2).sum(axis=1))
     assert np.all(np.abs(tot - exc.sum(axis=1)) < 0.1 * n * exc.max() + 4 * tot_se)
-    assert np.all(np.abs(ds.emission_rate.values - rate) < 0.15 * rate.max() + 4 * ds.emission_rate_stderr.values)
+    rate_se = ds.emission_rate_stderr.values
+    assert np.all(np.abs(ds.emission_rate.values - rate) < 0.15 * rate.max() + 4 * rate_se)

@@ -42,10 +42,11 @@ def twa_suite(full: bool, machine: Machine) -> list[Row]:
     rows.append(Row("twa", f"N={n} S={samples}", "drift / matmul peak", flops / t / machine.matmul_flops, "1",
                     "target ≥ 0.5"))
 
-    # a sampled run to t = 10 (measured over a shorter time and extrapolated when not `full`)
-    t_end = 10.0 if full else 0.5
+    # a sampled run towards t = 10: on a shared CPU the full run takes far longer than the 10-minute
+    # target, so a run to t = 0.5 is timed and the time per step extrapolated (labelled as such)
+    t_end = 0.5
     times = np.linspace(0.0, t_end, 11)
-    evolve(model, "twa", times[:2] * 0.01, seed=0, samples=samples)  # compile
+    evolve(model, "twa", times * 0.01, seed=0, samples=samples)  # compile (same shapes, fewer steps)
     t0 = time.perf_counter()
     ds = evolve(model, "twa", times, seed=0, samples=samples)
     wall = time.perf_counter() - t0
@@ -56,7 +57,7 @@ def twa_suite(full: bool, machine: Machine) -> list[Row]:
                     f"{steps} Heun steps of dt={dt:g}, 11 observation times"))
     rows.append(Row("twa", f"N={n} S={samples}", "step FLOP/s / matmul peak",
                     step_flops / per_step / machine.matmul_flops, "1", "20N²S FLOPs per Heun step"))
-    if t_end < 10:
-        rows.append(Row("twa", f"N={n} S={samples} t=10", "wall time (extrapolated)", per_step * 10 / dt, "s",
-                        "measured time per step × steps to t = 10"))
+    rows.append(Row("twa", f"N={n} S={samples} t=10", "wall time (extrapolated)",
+                    per_step * np.ceil(10 / dt), "s",
+                    "measured time per step × steps to t = 10, not a measured run"))
     return rows

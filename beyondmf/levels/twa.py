@@ -15,12 +15,15 @@ vacuum noise of the quantum Langevin equations (C. W. Gardiner, M. J. Collett, P
 (1985)) kept on the transverse components only. The noise amplitude z_i has no noise of its own, so the
 Itô and Stratonovich readings coincide and the stochastic Heun scheme used here converges to it.
 
-Why this form: it is exact for the means of one emitter; it keeps the undriven ground state dark for any
-Γ (with z = −1 the transverse part is an Ornstein–Uhlenbeck process of drift −½Γ and noise Γ, whose
-stationary covariance is the ground state's, the identity); the noise z_i dη_i seeds the superradiant
-burst of an inverted cloud. Trustworthy for collective decay from strong inversion, for driven clouds at
-moderate to strong drive and at weak drive (linear optics is exact in the mean); it is an approximation
-of pair and higher correlations in small dense clusters (error table in docs/twa.md).
+Why this form: it is exact for the means of one emitter; with z = −1 held fixed the transverse part is an
+Ornstein–Uhlenbeck process of drift −(iJ + ½Γ) and noise Γ whose stationary covariance is the ground
+state's (the identity); the noise z_i dη_i seeds the superradiant burst of an inverted cloud.
+
+Where to trust it (measured, docs/twa.md): the superradiant burst of an inverted cloud (Dicke peak within
+3 %), one emitter (exact means), driven dense clusters to within ~5–15 % of the exact populations and
+rates. Known failure: with collective decay (Γ_ij ≠ 0 for i ≠ j) the per-sample z_i fluctuate even in the
+undriven ground state and the mean ⟨σ^z⟩ drifts below −1 (Σρ_ee ≈ −0.25 for 20 emitters at n·λ0³ ≈ 5,
+≈ −1.2 at n·λ0³ ≈ 38), which also biases weak-drive coherences and the late tail of a burst.
 """
 
 from __future__ import annotations
@@ -128,7 +131,7 @@ def _drift_for(envelope: Envelope):
 
 
 def twa_args(model: Model) -> dict[str, Any]:
-    """The model's arrays as the pytree the drift reads: [J; Γ] stacked (2N × N), B (Γ = BBᵀ), Γ_ii, Ω_i, Δ."""
+    """The model's arrays as the pytree the drift reads: [J; Γ] (2N × N), B (Γ = BBᵀ), Γ_ii, Ω_i, Δ."""
     n = model.n
     require(8 * n * n * 6, f"the coupling matrices of 'twa' for {n} emitters")
     gamma = np.asarray(model.Gamma.real, dtype=float)
@@ -160,7 +163,8 @@ def _per_sample(Y, weights, gamma):
 def _bad(Y):
     S = Y.shape[1] // 3
     Y3 = Y.reshape(Y.shape[0], 3, S)
-    return ~jnp.all(jnp.isfinite(Y3), axis=(0, 1)) | (jnp.max(jnp.abs(jnp.nan_to_num(Y3, nan=0.0)), axis=(0, 1)) > DIVERGED)
+    big = jnp.max(jnp.abs(jnp.nan_to_num(Y3, nan=0.0)), axis=(0, 1)) > DIVERGED
+    return ~jnp.all(jnp.isfinite(Y3), axis=(0, 1)) | big
 
 
 def _sums(obs, mask):
@@ -357,7 +361,8 @@ class TruncatedWigner(Level):
         """Average over samples and over ``window_points`` equally spaced times of the window
         [settle_time, settle_time + window], starting from the ground state at t = 0."""
         dt = self._setup(model, probes, options)[2]
-        t_settle, window, points = float(options["settle_time"]), float(options["window"]), options["window_points"]
+        t_settle, window = float(options["settle_time"]), float(options["window"])
+        points = options["window_points"]
         if not (t_settle >= 0 and window > 0 and isinstance(points, int) and points >= 1):
             raise ValueError("steady needs settle_time ≥ 0, window > 0 and an integer window_points ≥ 1")
         t_obs = np.concatenate([[0.0], t_settle + window * np.arange(1, points + 1) / points])
