@@ -278,6 +278,7 @@ class TruncatedWigner(Level):
         "settle_time": 40.0,
         "window": 40.0,
         "window_points": 80,
+        "chunk": "auto",
     }
     stochastic = True
 
@@ -307,8 +308,12 @@ class TruncatedWigner(Level):
         obs_args = (jnp.asarray(probes.weights), args["JG"][n:])
         # per sample: the state and ~10 temporaries of its size, the noise, the estimator temporaries
         per_sample = 8 * (14 * 3 * n + 6 * n + 8 * probes.weights.shape[0] * n)
-        chunk = int(max(1, min(samples, CHUNK_BYTES // per_sample)))
-        return samples, frac, dt, chunk, args, obs_args
+        chunk = options["chunk"]
+        if chunk == "auto":
+            chunk = int(max(1, min(samples, CHUNK_BYTES // per_sample)))
+        elif not (isinstance(chunk, int | np.integer) and chunk >= 1):
+            raise ValueError(f"chunk must be 'auto' or a positive number of samples, got {chunk!r}")
+        return samples, frac, dt, int(chunk), args, obs_args
 
     def _run(self, model, t_obs, n_sub, initial, seed, options, probes, steady: bool):
         samples, frac, dt, chunk, args, obs_args = self._setup(model, probes, options)
@@ -318,18 +323,19 @@ class TruncatedWigner(Level):
         bloch = jnp.asarray(initial, dtype=float)
         n = model.n
         tot, failed = None, 0
+        require(chunk * (8 * (14 * 3 * n + 6 * n)), f"a chunk of {chunk} 'twa' samples of {n} emitters")
         for start in range(0, samples, chunk):
-            count = min(chunk, samples - start)
-            require(count * (8 * (14 * 3 * n + 6 * n)), f"a chunk of {count} 'twa' samples of {n} emitters")
-            keys = _sample_keys(seed, start, count)
+            # every chunk has `chunk` columns (one compile); the last one's surplus samples are masked out
+            keys = _sample_keys(seed, start, chunk)
             Y0 = sample_initial(bloch, jax.vmap(lambda k: jax.random.fold_in(k, 0))(keys))
             keys = jax.vmap(lambda k: jax.random.fold_in(k, 1))(keys)  # the noise's own stream
             Y0 = jnp.concatenate([Y0[:, 0, :], Y0[:, 1, :], Y0[:, 2, :]], axis=1)
-            mask = jnp.ones(count, dtype=bool)
+            mask = jnp.arange(chunk) < samples - start
             sums, bad = run(Y0, keys, mask, args, obs_args, t_obs, n_sub)
+            bad = bad & mask
             nbad = int(jnp.sum(bad))
             if nbad and not steady:  # rerun without the failed samples (same keys, same trajectories)
-                sums, _ = run(Y0, keys, ~bad, args, obs_args, t_obs, n_sub)
+                sums, _ = run(Y0, keys, mask & ~bad, args, obs_args, t_obs, n_sub)
             failed += nbad
             sums = {k: np.asarray(v) for k, v in sums.items()}
             tot = sums if tot is None else {k: tot[k] + sums[k] for k in tot}
