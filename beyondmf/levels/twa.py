@@ -20,7 +20,7 @@ Ornstein–Uhlenbeck process of drift −(iJ + ½Γ) and noise Γ whose stationa
 state's (the identity); the noise z_i dη_i seeds the superradiant burst of an inverted cloud.
 
 Where to trust it (measured, docs/twa.md): the superradiant burst of an inverted cloud (Dicke peak within
-3 %), one emitter (exact means), driven dense clusters to within ~5–15 % of the exact populations and
+3 %), one emitter (exact means), driven dense clusters to within ~5–20 % of the exact populations and
 rates. Known failure: with collective decay (Γ_ij ≠ 0 for i ≠ j) the per-sample z_i fluctuate even in the
 undriven ground state and the mean ⟨σ^z⟩ drifts below −1 (Σρ_ee ≈ −0.25 for 20 emitters at n·λ0³ ≈ 5,
 ≈ −1.2 at n·λ0³ ≈ 38), which also biases weak-drive coherences and the late tail of a burst.
