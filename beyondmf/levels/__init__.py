@@ -2,6 +2,7 @@
 
 from . import (
     exact,  # noqa: F401  (registers the level)
+    jumps,  # noqa: F401  (registers the level)
     meanfield,  # noqa: F401  (registers the level)
 )
 from .base import Level, Moments, Probes, available_levels, get_level, register

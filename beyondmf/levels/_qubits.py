@@ -18,8 +18,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-__all__ = ["site_tables", "lower", "raise_left", "raise_right", "pair_trace", "product_amplitudes",
-           "product_density"]
+__all__ = ["site_tables", "lower", "raise_left", "raise_right", "pair_trace", "apply_heff",
+           "site_amplitudes", "product_amplitudes", "product_density"]
 
 
 def site_tables(n: int) -> dict[str, jnp.ndarray]:
@@ -64,23 +64,35 @@ def pair_trace(g, x, tab):
     return jnp.sum(diag * tab["empty"])
 
 
-def _site_states(bloch: np.ndarray):
-    """Single-site pure amplitudes (a_g, a_e) with the Bloch vector of each row of ``bloch`` (|s| = 1)."""
-    s = np.asarray(bloch, dtype=float)
-    ag = np.sqrt(np.clip((1 - s[:, 2]) / 2, 0, 1))
-    ae = np.sqrt(np.clip((1 + s[:, 2]) / 2, 0, 1))
-    # ⟨σ⁻⟩ = a_g* a_e = (s_x − i s_y)/2 fixes the relative phase.
+def apply_heff(x, c, half_om, tab):
+    """(H_eff x, σ⁻x) for H_eff = Σ_ij C_ij σ_i⁺σ_j⁻ + Σ_i (½Ω_i σ_i⁺ + ½Ω_i* σ_i⁻), x of shape (D, ...).
+
+    C = J − ΔI − (i/2)Γ holds detuning, exchange and the decay's anti-Hermitian part; half_om = ½Ω_i(t).
+    """
+    low = lower(x, tab)
+    w = jnp.einsum("ij,j...->i...", c, low) + half_om.reshape((-1,) + (1,) * x.ndim) * x[None]
+    return raise_left(w, tab) + jnp.einsum("i,i...->...", jnp.conj(half_om), low), low
+
+
+def site_amplitudes(bloch):
+    """Amplitudes (a_g, a_e) per emitter, shape (N, 2), of the pure states with unit Bloch vectors ``bloch``.
+
+    a_g = √((1 − s_z)/2) real and a_e = √((1 + s_z)/2) e^{−iφ} with s_x − i s_y = |s_⊥| e^{−iφ}, so that
+    ⟨σ⁻⟩ = a_g* a_e = (s_x − i s_y)/2 and ⟨σ⁺σ⁻⟩ = (1 + s_z)/2.
+    """
+    s = jnp.asarray(bloch)
+    ag = jnp.sqrt(jnp.clip((1 - s[:, 2]) / 2, 0, 1))
+    ae = jnp.sqrt(jnp.clip((1 + s[:, 2]) / 2, 0, 1))
     perp = s[:, 0] - 1j * s[:, 1]
-    phase = np.where(np.abs(perp) > 1e-300, perp / np.maximum(np.abs(perp), 1e-300), 1.0)
-    return np.stack([ag + 0j, ae * phase], axis=1)
+    mag = jnp.abs(perp)
+    phase = jnp.where(mag > 1e-300, perp / jnp.where(mag > 1e-300, mag, 1.0), 1.0)
+    return jnp.stack([ag + 0j, ae * phase], axis=1)
 
 
-def product_amplitudes(bloch: np.ndarray) -> np.ndarray:
-    """State vector (2^N,) of the pure product state with unit Bloch vectors ``bloch`` (N, 3)."""
-    psi = np.ones(1, dtype=complex)
-    for site in _site_states(bloch):  # Kronecker product: N small factors, done once on the host
-        psi = np.kron(psi, site)
-    return psi
+def product_amplitudes(bloch, tab):
+    """State vector (2^N,) of the pure product state with unit Bloch vectors ``bloch`` (N, 3), in JAX."""
+    amp = site_amplitudes(bloch)
+    return jnp.prod(jnp.where(tab["occ"] > 0, amp[:, 1:2], amp[:, 0:1]), axis=0)
 
 
 def product_density(bloch: np.ndarray) -> np.ndarray:

@@ -68,10 +68,7 @@ def _rhs_for(envelope: Envelope):
         rho = y[0] + 1j * y[1]
         tab = args["tab"]
         half_om = 0.5 * envelope(t) * args["omega"]
-        low = q.lower(rho, tab)  # σ_j⁻ ρ, (N, D, D)
-        # H_eff ρ = Σ_i σ_i⁺ [Σ_j C_ij σ_j⁻ρ + ½Ω_i ρ] + ½ Σ_i Ω_i* σ_i⁻ρ
-        w = jnp.einsum("ij,jab->iab", args["C"], low) + half_om[:, None, None] * rho[None]
-        x = q.raise_left(w, tab) + jnp.einsum("i,iab->ab", jnp.conj(half_om), low)
+        x, low = q.apply_heff(rho, args["C"], half_om, tab)  # H_eff ρ and σ_j⁻ρ (N, D, D)
         jump = q.raise_right(jnp.einsum("ij,jab->iab", args["G"], low), tab)
         d = -1j * (x - jnp.conj(x.T)) + jump
         return jnp.stack([d.real, d.imag])
