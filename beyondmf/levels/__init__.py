@@ -1,6 +1,7 @@
 """Levels of description, one module each, registered by name (see base.Level for the contract)."""
 
 from . import (
+    dicke,  # noqa: F401  (registers the level)
     exact,  # noqa: F401  (registers the level)
     jumps,  # noqa: F401  (registers the level)
     meanfield,  # noqa: F401  (registers the level)
