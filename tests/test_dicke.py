@@ -49,7 +49,8 @@ def test_burst_from_full_inversion_matches_ladder(n):
 def test_inverted_g2_total(n):
     """g2_total = 2(1 − 1/N) for N fully inverted emitters (derived from the ladder matrix elements,
     references.md); the same for every detector since |w_j| = 1."""
-    ds = bm.evolve(dicke_model(n), "dicke", [0.0], initial="excited", detectors={"a": (1, 0, 0), "b": (0, 0, 1)})
+    det = {"a": (1, 0, 0), "b": (0, 0, 1)}
+    ds = bm.evolve(dicke_model(n), "dicke", [0.0], initial="excited", detectors=det)
     assert ds.g2_total.values[0] == pytest.approx(2 * (1 - 1 / n), abs=1e-12)
     np.testing.assert_allclose(ds.g2.values[0], 2 * (1 - 1 / n), atol=1e-12)
 
