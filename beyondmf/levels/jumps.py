@@ -168,6 +168,8 @@ class Jumps(Level):
         if chunk == "auto":
             budget = min(CHUNK_BYTES, 0.25 * available_bytes())
             chunk = int(max(1, min(samples, budget // per_traj, 256)))
+        elif int(chunk) != chunk or chunk < 1:
+            raise ValueError(f"chunk must be a positive integer or 'auto', got {chunk!r}")
         c = model.J - model.detuning * np.eye(n) - 0.5j * model.Gamma
         dt = _auto_dt(model, c) if options["dt"] == "auto" else float(options["dt"])
         if not dt > 0:
