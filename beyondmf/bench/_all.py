@@ -1,3 +1,3 @@
 """Imports every benchmark suite so that each registers itself."""
 
-from . import twa  # noqa: F401
+from . import exact_levels, twa  # noqa: F401
