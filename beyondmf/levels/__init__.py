@@ -1,5 +1,6 @@
 """Levels of description, one module each, registered by name (see base.Level for the contract)."""
 
+from . import cumulant2  # noqa: F401  (registers the level)
 from . import meanfield  # noqa: F401  (registers the level)
 from .base import Level, Moments, Probes, available_levels, get_level, register
 
