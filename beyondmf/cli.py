@@ -130,7 +130,9 @@ def _cmd_bench(args) -> int:
     known = suites()
     unknown = [n for n in (args.suite or []) if n not in known]
     if unknown:
-        raise _UsageError(f"--suite: unknown benchmark suite(s) {', '.join(unknown)}; known: {', '.join(known)}")
+        raise _UsageError(
+            f"--suite: unknown benchmark suite(s) {', '.join(unknown)}; known: {', '.join(known)}"
+        )
     rows = run_suites(args.suite, args.full)
     print(_format_table(rows))
     if args.out:

@@ -88,12 +88,16 @@ def plot_intensity(ds: xr.Dataset, path: str | Path) -> Path:
     dets = [str(d) for d in ds["detector"].values]
     if "time" not in ds.dims:
         fig, ax = plt.subplots(figsize=(6.4, 4.2), layout="constrained")
-        vals = np.array([[float(_by_level(ds, lv)["intensity"].sel(detector=d)) for lv in levels] for d in dets])
+        vals = np.array(
+            [[float(_by_level(ds, lv)["intensity"].sel(detector=d)) for lv in levels] for d in dets]
+        )
         _bars(ax, [_angle_label(ds, d) for d in dets], levels, vals, _INTENSITY)
         ax.set_title(_title(ds, "Steady-state intensity per detector"))
         ax.grid(alpha=0.3, axis="y")
         return _save(fig, Path(path))
-    fig, axes = plt.subplots(1, len(dets), figsize=(4.8 * len(dets), 4.2), layout="constrained", squeeze=False)
+    fig, axes = plt.subplots(
+        1, len(dets), figsize=(4.8 * len(dets), 4.2), layout="constrained", squeeze=False
+    )
     for ax, d in zip(axes[0], dets, strict=True):
         for k, lv in enumerate(levels):
             sub = _by_level(ds, lv)
