@@ -27,7 +27,7 @@ from .couplings import KINDS as COUPLING_KINDS
 from .levels.base import available_levels, get_level
 from .model import Model
 
-__all__ = ["StudyError", "Study", "read_study", "parse_study", "run_study", "section", "detector_direction"]
+__all__ = ["StudyError", "Study", "read_study", "parse_study", "parse_table", "run_study", "section", "detector_direction"]
 
 
 class StudyError(ValueError):
@@ -427,6 +427,11 @@ def parse_study(text: str, path: Path | None = None) -> Study:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
         raise StudyError(f"not valid TOML: {err}") from None
+    return parse_table(raw, text, path)
+
+
+def parse_table(raw: dict[str, Any], text: str = "", path: Path | None = None) -> Study:
+    """Validate an already-decoded study table (e.g. one with overrides applied) into a `Study`."""
     known = (*_TOP_KEYS, *_SECTIONS)
     for k in raw:
         if k not in known:
