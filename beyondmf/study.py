@@ -27,7 +27,9 @@ from .couplings import KINDS as COUPLING_KINDS
 from .levels.base import available_levels, get_level
 from .model import Model
 
-__all__ = ["StudyError", "Study", "read_study", "parse_study", "parse_table", "run_study", "section", "detector_direction"]
+__all__ = [
+    "StudyError", "Study", "read_study", "parse_study", "parse_table", "run_study", "section", "detector_direction",
+]
 
 
 class StudyError(ValueError):
