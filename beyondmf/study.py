@@ -402,7 +402,8 @@ class Study:
         try:
             pos = self.geometry.positions() if positions is None else positions
         except ValueError as err:
-            raise StudyError(f"geometry: {err}") from None
+            # the draws refuse only a cloud too small for its n emitters at their min_distance
+            raise StudyError(f"geometry.min_distance: {err}") from None
         try:
             return Model(
                 pos,
