@@ -1,6 +1,7 @@
 """The `beyondmf` command: run a study file, list the levels, run the benchmarks.
 
-    beyondmf run STUDY.toml --out DIR     results.nc and PNG figures in DIR
+    beyondmf run STUDY.toml --out DIR [--quick] [--workers N | --scheduler ADDRESS]
+                                          results.nc and PNG figures in DIR
     beyondmf levels                       the registered levels and their options
     beyondmf bench [--full] [--suite NAME ...] [--out FILE]
 
@@ -48,6 +49,13 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("study", metavar="STUDY.toml", help="the study file")
     r.add_argument("--out", required=True, metavar="DIR", help="directory for results.nc and the figures")
     r.add_argument("--no-plots", action="store_true", help="write results.nc only")
+    r.add_argument("--quick", action="store_true",
+                   help="apply the study's [quick] overrides (a CI-sized run)")
+    ex = r.add_mutually_exclusive_group()
+    ex.add_argument("--workers", type=int, metavar="N",
+                    help="run the tasks on a local dask cluster of N worker processes (loopback only)")
+    ex.add_argument("--scheduler", metavar="ADDRESS",
+                    help="run the tasks on the dask scheduler at ADDRESS, e.g. tcp://10.0.0.5:8786")
 
     lv = sub.add_parser(
         "levels",
@@ -77,13 +85,18 @@ def _say(msg: str) -> None:
 def _cmd_run(args) -> int:
     from .plotting import plot_all
     from .results import save
-    from .study import read_study, run_study
+    from .study import run_study
+    from .sweep import is_sweep, read_study
 
-    study = read_study(args.study)
+    if args.workers is not None and args.workers < 1:
+        raise _UsageError(f"--workers: expected a positive number of workers, got {args.workers}")
+    study = read_study(args.study, quick=args.quick)
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         raise _UsageError(f"--out: {out} exists and is not a directory")
     t0 = time.perf_counter()
+    if is_sweep(study) or args.workers is not None or args.scheduler is not None:
+        return _run_tasks(study, out, args, t0)
 
     def on_level(name: str, stage: str, seconds: float | None) -> None:
         if stage == "start":
@@ -97,6 +110,31 @@ def _cmd_run(args) -> int:
     if not args.no_plots:
         for fig in plot_all(ds, out):
             _say(f"wrote {fig}")
+    _say(f"done in {time.perf_counter() - t0:.1f} s")
+    return 0
+
+
+def _run_tasks(study, out: Path, args, t0: float) -> int:
+    """A sweep or comparison study (or any study with --workers/--scheduler): resumable tasks."""
+    from .correction_plots import plot_sweep
+    from .executors import make_executor
+    from .sweep import run_sweep
+
+    executor = make_executor(args.workers, args.scheduler)
+    _say(f"running tasks on {executor.name}; finished tasks in {out / 'tasks'} are reused")
+    ds = run_sweep(study, out, executor=executor, progress=True)
+    _say(f"wrote {out / 'results.nc'} ({ds.attrs['tasks']} tasks)")
+    for failure in ds.attrs.get("failures", []):
+        _say(f"task failed: {failure}")
+    if not args.no_plots:
+        for fig in plot_sweep(ds, out):
+            _say(f"wrote {fig}")
+    if "baseline" in ds.attrs:
+        from .compare import verdict_table
+
+        _say(f"verdicts against {ds.attrs['baseline']} (tolerance {ds.attrs['tolerance']:g}):")
+        for level, row in verdict_table(ds).items():
+            _say(f"  {level}: " + ", ".join(f"{k} {v}" for k, v in row.items()))
     _say(f"done in {time.perf_counter() - t0:.1f} s")
     return 0
 
@@ -161,7 +199,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (StudyError, _UsageError) as err:
         _say(f"beyondmf {args.command}: error: {err}")
         return EXIT_USAGE
-    except (ValueError, SolveError, MemoryError) as err:
+    except (ValueError, SolveError, MemoryError, ConnectionError) as err:
         # a level refusing the model, a failed solve, a run too big for this machine
         _say(f"beyondmf {args.command}: failed: {' '.join(str(err).split())}")
         return EXIT_FAILED
