@@ -21,7 +21,8 @@ the draw-to-draw spread largely cancels), with the delta method for the ratio of
 and the two-sided interval c ± q·√Var c, q the Student-t quantile with K − 1 degrees of freedom
 (normal for K = 1). Verdict against the tolerance τ: "holds" when the interval lies inside [−τ, τ],
 "fails" when it lies wholly outside, "undecided" when it straddles ±τ, "undefined" when X̄_b = 0
-(the relative correction does not exist, e.g. g2 of one emitter), "baseline" for the baseline itself.
+to round-off (|X̄_b| ≤ 1e-9·max(1, max|X|); the relative correction does not exist, e.g. g2 of one
+emitter), "baseline" for the baseline itself.
 """
 
 from __future__ import annotations
@@ -37,6 +38,9 @@ __all__ = ["summarize", "compare_levels", "verdict_table", "OBSERVABLES", "VERDI
 
 OBSERVABLES = ("emission_rate", "intensity", "g2", "g2_total")
 VERDICTS = ("holds", "fails", "undecided", "undefined", "baseline")
+# A baseline mean this small (relative to max(1, the largest |X|)) counts as zero: round-off, e.g. g2 of one
+# emitter, whose four-point moment vanishes only to machine precision.
+_ZERO = 1e-9
 INTERVAL = (
     "two-sided interval of the relative correction from paired differences across realizations, "
     "delta method for the ratio of means, Student-t quantile with K-1 degrees of freedom (normal for K=1); "
@@ -60,11 +64,11 @@ def _cov(x: xr.DataArray, y: xr.DataArray, k: int) -> xr.DataArray:
     return ((x - x.mean("realization")) * (y - y.mean("realization"))).sum("realization") / (k - 1)
 
 
-def _verdict(c, low, high, base_mean, tolerance: float, is_base) -> np.ndarray:
+def _verdict(c, low, high, base_mean, zero: float, tolerance: float, is_base) -> np.ndarray:
     out = np.full(np.shape(c), "undecided", dtype=object)
     out[(low >= -tolerance) & (high <= tolerance)] = "holds"
     out[(low > tolerance) | (high < -tolerance)] = "fails"
-    out[~np.isfinite(c) | (base_mean == 0)] = "undefined"
+    out[~np.isfinite(c) | (np.abs(base_mean) <= zero)] = "undefined"
     out[is_base] = "baseline"
     return out.astype(str)
 
@@ -129,7 +133,8 @@ def summarize(
         low, high = c - q * sd, c + q * sd
         order = c.dims
         verdict = _verdict(c.values, low.transpose(*order).values, high.transpose(*order).values,
-                           mb.broadcast_like(c).transpose(*order).values, tolerance,
+                           mb.broadcast_like(c).transpose(*order).values,
+                           _ZERO * max(1.0, float(np.nanmax(np.abs(x.values), initial=0.0))), tolerance,
                            is_base.broadcast_like(c).transpose(*order).values)
         out[name] = mean.assign_attrs(x.attrs)
         out[f"{name}_uncertainty"] = np.sqrt(_var(x, k) / k + samp).assign_attrs(
@@ -158,9 +163,11 @@ def summarize(
 def verdict_table(summary: xr.Dataset) -> dict[str, dict[str, str]]:
     """level → observable → the least favourable verdict over the other dimensions (time, detector).
 
-    Order of severity: fails, undecided, undefined, holds (a "holds" needs every point to hold).
+    Order of severity: fails, undecided, holds (a "holds" needs every point to hold); points where the
+    correction is undefined (a zero baseline, e.g. at t = 0 from the ground state) are skipped unless
+    every point is undefined.
     """
-    rank = {"fails": 0, "undecided": 1, "undefined": 2, "holds": 3, "baseline": 4}
+    rank = {"fails": 0, "undecided": 1, "holds": 2, "undefined": 3, "baseline": 4}
     table: dict[str, dict[str, str]] = {}
     for lv in summary["level"].values:
         row = {}
