@@ -66,8 +66,11 @@ def _slices(s: xr.Dataset, dims: list[str]) -> list[tuple[dict, str]]:
     if not dims:
         return [({}, "")]
     combos = np.array(np.meshgrid(*[s[d].values for d in dims], indexing="ij")).reshape(len(dims), -1).T
-    return [(dict(zip(dims, c, strict=True)), ", " + ", ".join(f"{d}={v:g}" for d, v in zip(dims, c, strict=True)))
-            for c in combos]
+    out = []
+    for c in combos:
+        pairs = list(zip(dims, c, strict=True))
+        out.append((dict(pairs), ", " + ", ".join(f"{d}={v:g}" for d, v in pairs)))
+    return out
 
 
 def _values_figure(s: xr.Dataset, path: Path) -> Path:
@@ -129,7 +132,8 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
         ax.set_title(f"correction of {_title(name, det)}", fontsize=9)
     if others:
         axes[0][0].legend(fontsize=8, title=f"vs {base}", title_fontsize=8)
-    fig.suptitle(f"relative corrections, {s.attrs['confidence']:.0%} intervals, tolerance ±{tol:g}", fontsize=10)
+    fig.suptitle(f"relative corrections, {s.attrs['confidence']:.0%} intervals, tolerance ±{tol:g}",
+                 fontsize=10)
     return _save(fig, path)
 
 
