@@ -1,0 +1,169 @@
+"""Level "exact" against outside references: the one-emitter steady state, scipy's expm of an
+independently built Liouvillian, the coupled-dipole linear solution, and its refusals."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.linalg
+
+import beyondmf as bm
+from beyondmf import Model
+from beyondmf.levels import Probes
+
+SM = np.array([[0, 1], [0, 0]], dtype=complex)  # σ⁻ = |g⟩⟨e| in the basis (g, e)
+
+
+def site_op(op, j, n):
+    """op on emitter j of n (Kronecker product, emitter 0 the most significant factor)."""
+    out = np.ones((1, 1), dtype=complex)
+    for k in range(n):
+        out = np.kron(out, op if k == j else np.eye(2))
+    return out
+
+
+def dense_liouvillian(model: Model) -> np.ndarray:
+    """L with vec(dρ/dt) = L vec(ρ) (row-major vec), straight from conventions.md's master equation."""
+    n = model.n
+    sm = [site_op(SM, j, n) for j in range(n)]
+    sp = [s.conj().T for s in sm]
+    om = model.rabi_sites
+    h = sum(-model.detuning * sp[i] @ sm[i] + 0.5 * (om[i] * sp[i] + np.conj(om[i]) * sm[i])
+            for i in range(n))
+    h = h + sum(model.J[i, j] * sp[i] @ sm[j] for i in range(n) for j in range(n) if i != j)
+    eye = np.eye(2**n)
+    # row-major vec: vec(AρB) = (A ⊗ Bᵀ) vec(ρ)
+    lv = -1j * (np.kron(h, eye) - np.kron(eye, h.T))
+    for i in range(n):
+        for j in range(n):
+            g = model.Gamma[i, j]
+            a = sp[i] @ sm[j]
+            lv += g * (np.kron(sm[j], sp[i].T) - 0.5 * np.kron(a, eye) - 0.5 * np.kron(eye, a.T))
+    return lv
+
+
+def product_rho(bloch):
+    rho = np.ones((1, 1), dtype=complex)
+    for sx, sy, sz in bloch:
+        b = (sx - 1j * sy) / 2
+        rho = np.kron(rho, np.array([[(1 - sz) / 2, np.conj(b)], [b, (1 + sz) / 2]]))
+    return rho
+
+
+def test_one_emitter_steady_state_and_antibunching():
+    """ρ_ee = (s/2)/(1 + s), s = 2Ω²/(1 + 4Δ²) (D. A. Steck, Quantum and Atom Optics, resonance
+    fluorescence; R. Loudon, The Quantum Theory of Light (2000)) and g2 = 0 (H. J. Kimble, M. Dagenais,
+    L. Mandel, Phys. Rev. Lett. 39, 691 (1977))."""
+    for rabi, det in [(1.0, 0.0), (0.7, 0.8), (3.0, -1.5)]:
+        m = Model(positions=np.zeros((1, 3)), rabi=rabi, detuning=det)
+        ds = bm.steady(m, "exact")
+        s = 2 * rabi**2 / (1 + 4 * det**2)
+        assert ds.excited.values[0] == pytest.approx((s / 2) / (1 + s), abs=1e-12)
+        assert ds.attrs["residual"] < 1e-12
+        assert abs(ds.g2_total.values) < 1e-12
+        assert np.all(np.abs(ds.g2.values) < 1e-12)
+
+
+def cluster(n=3, **kw):
+    pos = np.array([[0, 0, 0], [0.21, 0, 0], [0.05, 0.27, 0.1], [0.3, 0.2, -0.15]])[:n]
+    return Model(positions=pos, **kw)
+
+
+def test_evolution_matches_expm_of_dense_liouvillian():
+    """ρ(t) = expm(L t) ρ(0) with L built independently from the Kronecker form of the master equation
+    (scipy.linalg.expm as the independent integrator: references.md, general-purpose libraries)."""
+    m = cluster(3, rabi=1.2, detuning=0.3)
+    bloch = np.array([[0.6, 0.0, 0.8], [0.0, -1.0, 0.0], [0.0, 0.0, -0.5]])  # one mixed emitter
+    times = np.array([0.0, 0.7, 2.0])
+    detectors = {"forward": (0, 0, 1), "side": (1, 0.3, 0)}
+    ds = bm.evolve(m, "exact", times, initial=bloch, detectors=detectors, rtol=1e-10, atol=1e-12)
+    lv = dense_liouvillian(m)
+    n = m.n
+    sm = [site_op(SM, j, n) for j in range(n)]
+    sp = [s.conj().T for s in sm]
+    r_op = sum(m.Gamma[i, j] * sp[i] @ sm[j] for i in range(n) for j in range(n))
+    r4_op = sum(
+        m.Gamma[i, j] * m.Gamma[k, l] * sp[i] @ sp[k] @ sm[l] @ sm[j]
+        for i in range(n) for j in range(n) for k in range(n) for l in range(n)
+    )
+    probes = Probes.build(m, detectors)
+    for ti, t in enumerate(times):
+        rho = (scipy.linalg.expm(lv * t) @ product_rho(bloch).reshape(-1)).reshape(2**n, 2**n)
+        exc = [np.trace(sp[i] @ sm[i] @ rho).real for i in range(n)]
+        coh = [np.trace(sm[i] @ rho) for i in range(n)]
+        np.testing.assert_allclose(ds.excited.values[ti], exc, atol=1e-8)
+        np.testing.assert_allclose(ds.coherence.values[ti], coh, atol=1e-8)
+        rate = np.trace(r_op @ rho).real
+        assert ds.emission_rate.values[ti] == pytest.approx(rate, abs=1e-8)
+        assert ds.g2_total.values[ti] * rate**2 == pytest.approx(np.trace(r4_op @ rho).real, abs=1e-8)
+        for d in range(2):
+            e = sum(probes.weights[d, j] * sm[j] for j in range(n))
+            f2 = np.trace(e.conj().T @ e @ rho).real
+            f4 = np.trace(e.conj().T @ e.conj().T @ e @ e @ rho).real
+            pref = bm.observables.detector_prefactor(m, probes)[d]
+            assert ds.intensity.values[ti, d] == pytest.approx(pref * f2, abs=1e-8)
+            if ti > 0:
+                assert ds.g2.values[ti, d] == pytest.approx(f4 / f2**2, rel=1e-6)
+
+
+def test_steady_state_is_null_vector_of_dense_liouvillian():
+    """scipy.linalg.null_space of the independently built L (references.md, general-purpose libraries)."""
+    m = cluster(3, rabi=0.9, detuning=-0.4)
+    ns = scipy.linalg.null_space(dense_liouvillian(m))
+    assert ns.shape[1] == 1
+    rho = ns[:, 0].reshape(8, 8)
+    rho = rho / np.trace(rho)
+    exc = [np.trace(site_op(SM.conj().T @ SM, i, 3) @ rho).real for i in range(3)]
+    ds = bm.steady(m, "exact")
+    np.testing.assert_allclose(ds.excited.values, exc, atol=1e-10)
+    assert ds.attrs["stationary_dimension"] == 1
+
+
+def test_weak_drive_matches_coupled_dipoles():
+    """To first order in Ω, β solves 0 = (iΔ − ½)β_i − (i/2)Ω_i − (i/2)Σ_{j≠i}(2J_ij − iΓ_ij)β_j
+    (J. Ruostekoski and J. Javanainen, Phys. Rev. A 55, 513 (1997); statement from memory)."""
+    m = cluster(4, rabi=1e-3, detuning=0.5)
+    off = m.J * 2 - 1j * m.Gamma
+    np.fill_diagonal(off, 0)
+    a = (1j * m.detuning - 0.5) * np.eye(m.n) - 0.5j * off
+    beta = np.linalg.solve(a, 0.5j * m.rabi_sites)
+    ds = bm.steady(m, "exact")
+    # relative corrections are O(Ω²) = 1e-6
+    np.testing.assert_allclose(ds.coherence.values, beta, rtol=1e-4)
+
+
+def test_custom_couplings_any_model():
+    """A custom Hermitian J / PSD Γ with complex entries runs and keeps ρ physical (trace 1 at all times:
+    common practice)."""
+    rng = np.random.default_rng(3)
+    a = rng.normal(size=(3, 3)) + 1j * rng.normal(size=(3, 3))
+    g = a @ a.conj().T
+    d = np.sqrt(np.real(np.diag(g)))
+    g = g / np.outer(d, d)
+    j = 0.3 * (a + a.conj().T)
+    np.fill_diagonal(j, 0)
+    m = Model(positions=np.eye(3), coupling=(j, g), rabi=1.0)
+    ds = bm.evolve(m, "exact", [0, 1, 2], initial="excited")
+    assert np.all(np.isfinite(ds.g2_total.values[1:]))
+    ref = dense_liouvillian(m)
+    rho = (scipy.linalg.expm(ref * 2) @ product_rho(np.tile([0, 0, 1.0], (3, 1))).reshape(-1)).reshape(8, 8)
+    exc = [np.trace(site_op(SM.conj().T @ SM, i, 3) @ rho).real for i in range(3)]
+    np.testing.assert_allclose(ds.excited.values[-1], exc, atol=1e-6)
+
+
+def test_refuses_non_unique_steady_state():
+    """An all-to-all cluster under a uniform drive keeps its non-symmetric (dark) states: the stationary
+    space of 4 emitters has sectors J = 2 (1), J = 1 (multiplicity 3, 3² = 9) and J = 0 (multiplicity 2,
+    2² = 4): dimension 14 (angular-momentum addition: common practice)."""
+    m = Model(positions=np.zeros((4, 3)), coupling="all-to-all", rabi=1.0)
+    with pytest.raises(ValueError, match=r"not unique.*14-dimensional.*dicke"):
+        bm.steady(m, "exact")
+
+
+def test_refuses_above_memory(monkeypatch):
+    """The memory need is checked before anything is allocated."""
+    # 8 emitters need ~60 MiB; pretend only 16 MiB are free
+    monkeypatch.setattr(bm.memory, "available_bytes", lambda: 2**24)
+    m = Model(positions=np.arange(24).reshape(8, 3) * 1.0, rabi=1.0)
+    with pytest.raises(MemoryError, match="exact density matrix of 8 emitters"):
+        bm.evolve(m, "exact", [0, 1])
