@@ -1,0 +1,268 @@
+"""Level "cumulant2": second-order cumulant expansion (all one- and two-emitter moments are dynamical).
+
+Variables, with β_i = ⟨σ_i⁻⟩, n_i = ⟨σ_i⁺σ_i⁻⟩ and, for i ≠ j,
+
+    A_ij = ⟨σ_i⁺σ_j⁻⟩ (Hermitian),  B_ij = ⟨σ_i⁻σ_j⁻⟩ (symmetric),
+    Z_ij = ⟨n_i σ_j⁻⟩ (general),    D_ij = ⟨n_i n_j⟩ (real symmetric).
+
+Products on one emitter are reduced exactly by the spin-½ algebra; three-emitter moments are factorised
+with a vanishing third cumulant, ⟨XYW⟩ ≈ ⟨XY⟩⟨W⟩ + ⟨XW⟩⟨Y⟩ + ⟨YW⟩⟨X⟩ − 2⟨X⟩⟨Y⟩⟨W⟩. With K = ½Γ + iJ
+(K_ii = 0), u = Kβ, p_a = Σ_j K_aj A_aj, r_a = Σ_j K_aj Z_aj and the "all but b" sums ũ_ab = u_a − K_ab β_b,
+p̃_ab = p_a − K_ab A_ab, r̃_ab = r_a − K_ab Z_ab, Y_ab = 2(Z_ab − 2n_aβ_b), the equations (derived in
+docs/cumulant2.md from conventions.md) are
+
+    dβ_a/dt = (iΔ − ½)β_a + (i/2)Ω_a(2n_a − 1) + 2r_a − u_a
+    dn_a/dt = −n_a − Im(Ω_a*β_a) − 2 Re p_a
+    dB/dt  = (2iΔ − 1)B + C + Cᵀ,
+        C_ab = (i/2)Ω_a(2Z_ab − β_b) + Y_ab ũ_ab + 2β_b r̃_ab + (2n_a − 1)(KB)_ab
+    dA/dt  = M + M†,
+        M_ab = −½A_ab − (i/2)Ω_a*(2Z_ab − β_b) + K_ab*(2D_ab − n_b)
+               + Y_ab ũ_ab* + 2β_b r̃_ab* + (2n_a − 1)(K*A)_ab
+    dZ_ab/dt = (iΔ − 3/2)Z_ab − (i/2)Ω_a A_ab + (i/2)Ω_a* B_ab + (i/2)Ω_b(2D_ab − n_a) − K_ab* Z_ba
+               − 2β_b Re p̃_ab − β_a(K*A)_ab − β_a*(KB)_ab − (B_ab − 2β_aβ_b)ũ_ab* − (A_ab − 2β_a*β_b)ũ_ab
+               + 2(D_ab − 2n_a n_b)ũ_ba + (2n_b − 1)(ZKᵀ)_ab + 2n_a r̃_ba
+    dD/dt  = −2D + E + Eᵀ,
+        E_ab = −Im(Ω_a* Z_ba) − 2 Re[n_b p̃_ab + (Z_ba* − 2β_a* n_b)ũ_ab + β_a*(ZKᵀ)_ba]
+
+The three matrix products K*A, KB and ZKᵀ carry the O(N³) cost (12 real N³ products, 24N³ flops per
+evaluation); everything else is O(N²). The state is one real (5, N, N) array: A packed as Re A + Im A
+(its symmetric and antisymmetric parts), B as triu(Re B) + tril(Im B), Re Z, Im Z and D, with n, Re β
+and Im β on the otherwise unused diagonals (see `unpack`): 5N² numbers, O(N²) memory.
+
+Method: H. Kramer and H. Ritsch, Eur. Phys. J. D 69, 282 (2015); F. Robicheaux and D. A. Suresh,
+Phys. Rev. A 104, 023702 (2021). Exact for N = 2 (no three-emitter moments exist). Trustworthy where
+three-body correlations are weak: moderate densities and drives; in dense, strongly driven clouds the
+truncation can produce unphysical moments, reported per time in the diagnostics ``population_violation``,
+``pair_violation`` and ``g2_violation`` (a warning is raised above `VIOLATION_TOL`).
+"""
+
+from __future__ import annotations
+
+import functools
+import warnings
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from ..estimators_pair import pair_field_moments, pair_rate_moments
+from ..integrate import ODE_OPTIONS, pick_solver, settle, solve
+from ..memory import require
+from ..model import Envelope, Model
+from .base import Level, Moments, Probes, register
+
+__all__ = ["Cumulant2", "cumulant2_rhs", "cumulant2_args", "product_state", "unpack", "pack",
+           "VIOLATION_TOL", "RHS_FLOPS"]
+
+VIOLATION_TOL = 1e-3  # diagnostics above this (probability units) raise a warning
+
+
+def RHS_FLOPS(n: int) -> float:
+    """Floating-point operations of the matrix products in one right-hand-side evaluation (24 N³)."""
+    return 24.0 * n**3
+
+
+def _zero_diag(x):
+    idx = jnp.arange(x.shape[-1])
+    return x.at[..., idx, idx].set(0)
+
+
+def unpack(y):
+    """Real (5, N, N) state → β, n, and the pair moments A, B, Z (complex) and D (real), zero diagonals.
+
+    Layout: y[0] = Re A + Im A with n on its diagonal, y[1] = triu(Re B) + tril(Im B), y[2] = Re Z and
+    y[3] = Im Z with Re β and Im β on their diagonals, y[4] = D.
+    """
+    idx = jnp.arange(y.shape[-1])
+    n = y[0, idx, idx]
+    beta = y[2, idx, idx] + 1j * y[3, idx, idx]
+    ra, pb, zr, zi, d = _zero_diag(y)
+    ar, ai = 0.5 * (ra + ra.T), 0.5 * (ra - ra.T)
+    bu, bl = jnp.triu(pb, 1), jnp.tril(pb, -1)
+    return beta, n, ar + 1j * ai, (bu + bu.T) + 1j * (bl + bl.T), zr + 1j * zi, d
+
+
+def pack(beta, n, A, B, Z, D):
+    """Inverse of `unpack`, for Hermitian A and symmetric B and D (their diagonals are ignored)."""
+    packed_b = jnp.triu(B.real, 1) + jnp.tril(B.imag, -1)
+    y = _zero_diag(jnp.stack([A.real + A.imag, packed_b, Z.real, Z.imag, D]))
+    idx = jnp.arange(y.shape[-1])
+    return y.at[0, idx, idx].set(n).at[2, idx, idx].set(beta.real).at[3, idx, idx].set(beta.imag)
+
+
+def product_state(initial: np.ndarray) -> jnp.ndarray:
+    """(N, 3) Bloch vectors of a product state → the cumulant2 state (see `unpack` for the layout)."""
+    s = np.asarray(initial, dtype=float)
+    beta = (s[:, 0] - 1j * s[:, 1]) / 2
+    n = (1 + s[:, 2]) / 2
+    A = np.conj(beta)[:, None] * beta[None, :]
+    B = beta[:, None] * beta[None, :]
+    Z = n[:, None] * beta[None, :]
+    D = n[:, None] * n[None, :]
+    return pack(*(jnp.asarray(x) for x in (beta, n, A, B, Z, D)))
+
+
+def cumulant2_args(model: Model) -> dict[str, Any]:
+    """K = ½Γ + iJ (zero diagonal) as real and imaginary parts, the drive and the detuning."""
+    K = 0.5 * np.asarray(model.Gamma) + 1j * np.asarray(model.J)
+    np.fill_diagonal(K, 0)
+    om = model.rabi_sites
+    return {
+        "Kr": jnp.asarray(K.real),
+        "Ki": jnp.asarray(K.imag),
+        "omega": jnp.asarray(np.stack([om.real, om.imag])),
+        "detuning": jnp.asarray(model.detuning),
+    }
+
+
+def cumulant2_rhs(envelope: Envelope):
+    """The cumulant2 right-hand side for one envelope (cached so equal envelopes share a compile)."""
+    return _rhs_for(envelope)
+
+
+@functools.lru_cache(maxsize=64)
+def _rhs_for(envelope: Envelope):
+    def rhs(t, y, args):
+        beta, n, A, B, Z, D = unpack(y)
+        Kr, Ki = args["Kr"], args["Ki"]
+        K = Kr + 1j * Ki
+        om = envelope(t) * (args["omega"][0] + 1j * args["omega"][1])
+        det = args["detuning"]
+
+        # the O(N³) part: K*A, KB and ZKᵀ as real products, batched
+        X = jnp.stack([A.real, A.imag, B.real, B.imag])
+        KrX, KiX = Kr @ X, Ki @ X
+        KcA = (KrX[0] + KiX[1]) + 1j * (KrX[1] - KiX[0])
+        KB = (KrX[2] - KiX[3]) + 1j * (KrX[3] + KiX[2])
+        Zs = jnp.stack([Z.real, Z.imag])
+        ZKr, ZKi = Zs @ Kr.T, Zs @ Ki.T
+        ZKt = (ZKr[0] - ZKi[1]) + 1j * (ZKr[1] + ZKi[0])
+
+        u = K @ beta
+        p = jnp.sum(K * A, axis=1)
+        r = jnp.sum(K * Z, axis=1)
+        ut = u[:, None] - K * beta[None, :]  # ũ_ab: Σ_{j≠a,b} K_aj β_j
+        pt = p[:, None] - K * A
+        rt = r[:, None] - K * Z
+        nn, bb = n[:, None], beta[None, :]
+        Y = 2 * (Z - 2 * nn * bb)
+
+        dbeta = (1j * det - 0.5) * beta + 0.5j * om * (2 * n - 1) + 2 * r - u
+        dn = -n - jnp.imag(jnp.conj(om) * beta) - 2 * jnp.real(p)
+
+        C = 0.5j * om[:, None] * (2 * Z - bb) + Y * ut + 2 * bb * rt + (2 * nn - 1) * KB
+        dB = (2j * det - 1) * B + C + C.T
+
+        M = (
+            -0.5 * A
+            - 0.5j * jnp.conj(om)[:, None] * (2 * Z - bb)
+            + jnp.conj(K) * (2 * D - n[None, :])
+            + Y * jnp.conj(ut)
+            + 2 * bb * jnp.conj(rt)
+            + (2 * nn - 1) * KcA
+        )
+        dA = M + jnp.conj(M.T)
+
+        ba = beta[:, None]
+        dZ = (
+            (1j * det - 1.5) * Z
+            - 0.5j * om[:, None] * A
+            + 0.5j * jnp.conj(om)[:, None] * B
+            + 0.5j * om[None, :] * (2 * D - nn)
+            - jnp.conj(K) * Z.T
+            - 2 * bb * jnp.real(pt)
+            - ba * KcA
+            - jnp.conj(ba) * KB
+            - (B - 2 * ba * bb) * jnp.conj(ut)
+            - (A - 2 * jnp.conj(ba) * bb) * ut
+            + 2 * (D - 2 * nn * n[None, :]) * ut.T
+            + (2 * n[None, :] - 1) * ZKt
+            + 2 * nn * rt.T
+        )
+
+        E = -jnp.imag(jnp.conj(om)[:, None] * Z.T) - 2 * jnp.real(
+            n[None, :] * pt + (jnp.conj(Z.T) - 2 * jnp.conj(ba) * n[None, :]) * ut + jnp.conj(ba) * ZKt.T
+        )
+        dD = -2 * D + E + E.T
+
+        return pack(dbeta, dn, dA, dB, dZ, dD)
+
+    return rhs
+
+
+def _observe(y, obs_args):
+    weights, gamma = obs_args
+    beta, n, A, B, Z, D = unpack(y)
+    f2, f4 = pair_field_moments(beta, n, A, B, Z, D, weights)
+    r2, r4 = pair_rate_moments(beta, n, A, B, Z, D, gamma)
+    pop = jnp.max(jnp.maximum(n - 1, -n))
+    pair_excess = _zero_diag(jnp.abs(A) ** 2 - n[:, None] * n[None, :])
+    g2 = jnp.concatenate([f4 / f2**2, (r4 / r2**2)[None]])
+    return {
+        "excited": n,
+        "coherence": beta,
+        "field2": f2,
+        "field4": f4,
+        "rate": r2,
+        "rate4": r4,
+        "population_violation": jnp.maximum(pop, 0.0),
+        "pair_violation": jnp.maximum(jnp.max(pair_excess), 0.0),
+        "g2_violation": jnp.maximum(-jnp.min(jnp.where(jnp.isfinite(g2), g2, 0.0)), 0.0),
+    }
+
+
+_DIAGNOSTICS = {
+    "population_violation": "worst excursion of an excited population outside [0, 1]",
+    "pair_violation": "worst excess max_{i≠j}(|⟨σ_i⁺σ_j⁻⟩|² − n_i n_j), zero for a physical state",
+    "g2_violation": "most negative g2 (detectors and total light), as a positive number; zero if none",
+}
+
+
+def _moments(obs, attrs) -> Moments:
+    obs = {k: np.asarray(v) for k, v in obs.items()}
+    diagnostics = {k: (("time",), obs.pop(k)) for k in _DIAGNOSTICS}
+    worst = {k: float(np.max(v)) for k, (_, v) in diagnostics.items()}
+    bad = {k: v for k, v in worst.items() if v > VIOLATION_TOL}
+    if bad:
+        text = ", ".join(f"{k} = {v:.3g}" for k, v in bad.items())
+        warnings.warn(
+            f"cumulant2 produced unphysical moments ({text}; tolerance {VIOLATION_TOL:g}): the second-order "
+            "truncation is not trustworthy here (dense or strongly driven cloud); compare with 'exact' at "
+            "small N, or use a sampling level",
+            stacklevel=4,
+        )
+    attrs = {**attrs, **{f"max_{k}": v for k, v in worst.items()}}
+    return Moments(**obs, diagnostics=diagnostics, attrs=attrs)
+
+
+@register
+class Cumulant2(Level):
+    name = "cumulant2"
+    summary = "second-order cumulants (all pair correlations, third cumulants zero); exact for N = 2"
+    options = dict(ODE_OPTIONS)
+
+    def _prepare(self, model: Model, probes: Probes, options):
+        # 2 coupling matrices, the state (5 N²) and ~7 solver stages of it, and ~20 N² temporaries
+        require(8 * model.n**2 * (2 + 5 * 9 + 20), f"cumulant2 for {model.n} emitters")
+        solver = pick_solver(options["solver"], 5 * model.n**2, model.stiffness())
+        gamma = jnp.asarray(model.Gamma)
+        return solver, cumulant2_args(model), (jnp.asarray(probes.weights), gamma)
+
+    def evolve(self, model, times, initial, probes, seed, options) -> Moments:
+        solver, args, obs_args = self._prepare(model, probes, options)
+        obs, _, stats = solve(
+            cumulant2_rhs(model.envelope), _observe, product_state(initial), args, obs_args, times, options,
+            solver, jump_ts=model.envelope.jumps, what="cumulant2 evolution",
+        )
+        return _moments(obs, stats)
+
+    def steady(self, model, probes, seed, options) -> Moments:
+        solver, args, obs_args = self._prepare(model, probes, options)
+        y0 = product_state(np.tile([0.0, 0.0, -1.0], (model.n, 1)))
+        y, info = settle(
+            cumulant2_rhs(model.envelope), _observe, y0, args, obs_args, options, solver,
+            what="cumulant2 steady state",
+        )
+        obs = jax.tree.map(lambda a: a[None], _observe(y, obs_args))
+        return _moments(obs, {"solver": solver, **info})
