@@ -5,6 +5,7 @@ from . import dicke  # noqa: F401  (registers the level)
 from . import exact  # noqa: F401  (registers the level)
 from . import jumps  # noqa: F401  (registers the level)
 from . import meanfield  # noqa: F401  (registers the level)
+from . import twa  # noqa: F401  (registers the level)
 from .base import Level, Moments, Probes, available_levels, get_level, register
 
 __all__ = ["Level", "Moments", "Probes", "available_levels", "get_level", "register"]

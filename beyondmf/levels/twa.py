@@ -1,0 +1,364 @@
+"""Level "twa": discrete truncated Wigner sampling of driven, collectively decaying spins ½.
+
+Each sample is a classical spin s_i = (x_i, y_i, z_i) per emitter. Initial samples come from the discrete
+Wigner function of the initial product state (W. K. Wootters, Ann. Phys. 176, 1 (1987); its use as a
+truncated Wigner sampler: J. Schachenmayer, A. Pikovski, A. M. Rey, Phys. Rev. X 5, 011022 (2015)): along
+the Bloch direction u the component is ±1 with probabilities (1 ± |s|)/2, the two transverse components
+are ±1 with equal probability. Each sample then obeys the Itô equations (derivation: docs/twa.md)
+
+    dβ_i = [(iΔ − ½Γ_ii)β_i + (i/2)Ω_i(t) z_i + z_i φ_i] dt + z_i dη_i,     β_i = (x_i − i y_i)/2
+    dz_i = [−Γ_ii(1 + z_i) − 2 Im(Ω_i* β_i) − 4 Re(β_i* φ_i)] dt,
+    φ_i = Σ_{j≠i} (iJ_ij + ½Γ_ij) β_j,        ⟨dη_i dη_j*⟩ = ½ Γ_ij dt,  ⟨dη_i dη_j⟩ = 0,
+
+i.e. the mean-field drift (the Weyl symbol of the Heisenberg equations, as in level "meanfield") with the
+vacuum noise of the quantum Langevin equations (C. W. Gardiner, M. J. Collett, Phys. Rev. A 31, 3761
+(1985)) kept on the transverse components only. The noise amplitude z_i has no noise of its own, so the
+Itô and Stratonovich readings coincide and the stochastic Heun scheme used here converges to it.
+
+Why this form: it is exact for the means of one emitter; it keeps the undriven ground state dark for any
+Γ (with z = −1 the transverse part is an Ornstein–Uhlenbeck process of drift −½Γ and noise Γ, whose
+stationary covariance is the ground state's, the identity); the noise z_i dη_i seeds the superradiant
+burst of an inverted cloud. Trustworthy for collective decay from strong inversion, for driven clouds at
+moderate to strong drive and at weak drive (linear optics is exact in the mean); it is an approximation
+of pair and higher correlations in small dense clusters (error table in docs/twa.md).
+"""
+
+from __future__ import annotations
+
+import functools
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from ..estimators import product_field_moments, product_rate_moments
+from ..integrate import SolveError
+from ..memory import require
+from ..model import Envelope, Model
+from .base import Level, Moments, Probes, register
+
+__all__ = ["TruncatedWigner", "noise_factor", "sample_initial", "twa_drift"]
+
+# A spin component beyond this is a diverged sample (the exact dynamics keeps |s| ≤ √3 initially and
+# the sampled spins stay of order one).
+DIVERGED = 1e3
+# Memory budget of one chunk of samples; fixed (not taken from free memory) so that the chunking, and
+# hence the rounding of the sums, is the same in every run with the same options.
+CHUNK_BYTES = 1 << 30
+
+
+def noise_factor(gamma: np.ndarray, tol: float = 1e-8) -> np.ndarray:
+    """B with Γ = B Bᵀ, from the eigendecomposition of the real symmetric Γ.
+
+    Eigenvalues in [−tol·max|λ|, 0) are rounding and are set to zero; a more negative one means Γ is not
+    positive semi-definite, and that is an error.
+    """
+    g = 0.5 * (gamma + gamma.T)
+    lam, vec = np.linalg.eigh(g)
+    floor = -tol * max(1.0, float(np.max(np.abs(lam))))
+    if lam.min() < floor:
+        raise ValueError(
+            f"the decay matrix Γ has a negative eigenvalue {lam.min():.3g}: it must be positive "
+            "semi-definite (check custom couplings)"
+        )
+    return vec * np.sqrt(np.clip(lam, 0.0, None))
+
+
+def _sample_keys(seed: int, start: int, count: int):
+    base = jax.random.PRNGKey(seed)
+    return jax.vmap(lambda k: jax.random.fold_in(base, k))(jnp.arange(start, start + count))
+
+
+@jax.jit
+def sample_initial(bloch, keys):
+    """Discrete-Wigner samples of the product state with Bloch vectors ``bloch`` (N, 3).
+
+    Returns (N, 3, S) spins: component ±1 along u = s/|s| with probabilities (1 ± |s|)/2 (the mixture of
+    the two pure states along ±u, each a uniform draw over its four phase-space points), ±1 with equal
+    probability along two unit vectors e1, e2 orthogonal to u.
+    """
+    r = jnp.linalg.norm(bloch, axis=1)
+    u = jnp.where(r[:, None] > 0, bloch / jnp.where(r > 0, r, 1.0)[:, None], jnp.array([0.0, 0.0, 1.0]))
+    # e1: u × (the coordinate axis least aligned with u), normalised; e2 = u × e1
+    axis = jnp.eye(3)[jnp.argmin(jnp.abs(u), axis=1)]
+    e1 = jnp.cross(u, axis)
+    e1 = e1 / jnp.linalg.norm(e1, axis=1, keepdims=True)
+    e2 = jnp.cross(u, e1)
+
+    def one(key):
+        k1, k2 = jax.random.split(key)
+        par = jnp.where(jax.random.uniform(k1, r.shape) < (1 + r) / 2, 1.0, -1.0)
+        tr = jax.random.rademacher(k2, (2,) + r.shape, dtype=float)
+        return par[:, None] * u + tr[0][:, None] * e1 + tr[1][:, None] * e2
+
+    return jnp.moveaxis(jax.vmap(one)(keys), 0, 2)
+
+
+def twa_drift(envelope: Envelope):
+    """The batched drift f(t, Y, args) for one envelope (cached: equal envelopes share a compile).
+
+    Y is (N, 3S): columns [x (S) | y (S) | z (S)]. One dense product [J; Γ] (2N × N) · [x | y] (N × 2S).
+    """
+    return _drift_for(envelope)
+
+
+@functools.lru_cache(maxsize=64)
+def _drift_for(envelope: Envelope):
+    def drift(t, Y, args):
+        S = Y.shape[1] // 3
+        x, y, z = Y[:, :S], Y[:, S : 2 * S], Y[:, 2 * S :]
+        n = x.shape[0]
+        K = args["JG"] @ Y[:, : 2 * S]
+        jx, jy, gx, gy = K[:n, :S], K[:n, S:], K[n:, :S], K[n:, S:]
+        gd = args["gdiag"]
+        br, bi = 0.5 * x, -0.5 * y
+        # φ = Σ_{j≠i}(iJ_ij + ½Γ_ij)β_j with Jβ = (jx − i jy)/2, Γβ = (gx − i gy)/2
+        phr = 0.5 * jy + 0.25 * (gx - gd * x)
+        phi = 0.5 * jx - 0.25 * (gy - gd * y)
+        env = envelope(t)
+        orr, ori = env * args["omega"][0][:, None], env * args["omega"][1][:, None]
+        det = args["detuning"]
+        dbr = -det * bi - 0.5 * gd * br - 0.5 * ori * z + z * phr
+        dbi = det * br - 0.5 * gd * bi + 0.5 * orr * z + z * phi
+        dz = -gd * (1 + z) - 2 * (orr * bi - ori * br) - 4 * (br * phr + bi * phi)
+        return jnp.concatenate([2 * dbr, -2 * dbi, dz], axis=1)
+
+    return drift
+
+
+def _per_sample(Y, weights, gamma):
+    """Per-sample estimators (S leading): the product-state sums with the samples' symbols.
+
+    A sample's symbols σ_j⁻ → β_j = (x_j − i y_j)/2, σ_j⁺σ_j⁻ → n_j = (1 + z_j)/2 and σ_j⁺σ_j⁺ → 0 obey the
+    same algebra as the moments of a product state, so `estimators` gives each sample's ⟨E†E⟩,
+    ⟨E†E†EE⟩ and the Γ sums exactly (inclusion–exclusion of same-site terms), O(N²) per sample.
+    """
+    S = Y.shape[1] // 3
+    beta = 0.5 * (Y[:, :S] - 1j * Y[:, S : 2 * S])
+    n = 0.5 * (1 + Y[:, 2 * S :])
+    f2, f4 = jax.vmap(product_field_moments, in_axes=(1, 1, None))(beta, n, weights)
+    r2, r4 = jax.vmap(product_rate_moments, in_axes=(1, 1, None))(beta, n, gamma)
+    return {"excited": n.T, "coherence": beta.T, "field2": f2, "field4": f4, "rate": r2, "rate4": r4}
+
+
+def _bad(Y):
+    S = Y.shape[1] // 3
+    Y3 = Y.reshape(Y.shape[0], 3, S)
+    return ~jnp.all(jnp.isfinite(Y3), axis=(0, 1)) | (jnp.max(jnp.abs(jnp.nan_to_num(Y3, nan=0.0)), axis=(0, 1)) > DIVERGED)
+
+
+def _sums(obs, mask):
+    """Masked sums over samples of each estimator, its square and the two cross products."""
+    w = mask.astype(float)
+
+    def s(a):
+        a = jnp.where(mask.reshape((-1,) + (1,) * (a.ndim - 1)), a, 0.0)
+        return jnp.tensordot(w, a, axes=1)
+
+    out = {k: s(v) for k, v in obs.items()}
+    out.update({k + "^2": s(jnp.abs(v) ** 2) for k, v in obs.items()})
+    out["field4*field2"] = s(obs["field4"] * obs["field2"])
+    out["rate4*rate"] = s(obs["rate4"] * obs["rate"])
+    return out
+
+
+def _noise(keys, step, shape_n):
+    """(N, 2S) standard normals, drawn per sample from its own key (independent of the chunking)."""
+    z = jax.vmap(lambda k: jax.random.normal(jax.random.fold_in(k, step), (2, shape_n)))(keys)
+    return jnp.concatenate([z[:, 0, :].T, z[:, 1, :].T], axis=1)
+
+
+@functools.lru_cache(maxsize=64)
+def _runner(envelope: Envelope, steady: bool):
+    drift = twa_drift(envelope)
+
+    def step(carry, t, dt, args, keys):
+        Y, k = carry
+        S = Y.shape[1] // 3
+        dW = jnp.sqrt(dt) * _noise(keys, k, Y.shape[0])
+        inc = args["B"] @ dW  # (N, 2S): correlated increments, covariance Γ dt
+
+        def g(Yc):
+            z = Yc[:, 2 * S :]
+            return jnp.concatenate([z * inc[:, :S], z * inc[:, S:], jnp.zeros_like(z)], axis=1)
+
+        f0, g0 = drift(t, Y, args), g(Y)
+        Y1 = Y + dt * f0 + g0
+        Yn = Y + 0.5 * dt * (f0 + drift(t + dt, Y1, args)) + 0.5 * (g0 + g(Y1))
+        return Yn, k + 1
+
+    @jax.jit
+    def run(Y0, keys, mask, args, obs_args, t_obs, n_sub):
+        """Step from t_obs[0] through t_obs[1:], ``n_sub[k]`` Heun steps between t_obs[k] and t_obs[k+1]."""
+        weights, gamma = obs_args
+
+        def observe(Y):
+            return _per_sample(Y, weights, gamma)
+
+        def interval(carry, inp):
+            Y, k, bad, acc = carry
+            ta, tb, m = inp
+            dt = (tb - ta) / m
+
+            def body(i, c):
+                return step(c, ta + i * dt, dt, args, keys)
+
+            Y, k = jax.lax.fori_loop(0, m, body, (Y, k))
+            bad = bad | _bad(Y)
+            obs = observe(Y)
+            if steady:
+                acc = jax.tree.map(lambda a, o: a + o, acc, obs)
+                return (Y, k, bad, acc), None
+            return (Y, k, bad, acc), _sums(obs, mask)
+
+        obs0 = observe(Y0)
+        bad0 = _bad(Y0)
+        acc0 = jax.tree.map(jnp.zeros_like, obs0) if steady else 0.0
+        (Y, _, bad, acc), per_time = jax.lax.scan(
+            interval, (Y0, jnp.asarray(0), bad0, acc0), (t_obs[:-1], t_obs[1:], n_sub)
+        )
+        if steady:
+            # window average per sample (the first entry of t_obs is the start, not a window point)
+            mean = jax.tree.map(lambda a: a / t_obs[1:].shape[0], acc)
+            return jax.tree.map(lambda a: a[None], _sums(mean, mask & ~bad)), bad
+        first = _sums(obs0, mask)
+        return jax.tree.map(lambda a, b: jnp.concatenate([a[None], b]), first, per_time), bad
+
+    return run
+
+
+def _substeps(times, dt: float) -> np.ndarray:
+    """Heun steps per interval of ``times``: the fewest that keep each step at most ``dt``."""
+    return np.maximum(1, np.ceil(np.diff(np.asarray(times, dtype=float)) / dt - 1e-9)).astype(int)
+
+
+def _statistics(tot: dict[str, np.ndarray], count: int):
+    """Means, standard errors and covariances of the means from sums over ``count`` samples."""
+    means = {k: tot[k] / count for k in Moments.KEYS}
+    denom = count * max(count - 1, 1)
+    stderr = {}
+    for k in Moments.KEYS:
+        var = (tot[k + "^2"] - count * np.abs(means[k]) ** 2) / denom
+        stderr[k] = np.sqrt(np.maximum(var, 0.0))
+    cov = {
+        "field": (tot["field4*field2"] - count * means["field4"] * means["field2"]) / denom,
+        "rate": (tot["rate4*rate"] - count * means["rate4"] * means["rate"]) / denom,
+    }
+    return means, stderr, cov
+
+
+@register
+class TruncatedWigner(Level):
+    name = "twa"
+    summary = "discrete truncated Wigner sampling with Γ-correlated noise (stochastic; any N)"
+    options = {
+        "samples": 1000,
+        "dt": "auto",
+        "max_failed": 0.01,
+        "settle_time": 40.0,
+        "window": 40.0,
+        "window_points": 80,
+    }
+    stochastic = True
+
+    def check(self, model: Model) -> None:
+        if model.complex_couplings:
+            raise ValueError(
+                "level 'twa' needs real couplings J and Γ (a real dipole ê, or real custom matrices); "
+                "use a linearly polarised dipole"
+            )
+
+    def _setup(self, model: Model, probes: Probes, options: dict[str, Any]):
+        samples = options["samples"]
+        if not (isinstance(samples, int | np.integer) and samples >= 2):
+            raise ValueError(f"samples must be an integer ≥ 2, got {samples!r}")
+        frac = float(options["max_failed"])
+        if not 0 <= frac < 1:
+            raise ValueError(f"max_failed must be a fraction in [0, 1), got {options['max_failed']!r}")
+        dt = options["dt"]
+        if dt == "auto":
+            scale = max(model.stiffness(), abs(model.rabi), abs(model.detuning), 1.0)
+            dt = min(0.01, 0.05 / scale)
+        dt = float(dt)
+        if not (np.isfinite(dt) and dt > 0):
+            raise ValueError(f"dt must be a positive time step (1/Γ0) or 'auto', got {options['dt']!r}")
+        n = model.n
+        require(8 * n * n * 6, f"the coupling matrices of 'twa' for {n} emitters")
+        gamma = np.asarray(model.Gamma.real, dtype=float)
+        om = model.rabi_sites
+        args = {
+            "JG": jnp.asarray(np.concatenate([model.J.real, gamma])),
+            "B": jnp.asarray(noise_factor(gamma)),
+            "gdiag": jnp.asarray(np.diag(gamma))[:, None],
+            "omega": jnp.asarray(np.stack([om.real, om.imag])),
+            "detuning": jnp.asarray(model.detuning),
+        }
+        obs_args = (jnp.asarray(probes.weights), jnp.asarray(gamma))
+        # per sample: the state and ~10 temporaries of its size, the noise, the estimator temporaries
+        per_sample = 8 * (14 * 3 * n + 6 * n + 8 * probes.weights.shape[0] * n)
+        chunk = int(max(1, min(samples, CHUNK_BYTES // per_sample)))
+        return samples, frac, dt, chunk, args, obs_args
+
+    def _run(self, model, t_obs, n_sub, initial, seed, options, probes, steady: bool):
+        samples, frac, dt, chunk, args, obs_args = self._setup(model, probes, options)
+        run = _runner(model.envelope, steady)
+        t_obs = jnp.asarray(t_obs, dtype=float)
+        n_sub = jnp.asarray(n_sub)
+        bloch = jnp.asarray(initial, dtype=float)
+        n = model.n
+        tot, failed = None, 0
+        for start in range(0, samples, chunk):
+            count = min(chunk, samples - start)
+            require(count * (8 * (14 * 3 * n + 6 * n)), f"a chunk of {count} 'twa' samples of {n} emitters")
+            keys = _sample_keys(seed, start, count)
+            Y0 = sample_initial(bloch, jax.vmap(lambda k: jax.random.fold_in(k, 0))(keys))
+            keys = jax.vmap(lambda k: jax.random.fold_in(k, 1))(keys)  # the noise's own stream
+            Y0 = jnp.concatenate([Y0[:, 0, :], Y0[:, 1, :], Y0[:, 2, :]], axis=1)
+            mask = jnp.ones(count, dtype=bool)
+            sums, bad = run(Y0, keys, mask, args, obs_args, t_obs, n_sub)
+            nbad = int(jnp.sum(bad))
+            if nbad and not steady:  # rerun without the failed samples (same keys, same trajectories)
+                sums, _ = run(Y0, keys, ~bad, args, obs_args, t_obs, n_sub)
+            failed += nbad
+            sums = {k: np.asarray(v) for k, v in sums.items()}
+            tot = sums if tot is None else {k: tot[k] + sums[k] for k in tot}
+        if failed > frac * samples:
+            raise SolveError(
+                f"truncated Wigner: {failed} of {samples} samples diverged or became non-finite, more than "
+                f"max_failed = {frac:g} of them; use a smaller dt (now {dt:g}/Γ0) or a cloud with a larger "
+                "min_distance"
+            )
+        good = samples - failed
+        if good < 2:
+            raise SolveError(f"truncated Wigner: only {good} usable samples; raise samples")
+        means, stderr, cov = _statistics(tot, good)
+        attrs = {
+            "samples": samples,
+            "samples_failed": failed,
+            "dt": dt,
+            "steps": int(np.sum(np.asarray(n_sub))),
+            "chunk": chunk,
+            "calculus": "Ito (= Stratonovich here), stochastic Heun, fixed step",
+        }
+        return Moments(**means, stderr=stderr, cov=cov, attrs=attrs)
+
+    def evolve(self, model, times, initial, probes, seed, options) -> Moments:
+        dt = self._setup(model, probes, options)[2]
+        return self._run(model, times, _substeps(times, dt), initial, seed, options, probes, steady=False)
+
+    def steady(self, model, probes, seed, options) -> Moments:
+        """Average over samples and over ``window_points`` equally spaced times of the window
+        [settle_time, settle_time + window], starting from the ground state at t = 0."""
+        dt = self._setup(model, probes, options)[2]
+        t_settle, window, points = float(options["settle_time"]), float(options["window"]), options["window_points"]
+        if not (t_settle >= 0 and window > 0 and isinstance(points, int) and points >= 1):
+            raise ValueError("steady needs settle_time ≥ 0, window > 0 and an integer window_points ≥ 1")
+        t_obs = np.concatenate([[0.0], t_settle + window * np.arange(1, points + 1) / points])
+        n_sub = _substeps(t_obs, dt)
+        ground = np.tile([0.0, 0.0, -1.0], (model.n, 1))
+        m = self._run(model, t_obs, n_sub, ground, seed, options, probes, steady=True)
+        m.attrs.update(settle_time=t_settle, window=window, window_points=points)
+        return m
+
+
