@@ -22,7 +22,9 @@ __all__ = ["plot_sweep"]
 
 _MARK = {"holds": "✓", "fails": "✗", "undecided": "?", "undefined": "–", "baseline": ""}
 _LABEL = {"emission_rate": "emission rate P (Γ0)", "g2_total": "g2 of all light", "g2": "g2",
-          "intensity": "intensity (Γ0/sr)"}
+          "intensity": "intensity (Γ0/sr)", "emission_rate_peak": "peak rate (Γ0)",
+          "peak_time": "time of the peak (1/Γ0)", "emitted": "photons emitted"}
+_CLIP = 1.5  # relative corrections are drawn within ±150 %: beyond that the baseline has plainly failed
 
 
 def _summary(ds: xr.Dataset) -> xr.Dataset:
@@ -36,11 +38,19 @@ def _grid_dims(s: xr.Dataset) -> list[str]:
 
 
 def _panels(s: xr.Dataset) -> list[tuple[str, str | None]]:
-    """(observable, detector) pairs to draw: P, g2_total, and g2 at each detector."""
-    out = [("emission_rate", None), ("g2_total", None)]
-    if "g2" in s and "detector" in s.dims:
-        out += [("g2", str(d)) for d in s["detector"].values]
-    return [(n, d) for n, d in out if n in s]
+    """(observable, detector) pairs to draw: every compared observable, per detector where it has one."""
+    out = []
+    for name in s.data_vars:
+        if name.endswith("_uncertainty"):
+            obs = name.removesuffix("_uncertainty")
+            dets = [str(d) for d in s["detector"].values] if "detector" in s[obs].dims else [None]
+            out += [(obs, d) for d in dets]
+    return out
+
+
+def _color(s: xr.Dataset, level) -> str:
+    """One colour per level, the same in every figure of a study."""
+    return f"C{list(s['level'].values).index(level) % 10}"
 
 
 def _pick(s: xr.Dataset, name: str, det: str | None, level) -> tuple[xr.DataArray, xr.DataArray]:
@@ -82,21 +92,25 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
             v, u = _pick(s, name, det, lv)
             if "time" in v.dims:
                 t = s["time"].values
-                ax.plot(t, v, label=str(lv))
-                ax.fill_between(t, v - u, v + u, alpha=0.25)
+                ax.plot(t, v, label=str(lv), color=_color(s, lv))
+                ax.fill_between(t, v - u, v + u, alpha=0.25, color=_color(s, lv))
                 ax.set_xlabel("time (1/Γ0)")
             elif grid:
                 x = s[grid[0]].values
                 for sel, tag in _slices(s, grid[1:]):
                     ax.errorbar(x, v.sel(sel).transpose(grid[0]), yerr=u.sel(sel).transpose(grid[0]),
-                                marker="o", capsize=3, label=f"{lv}{tag}")
+                                marker="o", capsize=3, label=f"{lv}{tag}",
+                                color=_color(s, lv) if not tag else None)
                 ax.set_xlabel(s[grid[0]].attrs.get("parameter", grid[0]))
                 if np.all(x > 0) and x.max() / x.min() > 20:
                     ax.set_xscale("log")
             else:
-                ax.bar(k, float(v), yerr=float(u), capsize=4, label=str(lv))
+                ax.bar(k, float(v), yerr=float(u), capsize=4, label=str(lv), color=_color(s, lv))
                 ax.set_xticks([])
         ax.set_title(_title(name, det), fontsize=9)
+        vals = np.abs(s[name].values[np.isfinite(s[name].values)])
+        if name.startswith("g2") and vals.size and vals.min() > 0 and vals.max() / vals.min() > 100:
+            ax.set_yscale("log")
     axes[0][0].legend(fontsize=8, title="level", title_fontsize=8)
     fig.suptitle(s.attrs.get("title", ""), fontsize=10)
     return _save(fig, path)
@@ -124,15 +138,20 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
             else:
                 x = np.array([k])
                 ax.set_xticks(range(len(others)), [str(o) for o in others])
-            line = ax.plot(x, np.atleast_1d(c), marker="o", label=str(lv))[0]
-            ax.fill_between(x, np.atleast_1d(lo), np.atleast_1d(hi), alpha=0.25, color=line.get_color())
+            col = _color(s, lv)
+            ax.plot(x, np.clip(np.atleast_1d(c), -_CLIP, _CLIP), marker="o", label=str(lv), color=col)
+            lo_c, hi_c = (np.clip(np.atleast_1d(a), -_CLIP, _CLIP) for a in (lo, hi))
+            ax.fill_between(x, lo_c, hi_c,
+                            alpha=0.25, color=col)
         for y in (-tol, tol):
             ax.axhline(y, color="k", ls=":", lw=1)
         ax.axhline(0, color="k", lw=0.5)
+        ax.set_ylim(-_CLIP * 1.05, _CLIP * 1.05)
         ax.set_title(f"correction of {_title(name, det)}", fontsize=9)
     if others:
         axes[0][0].legend(fontsize=8, title=f"vs {base}", title_fontsize=8)
-    fig.suptitle(f"relative corrections, {s.attrs['confidence']:.0%} intervals, tolerance ±{tol:g}",
+    fig.suptitle(f"relative corrections (X − X_{base})/X_{base}, {s.attrs['confidence']:.0%} intervals, "
+                 f"tolerance ±{tol:g} (dotted), drawn within ±{_CLIP:g}",
                  fontsize=10)
     return _save(fig, path)
 

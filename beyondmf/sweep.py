@@ -53,6 +53,9 @@ __all__ = [
     "stack",
 ]
 
+# Observables a [compare] section may name besides the default ones; the last three exist for dynamics.
+EXTRA_OBSERVABLES = ("intensity_coherent", "intensity_incoherent", "excited_mean", "emission_rate_peak",
+                     "peak_time", "emitted")
 _SIZE_KEYS = {"gaussian": "widths", "ellipsoid": "semi_axes", "box": "sides"}
 _RANDOM = tuple(_SIZE_KEYS)
 # Paths whose value is derived into another parameter before the study is validated.
@@ -122,13 +125,13 @@ def stack(
     to ``excited_mean`` (mean population) because N may differ across the grid. A failed task (its
     level refused the model, or the solve failed) gives NaN and its message in ``failures``.
     """
-    names = list(dict.fromkeys([*SCALAR_VARIABLES, *observables]))
     template = next((results[task_key(t)] for t in index.values()
                      if results[task_key(t)].attrs.get("task_status", "done") == "done"
                      and "emission_rate" in results[task_key(t)]), None)
     if template is None:
         msgs = {results[task_key(t)].attrs.get("error", "") for t in index.values()}
         raise ValueError("every task failed: " + "; ".join(sorted(msgs)))
+    names = list(dict.fromkeys([*SCALAR_VARIABLES, *(o for o in observables if o in template)]))
     stochastic = any(f"{n}_stderr" in results[task_key(t)] for t in index.values() for n in names)
     if stochastic:
         names += [f"{n}_stderr" for n in names]
@@ -158,7 +161,33 @@ def stack(
     for n in names:
         out[n].attrs = dict(template[n.removesuffix("_stderr")].attrs)
     out["excited_mean"].attrs.update(long_name="mean excited population over emitters")
+    if "time" in out.dims:
+        out = out.assign(_burst_observables(out))
     out.attrs["failures"] = failures
+    return out
+
+
+def _burst_observables(ds: xr.Dataset) -> dict[str, xr.DataArray]:
+    """Scalars of a dynamics run: peak rate, its time, and photons emitted in the window.
+
+    emission_rate_peak = max_t P(t) (its error: the sampling error at the peak's time),
+    peak_time = argmax_t P(t) (on the saved time grid), emitted = ∫P dt (trapezoid rule; its error
+    ∫σ_P dt, an upper bound since errors at neighbouring times are correlated).
+    """
+    p = ds["emission_rate"]
+    valid = p.notnull().all("time")
+    at = p.fillna(-np.inf).argmax("time")
+    out = {
+        "emission_rate_peak": p.max("time").assign_attrs(units="photons per 1/Γ0",
+                                                         long_name="peak emission rate max_t P(t)"),
+        "peak_time": ds["time"][at].drop_vars("time").where(valid).assign_attrs(
+            units="1/Γ0", long_name="time of the peak emission rate"),
+        "emitted": p.integrate("time").assign_attrs(units="photons", long_name="photons emitted, ∫P dt"),
+    }
+    if "emission_rate_stderr" in ds:
+        se = ds["emission_rate_stderr"]
+        out["emission_rate_peak_stderr"] = se.isel(time=at).drop_vars("time")
+        out["emitted_stderr"] = se.integrate("time")
     return out
 
 
@@ -258,7 +287,7 @@ def _parse_compare(value, where: str) -> CompareSpec:
     if isinstance(conf, bool) or not isinstance(conf, int | float) or not (0 < conf < 1):
         raise _fail(f"{where}.confidence", "a number between 0 and 1, e.g. 0.95", conf)
     obs = value.get("observables", list(OBSERVABLES))
-    known = (*OBSERVABLES, "intensity_coherent", "intensity_incoherent")
+    known = (*OBSERVABLES, *EXTRA_OBSERVABLES)
     if not isinstance(obs, list) or not obs or not all(o in known for o in obs):
         raise _fail(f"{where}.observables", f"a list drawn from {', '.join(known)}", obs)
     return CompareSpec(base, float(tol), float(conf), tuple(obs))
