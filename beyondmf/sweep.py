@@ -5,6 +5,7 @@ Study-file sections added here (docs/user-guide.md, "Writing a study"):
     [sweep]
     realizations = 8            # K position draws (and sampling seeds) per grid point
     seed = 0                    # base seed: draw k uses SeedSequence([seed, k]) at every grid point
+    keep = "all"                # or "last_time": keep only the late-time value of a dynamics run
     [sweep.grid]                # each key: a dotted path into the study, each value: a list
     "geometry.n" = [4, 8]
     "geometry.density" = [0.1, 1.0]   # n·λ0³: rescales the cloud, keeping its shape
@@ -118,8 +119,11 @@ def stack(
     realizations: int,
     observables: Sequence[str] = (),
     grid: Sequence[tuple[str, Sequence]] = (),
+    last_time: bool = False,
 ) -> xr.Dataset:
     """Per-task results into one Dataset with dimensions (grid..., level, realization, time?, detector).
+
+    ``last_time`` keeps only the last saved time of a dynamics run (its late-time value).
 
     ``index`` maps (grid indices..., label, realization) to the task; per-emitter variables are reduced
     to ``excited_mean`` (mean population) because N may differ across the grid. A failed task (its
@@ -161,7 +165,9 @@ def stack(
     for n in names:
         out[n].attrs = dict(template[n.removesuffix("_stderr")].attrs)
     out["excited_mean"].attrs.update(long_name="mean excited population over emitters")
-    if "time" in out.dims:
+    if "time" in out.dims and last_time:
+        out = out.isel(time=-1)
+    elif "time" in out.dims:
         out = out.assign(_burst_observables(out))
     out.attrs["failures"] = failures
     return out
@@ -216,8 +222,8 @@ _GRID_ROOTS = ("geometry", "model", "drive", "run", "levels")
 class SweepSpec:
     """The parsed [sweep] section: grid (path → values), realizations K and base seed."""
 
-    def __init__(self, grid: dict[str, list], realizations: int, seed: int) -> None:
-        self.grid, self.realizations, self.seed = grid, realizations, seed
+    def __init__(self, grid: dict[str, list], realizations: int, seed: int, keep: str = "all") -> None:
+        self.grid, self.realizations, self.seed, self.keep = grid, realizations, seed, keep
 
     def dims(self) -> list[tuple[str, list]]:
         """(dimension name, coordinate values) per grid path: the last path component, or the whole
@@ -235,8 +241,11 @@ def _parse_sweep(value, where: str) -> SweepSpec:
     if not isinstance(value, dict):
         raise _fail(where, "a table", value)
     for k in value:
-        if k not in ("grid", "realizations", "seed"):
-            raise StudyError(f"{where}.{k}: unknown key; {where} takes grid, realizations, seed")
+        if k not in ("grid", "realizations", "seed", "keep"):
+            raise StudyError(f"{where}.{k}: unknown key; {where} takes grid, realizations, seed, keep")
+    keep = value.get("keep", "all")
+    if keep not in ("all", "last_time"):
+        raise _fail(f"{where}.keep", "'all' or 'last_time' (the late-time value of a dynamics run)", keep)
     k = value.get("realizations", 1)
     if isinstance(k, bool) or not isinstance(k, int) or k < 1:
         raise _fail(f"{where}.realizations", "a positive integer", k)
@@ -257,7 +266,7 @@ def _parse_sweep(value, where: str) -> SweepSpec:
         if len({repr(v) for v in vals}) != len(vals):
             raise _fail(key, "distinct values", vals)
         grid[path] = vals
-    return SweepSpec(grid, k, seed)
+    return SweepSpec(grid, k, seed, keep)
 
 
 class CompareSpec:
@@ -458,8 +467,8 @@ def run_sweep(
     cmp: CompareSpec | None = study.extra.get("compare")
     observables = cmp.observables if cmp else OBSERVABLES
     results = execute(list(index.values()), out, executor, progress, on_done)
-    per = stack(index, results, labels, k, observables, dims)
     spec = study.extra.get("sweep")
+    per = stack(index, results, labels, k, observables, dims, last_time=bool(spec and spec.keep == "last_time"))
     for (name, _), path in zip(dims, spec.grid if spec else [], strict=True):
         per[name].attrs.update(parameter=path)
     if "N" in per.dims or any(p["N"] for p in params.values()):
