@@ -129,6 +129,8 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
     if not args.no_plots:
         for fig in plot_sweep(ds, out):
             _say(f"wrote {fig}")
+    if "convergence" in study.extra:
+        _report_convergence(study, ds, out, not args.no_plots)
     if "baseline" in ds.attrs:
         from .compare import verdict_table
 
@@ -137,6 +139,30 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
             _say(f"  {level}: " + ", ".join(f"{k} {v}" for k, v in row.items()))
     _say(f"done in {time.perf_counter() - t0:.1f} s")
     return 0
+
+
+def _report_convergence(study, ds, out: Path, plots: bool) -> None:
+    """Write DIR/convergence.nc (a table per observable) and its figures; say whether each converged."""
+    import xarray as xr
+
+    from .convergence import figure
+    from .results import save
+    from .sweep import check_convergence
+
+    tables = check_convergence(study, ds)
+    merged = xr.Dataset({f"{obs}_{var}": t[var] for obs, t in tables.items() for var in t.data_vars})
+    merged.attrs.update(next(iter(tables.values())).attrs)
+    save(merged, out / "convergence.nc")
+    _say(f"wrote {out / 'convergence.nc'}")
+    for obs, table in tables.items():
+        state = "converged" if bool(table["converged"]) else "NOT converged"
+        _say(f"convergence of {obs} in {table.attrs['parameter']}: {state} "
+             f"(last bound {table.attrs['last_bound']:.3g}, tolerance {table.attrs['tolerance']:g})")
+        if plots:
+            path = out / f"convergence_{obs}.png"
+            fig = figure(table, obs)
+            fig.savefig(path, dpi=90)
+            _say(f"wrote {path}")
 
 
 def _cmd_levels(args) -> int:

@@ -18,6 +18,11 @@ Study-file sections added here (docs/user-guide.md, "Writing a study"):
     confidence = 0.95
     observables = ["emission_rate", "intensity", "g2", "g2_total"]
 
+    [convergence]               # a grid dimension that refines one level: has it converged?
+    dimension = "samples"
+    level = "twa"
+    tolerance = 0.05            # criterion: beyondmf.convergence
+
     [quick]                     # overrides applied with --quick (CI-sized runs), same layout as the study
     sweep = { realizations = 2 }
 
@@ -48,6 +53,7 @@ __all__ = [
     "is_sweep",
     "study_tasks",
     "run_sweep",
+    "check_convergence",
     "build_task",
     "level_table",
     "realization_seeds",
@@ -310,7 +316,50 @@ def _parse_quick(value, where: str) -> dict:
     return value
 
 
+class ConvergenceSpec:
+    """The parsed [convergence] section: which grid dimension is a refinement, for which level."""
+
+    def __init__(self, dim: str, level: str, tolerance: float, observables: tuple[str, ...]):
+        self.dim, self.level, self.tolerance, self.observables = dim, level, tolerance, observables
+
+
+def _parse_convergence(value, where: str) -> ConvergenceSpec:
+    if not isinstance(value, dict):
+        raise _fail(where, "a table", value)
+    allowed = ("dimension", "level", "tolerance", "observables")
+    for k in value:
+        if k not in allowed:
+            raise StudyError(f"{where}.{k}: unknown key; {where} takes {', '.join(allowed)}")
+    for k in ("dimension", "level"):
+        if not isinstance(value.get(k), str):
+            raise _fail(f"{where}.{k}", "a name (required)", value.get(k))
+    tol = value.get("tolerance", 0.05)
+    if isinstance(tol, bool) or not isinstance(tol, int | float) or not tol > 0:
+        raise _fail(f"{where}.tolerance", "a positive relative change, e.g. 0.05", tol)
+    obs = value.get("observables", ["emission_rate", "g2_total"])
+    if not isinstance(obs, list) or not obs or not all(isinstance(o, str) for o in obs):
+        raise _fail(f"{where}.observables", "a list of observable names", obs)
+    return ConvergenceSpec(value["dimension"], value["level"], float(tol), tuple(obs))
+
+
+def check_convergence(study: Study, ds: xr.Dataset) -> dict[str, xr.Dataset]:
+    """The [convergence] tables of a finished sweep (`beyondmf.convergence.assess_sweep`)."""
+    from .convergence import assess_sweep
+
+    spec: ConvergenceSpec = study.extra["convergence"]
+    if spec.dim not in ds.dims:
+        raise StudyError(f"convergence.dimension: {spec.dim!r} is not a grid dimension of the sweep "
+                         f"({', '.join(d for d in ds.dims)})")
+    if spec.level not in [str(v) for v in ds["level"].values]:
+        raise StudyError(f"convergence.level: {spec.level!r} is not among the study's levels")
+    missing = [o for o in spec.observables if o not in ds]
+    if missing:
+        raise StudyError(f"convergence.observables: {', '.join(missing)} not in the results")
+    return assess_sweep(ds, spec.dim, spec.level, spec.observables, spec.tolerance)
+
+
 section("sweep")(_parse_sweep)
+section("convergence")(_parse_convergence)
 section("compare")(_parse_compare)
 section("quick")(_parse_quick)
 
