@@ -112,7 +112,7 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
         if name.startswith("g2") and vals.size and vals.min() > 0 and vals.max() / vals.min() > 100:
             ax.set_yscale("log")
     axes[0][0].legend(fontsize=8, title="level", title_fontsize=8)
-    fig.suptitle(s.attrs.get("title", ""), fontsize=10)
+    fig.suptitle(s.attrs.get("title", "") + (" (quick mode)" if s.attrs.get("quick") else ""), fontsize=10)
     return _save(fig, path)
 
 
