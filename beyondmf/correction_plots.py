@@ -92,8 +92,11 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
             v, u = _pick(s, name, det, lv)
             if "time" in v.dims:
                 t = s["time"].values
-                ax.plot(t, v, label=str(lv), color=_color(s, lv))
-                ax.fill_between(t, v - u, v + u, alpha=0.25, color=_color(s, lv))
+                for sel, tag in _slices(s, grid):
+                    vv, uu = v.sel(sel).transpose("time"), u.sel(sel).transpose("time")
+                    col = _color(s, lv) if not tag else None
+                    line = ax.plot(t, vv, label=f"{lv}{tag}", color=col)[0]
+                    ax.fill_between(t, vv - uu, vv + uu, alpha=0.25, color=line.get_color())
                 ax.set_xlabel("time (1/Γ0)")
             elif grid:
                 x = s[grid[0]].values
@@ -130,6 +133,8 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
             if "time" in c.dims:
                 x = s["time"].values
                 ax.set_xlabel("time (1/Γ0)")
+                if grid:  # one grid dimension and a time axis: the curves at the grid's first value
+                    c, lo, hi = (a.isel({grid[0]: 0}) for a in (c, lo, hi))
             elif grid:
                 x = s[grid[0]].values
                 ax.set_xlabel(s[grid[0]].attrs.get("parameter", grid[0]))
@@ -167,8 +172,9 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
         for j, lv in enumerate(others):
             ax = axes[i][j]
             sel = {"level": lv} | ({"detector": det} if det else {})
-            c = s[f"{name}_correction"].sel(sel).transpose(gy, gx)
-            verdict = s[f"{name}_verdict"].sel(sel).transpose(gy, gx).values
+            c, verdict = s[f"{name}_correction"].sel(sel), s[f"{name}_verdict"].sel(sel)
+            rest = {d: -1 for d in c.dims if d not in (gx, gy)}  # time (the last), further grid dims
+            c, verdict = c.isel(rest).transpose(gy, gx), verdict.isel(rest).transpose(gy, gx).values
             lim = max(float(np.nanmax(np.abs(c.values))) if np.isfinite(c.values).any() else tol, tol)
             im = ax.imshow(c.values, origin="lower", cmap="RdBu_r", vmin=-lim, vmax=lim, aspect="auto")
             for (yi, xi), v in np.ndenumerate(verdict):
@@ -177,7 +183,8 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
             ax.set_yticks(range(s.sizes[gy]), [f"{v:g}" for v in s[gy].values], fontsize=7)
             ax.set_xlabel(s[gx].attrs.get("parameter", gx))
             ax.set_ylabel(s[gy].attrs.get("parameter", gy))
-            ax.set_title(f"{lv}: correction of {_title(name, det)}", fontsize=8)
+            at = " at the last time" if "time" in rest else ""
+            ax.set_title(f"{lv}: correction of {_title(name, det)}{at}", fontsize=8)
             fig.colorbar(im, ax=ax, shrink=0.8)
     fig.suptitle(f"against {base}: ✓ holds within ±{tol:g}, ✗ fails, ? undecided "
                  f"({s.attrs['confidence']:.0%} intervals)", fontsize=9)

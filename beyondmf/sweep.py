@@ -35,6 +35,7 @@ from __future__ import annotations
 import copy
 import itertools
 import tomllib
+import warnings
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -373,7 +374,7 @@ def _merge(base: dict, over: Mapping) -> dict:
 
 
 def read_study(path: str | Path, quick: bool = False) -> Study:
-    """Read and validate a study file; ``quick`` applies its [quick] overrides (an error if it has none)."""
+    """Read and validate a study file; ``quick`` applies its [quick] overrides (a warning if it has none)."""
     p = Path(path)
     if not p.is_file():
         raise StudyError(f"{p}: no such study file")
@@ -382,9 +383,9 @@ def read_study(path: str | Path, quick: bool = False) -> Study:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
         raise StudyError(f"not valid TOML: {err}") from None
-    if quick:
-        if "quick" not in raw:
-            raise StudyError("quick: --quick needs a [quick] table of overrides in the study file")
+    if quick and "quick" not in raw:
+        warnings.warn(f"{p}: no [quick] table; --quick runs the study unchanged", stacklevel=2)
+    elif quick:
         _parse_quick(raw["quick"], "quick")
         raw = _merge(raw, raw["quick"])
         raw.pop("quick")
@@ -517,7 +518,8 @@ def run_sweep(
     observables = cmp.observables if cmp else OBSERVABLES
     results = execute(list(index.values()), out, executor, progress, on_done)
     spec = study.extra.get("sweep")
-    per = stack(index, results, labels, k, observables, dims, last_time=bool(spec and spec.keep == "last_time"))
+    last = bool(spec and spec.keep == "last_time")
+    per = stack(index, results, labels, k, observables, dims, last_time=last)
     for (name, _), path in zip(dims, spec.grid if spec else [], strict=True):
         per[name].attrs.update(parameter=path)
     if "N" in per.dims or any(p["N"] for p in params.values()):

@@ -11,7 +11,7 @@ import beyondmf as bm
 from beyondmf.compare import compare_levels, summarize, verdict_table
 
 
-def _per_realization(values: dict[str, np.ndarray], stderr: dict[str, np.ndarray] | None = None) -> xr.Dataset:
+def _per_realization(values: dict[str, np.ndarray], stderr: dict | None = None) -> xr.Dataset:
     levels = list(values)
     data = {"emission_rate": (("level", "realization"), np.array([values[lv] for lv in levels]))}
     if stderr:

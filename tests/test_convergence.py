@@ -27,7 +27,8 @@ def test_criterion_on_constructed_series():
     x, e = _series(x.values, [0.01] * 4)
     t = assess(x, e, "samples", tolerance=0.01)
     assert not bool(t["converged"]) and "2 sqrt" in t.attrs["criterion"]
-    assert float(t["bound"][-1]) == pytest.approx(((1 / 400 - 1 / 800) + 2 * np.sqrt(2) * 0.01) / (1 + 1 / 800))
+    expected = ((1 / 400 - 1 / 800) + 2 * np.sqrt(2) * 0.01) / (1 + 1 / 800)
+    assert float(t["bound"][-1]) == pytest.approx(expected)
 
 
 def test_time_series_are_judged_by_their_sup_norm():

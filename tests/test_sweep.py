@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
+from beyondmf import load as bm_load
 from beyondmf.executors import Dask, execute
 from beyondmf.study import StudyError
 from beyondmf.sweep import _point_study, read_study, run_sweep, study_tasks
@@ -95,7 +96,8 @@ def test_damaged_task_files_are_recomputed(tmp_path):
 def test_task_keys_are_stable_across_number_spellings(tmp_path):
     a = _study(tmp_path, STUDY.replace("rabi = 1.0", "rabi = 1"))
     b = _study(tmp_path)
-    assert [task_key(t) for t in study_tasks(a)[0].values()] == [task_key(t) for t in study_tasks(b)[0].values()]
+    keys = [[task_key(t) for t in study_tasks(s)[0].values()] for s in (a, b)]
+    assert keys[0] == keys[1]
 
 
 def test_two_dask_workers_on_loopback_give_the_in_process_result(tmp_path):
@@ -154,9 +156,10 @@ def test_density_grid_on_a_lattice_is_refused(tmp_path):
         study_tasks(_study(tmp_path, text))
 
 
-def test_quick_without_a_quick_table_is_an_error(tmp_path):
-    with pytest.raises(StudyError, match="quick"):
-        _study(tmp_path, quick=True)
+def test_quick_without_a_quick_table_runs_the_study_unchanged(tmp_path):
+    with pytest.warns(UserWarning, match="no \\[quick\\] table"):
+        study = _study(tmp_path, quick=True)
+    assert study_tasks(study)[2] == 2
 
 
 def test_in_memory_execution_matches_files(tmp_path):
@@ -167,3 +170,29 @@ def test_in_memory_execution_matches_files(tmp_path):
     disk = execute(tasks, tmp_path / "o", progress=False)
     for key in mem:
         np.testing.assert_array_equal(mem[key]["emission_rate"], disk[key]["emission_rate"])
+
+
+def test_command_line_runs_a_quick_comparison_study(tmp_path, capsys):
+    from beyondmf.cli import main
+
+    text = STUDY.replace("[levels.meanfield]", '[levels.meanfield]\n[levels.cumulant2]') + (
+        '\n[compare]\ntolerance = 0.1\n[quick]\n'
+        'sweep = { realizations = 1, grid = { "drive.saturation" = [1.0] } }\n')
+    path = tmp_path / "study.toml"
+    path.write_text(text)
+    assert main(["run", str(path), "--out", str(tmp_path / "out"), "--quick"]) == 0
+    ds = bm_load(tmp_path / "out" / "results.nc")
+    assert list(ds["level"].values) == ["meanfield", "cumulant2"] and "emission_rate_verdict" in ds
+    assert (tmp_path / "out" / "correction_map.png").exists()
+    assert "verdicts against meanfield" in capsys.readouterr().err
+    assert main(["run", str(path), "--out", str(tmp_path / "o2"), "--workers", "0"]) == 2
+
+
+@pytest.mark.parametrize("quick", [False, True])
+def test_shipped_studies_parse_and_expand(quick):
+    from pathlib import Path
+
+    for path in sorted((Path(__file__).parent.parent / "studies").glob("*.toml")):
+        study = read_study(path, quick=quick)
+        index, labels, k, dims, _ = study_tasks(study)
+        assert index and labels, path
