@@ -175,7 +175,8 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
             c, verdict = s[f"{name}_correction"].sel(sel), s[f"{name}_verdict"].sel(sel)
             rest = {d: -1 for d in c.dims if d not in (gx, gy)}  # time (the last), further grid dims
             c, verdict = c.isel(rest).transpose(gy, gx), verdict.isel(rest).transpose(gy, gx).values
-            lim = max(float(np.nanmax(np.abs(c.values))) if np.isfinite(c.values).any() else tol, tol)
+            top = float(np.nanmax(np.abs(c.values))) if np.isfinite(c.values).any() else tol
+            lim = min(max(top, tol), _CLIP)
             im = ax.imshow(c.values, origin="lower", cmap="RdBu_r", vmin=-lim, vmax=lim, aspect="auto")
             for (yi, xi), v in np.ndenumerate(verdict):
                 ax.text(xi, yi, _MARK.get(str(v), ""), ha="center", va="center", fontsize=11)
