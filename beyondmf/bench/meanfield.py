@@ -10,6 +10,7 @@ bandwidths measured in the same run.
 from __future__ import annotations
 
 import resource
+import sys
 import time
 import warnings
 
@@ -41,8 +42,8 @@ RTOL, ATOL = 1e-6, 1e-8
 
 def _solve_bytes(n: int) -> float:
     """Peak memory of a mean-field solve: J and Γ (16N²), one N×N temporary of the observables (8N²),
-    and the row blocks in which the couplings are computed (~16 arrays of 1024 × N doubles)."""
-    return 24.0 * n**2 + 16 * 1024 * 8.0 * n
+    and the row blocks in which the couplings are computed (~24 arrays of 1024 × N doubles)."""
+    return 24.0 * n**2 + 24 * 1024 * 8.0 * n
 
 
 def cloud_model(n: int, width: float = WIDTH, min_distance: float = MIN_DISTANCE, seed: int = 0) -> Model:
@@ -175,13 +176,22 @@ def _big_rows() -> list[Row]:
     ]
 
 
+def _case(label: str, fn, *args) -> list[Row]:
+    """Run one case, with a line on stderr before and after (whole solves take minutes)."""
+    print(f"bench meanfield: {label} ...", file=sys.stderr, flush=True)
+    t0 = time.perf_counter()
+    rows = fn(*args)
+    print(f"bench meanfield: {label} done in {time.perf_counter() - t0:.1f} s", file=sys.stderr, flush=True)
+    return rows
+
+
 @suite("meanfield")
 def meanfield_suite(full: bool, machine: Machine) -> list[Row]:
     rows: list[Row] = []
     for n in RHS_SIZES + (RHS_SIZES_FULL if full else ()):
-        rows += _rhs_rows(n, machine)
+        rows += _case(f"rhs N={n}", _rhs_rows, n, machine)
     for n in SOLVE_SIZES:
-        rows += _solve_rows(n)
+        rows += _case(f"solve N={n}", _solve_rows, n)
     if full:
-        rows += _big_rows()
+        rows += _case(f"dynamics N={BIG_N}", _big_rows)
     return rows
