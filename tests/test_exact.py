@@ -167,3 +167,25 @@ def test_refuses_above_memory(monkeypatch):
     m = Model(positions=np.arange(24).reshape(8, 3) * 1.0, rabi=1.0)
     with pytest.raises(MemoryError, match="exact density matrix of 8 emitters"):
         bm.evolve(m, "exact", [0, 1])
+
+
+@pytest.mark.slow
+def test_settled_steady_state_above_dense_limit():
+    """N = 6 > DENSE_MAX_N: settle + Newton–GMRES from two starts agrees with a long evolution (common
+    practice: a unique steady state is the t → ∞ limit of any initial state)."""
+    pos = np.array([[0, 0, 0], [0.21, 0, 0], [0.05, 0.27, 0.1], [0.3, 0.2, -0.15], [0.1, -0.2, 0.2],
+                    [-0.2, 0.1, 0.05]])
+    m = Model(positions=pos, rabi=1.0, detuning=0.2)
+    ds = bm.steady(m, "exact")
+    ev = bm.evolve(m, "exact", [0, 200.0], rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(ds.excited.values, ev.excited.values[-1], atol=1e-7)
+    assert ds.attrs["residual"] < 1e-10
+
+
+@pytest.mark.slow
+def test_refuses_non_unique_steady_state_above_dense_limit():
+    """Six all-to-all emitters under a uniform drive: the ground state and the fully mixed state settle to
+    different states (the latter holds the non-symmetric sectors)."""
+    m = Model(positions=np.zeros((6, 3)), coupling="all-to-all", rabi=1.0)
+    with pytest.raises(ValueError, match=r"not unique.*at least 2.*dicke"):
+        bm.steady(m, "exact")

@@ -42,7 +42,7 @@ from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
 
-__all__ = ["Dicke", "dicke_rhs", "coherent_state", "symmetry_breaks"]
+__all__ = ["Dicke", "dicke_rhs", "dicke_band_rhs", "coherent_state", "symmetry_breaks"]
 
 
 def symmetry_breaks(model: Model, atol: float = 1e-10) -> list[str]:
@@ -69,14 +69,12 @@ def _ladder(n: int) -> np.ndarray:
     return np.sqrt(k * (n - k + 1.0))  # a_k, J⁻|k⟩ = a_k |k − 1⟩
 
 
-def _down_rows(x, a):
-    """J⁻x: row k takes a_{k+1} x[k + 1]."""
-    return jnp.concatenate([a[1:, None] * x[1:], jnp.zeros_like(x[:1])])
-
-
-def _up_rows(x, a):
-    """J⁺x: row k takes a_k x[k − 1]."""
-    return jnp.concatenate([jnp.zeros_like(x[:1]), a[1:, None] * x[:-1]])
+def _shift(x, dk: int, dl: int):
+    """y[k, l] = x[k + dk, l + dl], zero outside (dk, dl ∈ {−1, 0, 1})."""
+    pad = ((max(-dk, 0), max(dk, 0)), (max(-dl, 0), max(dl, 0)))
+    big = jnp.pad(x, pad)
+    m, n = x.shape
+    return jax.lax.dynamic_slice(big, (max(dk, 0), max(dl, 0)), (m, n))
 
 
 def dicke_rhs(envelope: Envelope):
@@ -87,30 +85,69 @@ def dicke_rhs(envelope: Envelope):
 @functools.lru_cache(maxsize=64)
 def _rhs_for(envelope: Envelope):
     def rhs(t, y, args):
+        # every term is elementwise on ρ_kl or a shift of it (J^± are one off-diagonal): no transposes
         rho = y[0] + 1j * y[1]
-        a = args["a"]
+        a, k = args["a"], args["k"]
+        col = a[:, None]  # a_k along rows
+        row = a[None, :]  # a_l along columns
+        a_next = jnp.append(a[1:], 0.0)  # a_{k+1}
         half_om = 0.5 * envelope(t) * args["omega"]
-        diag = -args["detuning"] * args["k"] - 0.5j * a**2
-        x = diag[:, None] * rho + half_om * _up_rows(rho, a) + jnp.conj(half_om) * _down_rows(rho, a)
-        jump = _down_rows(jnp.conj(_down_rows(rho, a).T), a)  # J⁻(ρJ⁺), ρJ⁺ = (J⁻ρ)†
-        d = -1j * (x - jnp.conj(x.T)) + jump
-        return jnp.stack([d.real, d.imag])
+        d = -args["detuning"] * k - 0.5j * a**2  # H_eff on the diagonal
+        out = -1j * (d[:, None] - jnp.conj(d)[None, :]) * rho
+        # drive: −i[½Ω J⁺ + ½Ω* J⁻, ρ]
+        om, omc = half_om, jnp.conj(half_om)
+        hd_rho = om * col * _shift(rho, -1, 0) + omc * a_next[:, None] * _shift(rho, 1, 0)
+        rho_hd = om * a_next[None, :] * _shift(rho, 0, 1) + omc * row * _shift(rho, 0, -1)
+        out = out - 1j * (hd_rho - rho_hd)
+        # (J⁻ρJ⁺)_kl = a_{k+1} a_{l+1} ρ_{k+1,l+1}
+        out = out + a_next[:, None] * a_next[None, :] * _shift(rho, 1, 1)
+        return jnp.stack([out.real, out.imag])
 
     return rhs
 
 
+def dicke_band_rhs(t, y, args):
+    """Without a drive each band ρ_{k,k−q} evolves on its own; bands q = 0, 1 carry every observable.
+
+    y = (re/im, band q = 0 | 1, k): p_k = ρ_kk and b_k = ρ_{k,k−1} (b_0 = 0):
+        dp_k/dt = −a_k² p_k + a_{k+1}² p_{k+1},
+        db_k/dt = −i(d_k − d_{k−1}*) b_k + a_{k+1} a_k b_{k+1},   d_k = −Δk − (i/2) a_k².
+    """
+    z = y[0] + 1j * y[1]
+    a, k = args["a"], args["k"]
+    d = -args["detuning"] * k - 0.5j * a**2
+    a_next = jnp.append(a[1:], 0.0)
+    nxt = jnp.concatenate([z[:, 1:], jnp.zeros_like(z[:, :1])], axis=1)  # x_{k+1}
+    d_prev = jnp.concatenate([jnp.zeros(1), d[:-1]])
+    dp = -(a**2) * z[0] + a_next**2 * nxt[0]
+    db = -1j * (d - jnp.conj(d_prev)) * z[1] + a_next * a * nxt[1]
+    out = jnp.stack([dp, db.at[0].set(0.0)])
+    return jnp.stack([out.real, out.imag])
+
+
 def _observe(y, obs_args):
+    """Moments of a full (2, N+1, N+1) state."""
+    z = y[0] + 1j * y[1]
+    sub = jnp.concatenate([jnp.zeros(1, dtype=z.dtype), jnp.diagonal(z, offset=-1)])
+    return _moments(jnp.real(jnp.diagonal(z)), sub, obs_args)
+
+
+def _observe_band(y, obs_args):
+    """Moments of a band (2, 2, N+1) state of `dicke_band_rhs`."""
+    return _moments(y[0, 0], y[0, 1] + 1j * y[1, 1], obs_args)
+
+
+def _moments(p, sub, obs_args):
+    """Moments from the populations p_k and the first sub-diagonal ρ_{k,k−1} (module docstring)."""
     weights, a, k = obs_args
     n = k.shape[0] - 1
-    rho = y[0] + 1j * y[1]
-    p = jnp.real(jnp.diagonal(rho))
     a2 = a**2
     mean_k = jnp.sum(k * p)
     rate = jnp.sum(a2 * p)
     rate4 = jnp.sum(a2 * jnp.concatenate([jnp.zeros(1), a2[:-1]]) * p)
     jkj = jnp.sum(a2 * (k - 1) * p)
     k2 = jnp.sum(k**2 * p)
-    coh = jnp.sum(a[1:] * jnp.diagonal(rho, offset=-1)) / n
+    coh = jnp.sum(a * sub) / n  # Tr(J⁻ρ) = Σ_k a_k ρ_{k,k−1}
 
     def per(count, value):  # a moment per site pattern; zero when the pattern does not exist (small N)
         return jnp.where(count > 0, value / jnp.where(count > 0, count, 1.0), 0.0)
@@ -170,14 +207,17 @@ class Dicke(Level):
                 + ". Use level 'exact' (small N) or 'jumps' for this model"
             )
 
-    def _prepare(self, model: Model, probes: Probes, options):
+    def _prepare(self, model: Model, probes: Probes, options, band: bool = False):
         n = model.n
-        size = 2 * (n + 1) ** 2
-        require(8.0 * size * 16, f"the symmetric-space density matrix of {n} emitters")
+        size = 4 * (n + 1) if band else 2 * (n + 1) ** 2
+        what = "band" if band else "density matrix"
+        require(8.0 * size * 16, f"the symmetric-space {what} of {n} emitters")
         solver = options["solver"]
         if solver == "auto":
             # the ladder's fastest rate is ~N²/4 (mid-ladder), far above model.stiffness() = N/2
-            solver = "kvaerno5" if (n * n / 4 > STIFF_RATIO and size <= IMPLICIT_MAX_SIZE) else "tsit5"
+            # (the band form is O(N) per step: many explicit steps stay cheaper than an implicit solve)
+            stiff = n * n / 4 > STIFF_RATIO and size <= IMPLICIT_MAX_SIZE and not band
+            solver = "kvaerno5" if stiff else "tsit5"
         solver = pick_solver(solver, size, 0.0)
         a = jnp.asarray(_ladder(n))
         k = jnp.arange(n + 1, dtype=float)
@@ -198,14 +238,23 @@ class Dicke(Level):
                 f"vector has length {np.linalg.norm(s[0]):.6g}. A mixed product state leaves the symmetric "
                 "space: use level 'exact' or 'jumps'"
             )
-        solver, args, obs_args = self._prepare(model, probes, options)
+        # without a drive only the bands q = 0, 1 of ρ matter: O(N) instead of O(N²) (dicke_band_rhs)
+        band = model.rabi == 0
+        solver, args, obs_args = self._prepare(model, probes, options, band=band)
         c = coherent_state(model.n, s[0])
-        rho = np.outer(c, np.conj(c))
-        y0 = jnp.asarray(np.stack([rho.real, rho.imag]))
+        if band:
+            sub = np.concatenate([[0.0], c[1:] * np.conj(c[:-1])])
+            z = np.stack([np.abs(c) ** 2 + 0j, sub])
+            rhs, observe = dicke_band_rhs, _observe_band
+        else:
+            z = np.outer(c, np.conj(c))
+            rhs, observe = dicke_rhs(model.envelope), _observe
+        y0 = jnp.asarray(np.stack([z.real, z.imag]))
         obs, _, stats = solve(
-            dicke_rhs(model.envelope), _observe, y0, args, obs_args, times, options, solver,
+            rhs, observe, y0, args, obs_args, times, options, solver,
             jump_ts=model.envelope.jumps, what="Dicke-space evolution",
         )
+        stats["representation"] = "bands q = 0, 1 (no drive)" if band else "full density matrix"
         return Moments(**obs, attrs=stats)
 
     def steady(self, model, probes, seed, options) -> Moments:

@@ -171,7 +171,7 @@ def _non_unique(dim: int, n: int, exact: bool) -> ValueError:
 @register
 class Exact(Level):
     name = "exact"
-    summary = "full Lindblad density matrix (exact; small N, memory 16^N/4 bytes scale)"
+    summary = "full Lindblad density matrix (exact; small N: memory ~16·4^N·(6N + 12) bytes)"
     options = dict(ODE_OPTIONS)
 
     def _prepare(self, model: Model, probes: Probes, options):

@@ -95,24 +95,30 @@ def _runner(envelope: Envelope, dt: float):
         k3 = deriv(t + h / 2, psi + h / 2 * k2, args)
         k4 = deriv(t + h, psi + h * k3, args)
 
-        def dense(theta):  # RK4's continuous extension, third order
-            b1 = theta - 1.5 * theta**2 + 2 / 3 * theta**3
-            b23 = theta**2 - 2 / 3 * theta**3
-            b4 = -0.5 * theta**2 + 2 / 3 * theta**3
-            return psi + h * (b1 * k1 + b23 * (k2 + k3) + b4 * k4)
+        # RK4's continuous extension (third order): ψ(θ) = Σ_m c_m(θ) u_m, so ‖ψ(θ)‖² = c·Re(G)·c with the
+        # 4 × 4 Gram matrix G of u: the bisection for the jump time then costs no vector operations.
+        u = jnp.stack([psi, h * k1, h * (k2 + k3), h * k4])
+        gram = jnp.real(jnp.conj(u) @ u.T)
 
-        new = dense(1.0)
-        crossed = jnp.sum(jnp.abs(new) ** 2) <= r
+        def coeffs(theta):
+            return jnp.stack([jnp.ones_like(theta), theta - 1.5 * theta**2 + 2 / 3 * theta**3,
+                              theta**2 - 2 / 3 * theta**3, -0.5 * theta**2 + 2 / 3 * theta**3])
+
+        def norm2(theta):
+            c = coeffs(theta)
+            return c @ gram @ c
+
+        crossed = norm2(1.0) <= r
 
         def bisect(_, lo_hi):
             lo, hi = lo_hi
             mid = 0.5 * (lo + hi)
-            below = jnp.sum(jnp.abs(dense(mid)) ** 2) <= r
+            below = norm2(mid) <= r
             return jnp.where(below, lo, mid), jnp.where(below, mid, hi)
 
-        _, theta = jax.lax.fori_loop(0, 32, bisect, (0.0, 1.0))
+        _, theta = jax.lax.fori_loop(0, 40, bisect, (0.0, 1.0))
         theta = jnp.where(crossed, theta, 1.0)
-        at = dense(theta)
+        at = coeffs(theta).astype(u.dtype) @ u
         key, k_ch, k_r = jax.random.split(key, 3)
         chan = args["V"] @ q.lower(at, args["tab"])  # (M, D)
         weight = args["rates"] * jnp.sum(jnp.abs(chan) ** 2, axis=1)
@@ -168,6 +174,8 @@ class Jumps(Level):
         if chunk == "auto":
             budget = min(CHUNK_BYTES, 0.25 * available_bytes())
             chunk = int(max(1, min(samples, budget // per_traj, 256)))
+        elif int(chunk) != chunk or chunk < 1:
+            raise ValueError(f"chunk must be a positive integer or 'auto', got {chunk!r}")
         c = model.J - model.detuning * np.eye(n) - 0.5j * model.Gamma
         dt = _auto_dt(model, c) if options["dt"] == "auto" else float(options["dt"])
         if not dt > 0:
