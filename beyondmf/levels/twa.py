@@ -15,12 +15,15 @@ vacuum noise of the quantum Langevin equations (C. W. Gardiner, M. J. Collett, P
 (1985)) kept on the transverse components only. The noise amplitude z_i has no noise of its own, so the
 Itô and Stratonovich readings coincide and the stochastic Heun scheme used here converges to it.
 
-Why this form: it is exact for the means of one emitter; it keeps the undriven ground state dark for any
-Γ (with z = −1 the transverse part is an Ornstein–Uhlenbeck process of drift −½Γ and noise Γ, whose
-stationary covariance is the ground state's, the identity); the noise z_i dη_i seeds the superradiant
-burst of an inverted cloud. Trustworthy for collective decay from strong inversion, for driven clouds at
-moderate to strong drive and at weak drive (linear optics is exact in the mean); it is an approximation
-of pair and higher correlations in small dense clusters (error table in docs/twa.md).
+Why this form: it is exact for the means of one emitter; with z = −1 held fixed the transverse part is an
+Ornstein–Uhlenbeck process of drift −(iJ + ½Γ) and noise Γ whose stationary covariance is the ground
+state's (the identity); the noise z_i dη_i seeds the superradiant burst of an inverted cloud.
+
+Where to trust it (measured, docs/twa.md): the superradiant burst of an inverted cloud (Dicke peak within
+3 %), one emitter (exact means), driven dense clusters to within ~5–20 % of the exact populations and
+rates. Known failure: with collective decay (Γ_ij ≠ 0 for i ≠ j) the per-sample z_i fluctuate even in the
+undriven ground state and the mean ⟨σ^z⟩ drifts below −1 (Σρ_ee ≈ −0.25 for 20 emitters at n·λ0³ ≈ 5,
+≈ −1.2 at n·λ0³ ≈ 38), which also biases weak-drive coherences and the late tail of a burst.
 """
 
 from __future__ import annotations
@@ -38,7 +41,7 @@ from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
 
-__all__ = ["TruncatedWigner", "noise_factor", "sample_initial", "twa_drift"]
+__all__ = ["TruncatedWigner", "noise_factor", "sample_initial", "twa_args", "twa_drift"]
 
 # A spin component beyond this is a diverged sample (the exact dynamics keeps |s| ≤ √3 initially and
 # the sampled spins stay of order one).
@@ -127,6 +130,21 @@ def _drift_for(envelope: Envelope):
     return drift
 
 
+def twa_args(model: Model) -> dict[str, Any]:
+    """The model's arrays as the pytree the drift reads: [J; Γ] (2N × N), B (Γ = BBᵀ), Γ_ii, Ω_i, Δ."""
+    n = model.n
+    require(8 * n * n * 6, f"the coupling matrices of 'twa' for {n} emitters")
+    gamma = np.asarray(model.Gamma.real, dtype=float)
+    om = model.rabi_sites
+    return {
+        "JG": jnp.asarray(np.concatenate([np.asarray(model.J.real, dtype=float), gamma])),
+        "B": jnp.asarray(noise_factor(gamma)),
+        "gdiag": jnp.asarray(np.diag(gamma))[:, None],
+        "omega": jnp.asarray(np.stack([om.real, om.imag])),
+        "detuning": jnp.asarray(model.detuning),
+    }
+
+
 def _per_sample(Y, weights, gamma):
     """Per-sample estimators (S leading): the product-state sums with the samples' symbols.
 
@@ -145,7 +163,8 @@ def _per_sample(Y, weights, gamma):
 def _bad(Y):
     S = Y.shape[1] // 3
     Y3 = Y.reshape(Y.shape[0], 3, S)
-    return ~jnp.all(jnp.isfinite(Y3), axis=(0, 1)) | (jnp.max(jnp.abs(jnp.nan_to_num(Y3, nan=0.0)), axis=(0, 1)) > DIVERGED)
+    big = jnp.max(jnp.abs(jnp.nan_to_num(Y3, nan=0.0)), axis=(0, 1)) > DIVERGED
+    return ~jnp.all(jnp.isfinite(Y3), axis=(0, 1)) | big
 
 
 def _sums(obs, mask):
@@ -259,6 +278,7 @@ class TruncatedWigner(Level):
         "settle_time": 40.0,
         "window": 40.0,
         "window_points": 80,
+        "chunk": "auto",
     }
     stochastic = True
 
@@ -284,21 +304,16 @@ class TruncatedWigner(Level):
         if not (np.isfinite(dt) and dt > 0):
             raise ValueError(f"dt must be a positive time step (1/Γ0) or 'auto', got {options['dt']!r}")
         n = model.n
-        require(8 * n * n * 6, f"the coupling matrices of 'twa' for {n} emitters")
-        gamma = np.asarray(model.Gamma.real, dtype=float)
-        om = model.rabi_sites
-        args = {
-            "JG": jnp.asarray(np.concatenate([model.J.real, gamma])),
-            "B": jnp.asarray(noise_factor(gamma)),
-            "gdiag": jnp.asarray(np.diag(gamma))[:, None],
-            "omega": jnp.asarray(np.stack([om.real, om.imag])),
-            "detuning": jnp.asarray(model.detuning),
-        }
-        obs_args = (jnp.asarray(probes.weights), jnp.asarray(gamma))
+        args = twa_args(model)
+        obs_args = (jnp.asarray(probes.weights), args["JG"][n:])
         # per sample: the state and ~10 temporaries of its size, the noise, the estimator temporaries
         per_sample = 8 * (14 * 3 * n + 6 * n + 8 * probes.weights.shape[0] * n)
-        chunk = int(max(1, min(samples, CHUNK_BYTES // per_sample)))
-        return samples, frac, dt, chunk, args, obs_args
+        chunk = options["chunk"]
+        if chunk == "auto":
+            chunk = int(max(1, min(samples, CHUNK_BYTES // per_sample)))
+        elif not (isinstance(chunk, int | np.integer) and chunk >= 1):
+            raise ValueError(f"chunk must be 'auto' or a positive number of samples, got {chunk!r}")
+        return samples, frac, dt, int(chunk), args, obs_args
 
     def _run(self, model, t_obs, n_sub, initial, seed, options, probes, steady: bool):
         samples, frac, dt, chunk, args, obs_args = self._setup(model, probes, options)
@@ -308,18 +323,19 @@ class TruncatedWigner(Level):
         bloch = jnp.asarray(initial, dtype=float)
         n = model.n
         tot, failed = None, 0
+        require(chunk * (8 * (14 * 3 * n + 6 * n)), f"a chunk of {chunk} 'twa' samples of {n} emitters")
         for start in range(0, samples, chunk):
-            count = min(chunk, samples - start)
-            require(count * (8 * (14 * 3 * n + 6 * n)), f"a chunk of {count} 'twa' samples of {n} emitters")
-            keys = _sample_keys(seed, start, count)
+            # every chunk has `chunk` columns (one compile); the last one's surplus samples are masked out
+            keys = _sample_keys(seed, start, chunk)
             Y0 = sample_initial(bloch, jax.vmap(lambda k: jax.random.fold_in(k, 0))(keys))
             keys = jax.vmap(lambda k: jax.random.fold_in(k, 1))(keys)  # the noise's own stream
             Y0 = jnp.concatenate([Y0[:, 0, :], Y0[:, 1, :], Y0[:, 2, :]], axis=1)
-            mask = jnp.ones(count, dtype=bool)
+            mask = jnp.arange(chunk) < samples - start
             sums, bad = run(Y0, keys, mask, args, obs_args, t_obs, n_sub)
+            bad = bad & mask
             nbad = int(jnp.sum(bad))
             if nbad and not steady:  # rerun without the failed samples (same keys, same trajectories)
-                sums, _ = run(Y0, keys, ~bad, args, obs_args, t_obs, n_sub)
+                sums, _ = run(Y0, keys, mask & ~bad, args, obs_args, t_obs, n_sub)
             failed += nbad
             sums = {k: np.asarray(v) for k, v in sums.items()}
             tot = sums if tot is None else {k: tot[k] + sums[k] for k in tot}
@@ -351,7 +367,8 @@ class TruncatedWigner(Level):
         """Average over samples and over ``window_points`` equally spaced times of the window
         [settle_time, settle_time + window], starting from the ground state at t = 0."""
         dt = self._setup(model, probes, options)[2]
-        t_settle, window, points = float(options["settle_time"]), float(options["window"]), options["window_points"]
+        t_settle, window = float(options["settle_time"]), float(options["window"])
+        points = options["window_points"]
         if not (t_settle >= 0 and window > 0 and isinstance(points, int) and points >= 1):
             raise ValueError("steady needs settle_time ≥ 0, window > 0 and an integer window_points ≥ 1")
         t_obs = np.concatenate([[0.0], t_settle + window * np.arange(1, points + 1) / points])
