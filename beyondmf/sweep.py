@@ -154,7 +154,7 @@ def stack(
     for key_tuple, task in index.items():
         ds = results[task_key(task)]
         if "emission_rate" not in ds:
-            failures.append(f"{key_tuple}: {ds.attrs.get('error', 'failed')}")
+            failures.append(f"{key_tuple} (task {task_key(task)}): {ds.attrs.get('error', 'failed')}")
             continue
         idx = tuple(key_tuple[:-2]) + (labels.index(key_tuple[-2]), key_tuple[-1])
         for name in names:

@@ -171,7 +171,9 @@ def run_task(task: Mapping[str, Any], directory: str | Path | None = None) -> tu
     """Run one task and write DIR/tasks/<key>.nc atomically (``directory`` None: nothing is written).
 
     A level that refuses the model, or a solve that fails, is a result too (``task_status = "failed"``,
-    the message in ``error``): it is deterministic, so running again would fail the same way.
+    the message in ``error``): it is deterministic, so running again would fail the same way. A memory
+    refusal depends on the machine: delete its task file (the key is in the sweep's ``failures``) to
+    retry it on a larger one.
     Returns (key, status, seconds).
     """
     from .integrate import SolveError
@@ -180,7 +182,7 @@ def run_task(task: Mapping[str, Any], directory: str | Path | None = None) -> tu
     start = time.perf_counter()
     try:
         ds, status = compute(task), "done"
-    except (ValueError, SolveError) as err:
+    except (ValueError, SolveError, MemoryError) as err:
         ds = xr.Dataset(attrs={"level": task["level"], "error": f"{type(err).__name__}: {err}"})
         status = "failed"
     seconds = time.perf_counter() - start
