@@ -196,3 +196,14 @@ def test_shipped_studies_parse_and_expand(quick):
         study = read_study(path, quick=quick)
         index, labels, k, dims, _ = study_tasks(study)
         assert index and labels, path
+
+
+def test_a_level_that_refuses_the_model_gives_nan_and_a_failure_note(tmp_path):
+    # dicke needs all-to-all couplings; the study's vector couplings make it refuse every task
+    study = _study(tmp_path, STUDY.replace("[levels.meanfield]", "[levels.meanfield]\n[levels.dicke]")
+                   .replace("realizations = 2", "realizations = 1"))
+    ds = run_sweep(study, tmp_path / "out", progress=False)
+    assert np.isfinite(ds["emission_rate"].sel(level="meanfield")).all()
+    assert np.isnan(ds["emission_rate"].sel(level="dicke")).all()
+    assert len(ds.attrs["failures"]) == 4
+    assert all("dicke" in f or "all-to-all" in f for f in ds.attrs["failures"])
