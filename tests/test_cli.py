@@ -166,7 +166,7 @@ def test_bad_study_exits_with_one_line_naming_the_key(case, tmp_path, capsys):
 
 def test_unknown_level_error_lists_the_known_levels():
     with pytest.raises(StudyError) as info:
-        parse_study(_replace(SMALL, "[levels.meanfield]", "[levels.exact]"))
+        parse_study(_replace(SMALL, "[levels.meanfield]", "[levels.nosuchlevel]"))
     for name in beyondmf.available_levels():
         assert name in str(info.value)
 
