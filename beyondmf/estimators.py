@@ -70,8 +70,17 @@ def product_rate_moments(beta, n, gamma):
     """Σ Γ_ij⟨σ_i⁺σ_j⁻⟩ and Σ Γ_ij Γ_kl⟨σ_i⁺σ_k⁺σ_l⁻σ_j⁻⟩ in a product state; gamma (N, N) Hermitian."""
     kap = local_cumulants(beta, n)
     k11, k20 = kap[0], kap[1]
-    y = gamma @ beta
     dG = jnp.real(jnp.diagonal(gamma))
-    q_abs = k11 @ (jnp.abs(gamma) ** 2 @ k11)
-    q_sq = jnp.real(k20 @ ((gamma**2) @ jnp.conj(k20)))
+    if jnp.iscomplexobj(gamma):
+        y = gamma @ beta
+        q_abs = k11 @ (jnp.abs(gamma) ** 2 @ k11)
+        q_sq = jnp.real(k20 @ ((gamma**2) @ jnp.conj(k20)))
+    else:
+        # Real Γ: no complex copy of the N×N matrix, and |Γ|² = Γ² is one temporary read once, so a
+        # save point costs two passes over N² numbers (the memory need at large N is set by these).
+        yr = gamma @ jnp.stack([beta.real, beta.imag], axis=1)
+        y = yr[:, 0] + 1j * yr[:, 1]
+        q = (gamma * gamma) @ jnp.stack([k11, k20.real, k20.imag], axis=1)
+        q_abs = k11 @ q[:, 0]
+        q_sq = k20.real @ q[:, 1] + k20.imag @ q[:, 2]
     return _partition_sums(beta, y, dG, q_abs, q_sq, kap)

@@ -1,0 +1,206 @@
+"""Figures of a sweep or comparison (`beyondmf.sweep.run_sweep`): values and corrections per level.
+
+The figure follows the shape of the grid: no grid → the observables per level (against time for a
+dynamics study); one grid dimension → lines against it; two → correction maps, one panel per level,
+with each cell marked ✓ (baseline holds), ✗ (fails) or ? (undecided) by the comparison's verdict.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+import xarray as xr  # noqa: E402
+
+from .compare import summarize  # noqa: E402
+
+__all__ = ["plot_sweep"]
+
+_MARK = {"holds": "✓", "fails": "✗", "undecided": "?", "undefined": "–", "baseline": ""}
+_LABEL = {"emission_rate": "emission rate P (Γ0)", "g2_total": "g2 of all light", "g2": "g2",
+          "intensity": "intensity (Γ0/sr)", "emission_rate_peak": "peak rate (Γ0)",
+          "peak_time": "time of the peak (1/Γ0)", "emitted": "photons emitted"}
+_CLIP = 1.5  # relative corrections are drawn within ±150 %: beyond that the baseline has plainly failed
+
+
+def _summary(ds: xr.Dataset) -> xr.Dataset:
+    if "emission_rate_uncertainty" in ds:
+        return ds
+    return summarize(ds, baseline=str(ds["level"].values[0]))
+
+
+def _grid_dims(s: xr.Dataset) -> list[str]:
+    return [d for d in s["emission_rate"].dims if d not in ("level", "time", "detector")]
+
+
+def _panels(s: xr.Dataset) -> list[tuple[str, str | None]]:
+    """(observable, detector) pairs to draw: every compared observable, per detector where it has one."""
+    out = []
+    for name in s.data_vars:
+        if name.endswith("_uncertainty"):
+            obs = name.removesuffix("_uncertainty")
+            dets = [str(d) for d in s["detector"].values] if "detector" in s[obs].dims else [None]
+            out += [(obs, d) for d in dets]
+    return out
+
+
+def _color(s: xr.Dataset, level) -> str:
+    """One colour per level, the same in every figure of a study."""
+    return f"C{list(s['level'].values).index(level) % 10}"
+
+
+def _pick(s: xr.Dataset, name: str, det: str | None, level) -> tuple[xr.DataArray, xr.DataArray]:
+    v, u = s[name].sel(level=level), s[f"{name}_uncertainty"].sel(level=level)
+    if det is not None:
+        v, u = v.sel(detector=det), u.sel(detector=det)
+    return v, u
+
+
+def _title(name: str, det: str | None) -> str:
+    return _LABEL.get(name, name) + (f" ({det})" if det else "")
+
+
+def _save(fig, path: Path) -> Path:
+    fig.tight_layout()
+    fig.savefig(path, dpi=90)
+    plt.close(fig)
+    return path
+
+
+def _slices(s: xr.Dataset, dims: list[str]) -> list[tuple[dict, str]]:
+    """Every combination of the values of ``dims``, with a legend tag (one line each)."""
+    if not dims:
+        return [({}, "")]
+    combos = np.array(np.meshgrid(*[s[d].values for d in dims], indexing="ij")).reshape(len(dims), -1).T
+    out = []
+    for c in combos:
+        pairs = list(zip(dims, c, strict=True))
+        out.append((dict(pairs), ", " + ", ".join(f"{d}={v:g}" for d, v in pairs)))
+    return out
+
+
+def _values_figure(s: xr.Dataset, path: Path) -> Path:
+    panels = _panels(s)
+    grid = _grid_dims(s)
+    fig, axes = plt.subplots(1, len(panels), figsize=(3.6 * len(panels), 3.2), squeeze=False)
+    for ax, (name, det) in zip(axes[0], panels, strict=True):
+        for k, lv in enumerate(s["level"].values):
+            v, u = _pick(s, name, det, lv)
+            if "time" in v.dims:
+                t = s["time"].values
+                for sel, tag in _slices(s, grid):
+                    vv, uu = v.sel(sel).transpose("time"), u.sel(sel).transpose("time")
+                    col = _color(s, lv) if not tag else None
+                    line = ax.plot(t, vv, label=f"{lv}{tag}", color=col)[0]
+                    ax.fill_between(t, vv - uu, vv + uu, alpha=0.25, color=line.get_color())
+                ax.set_xlabel("time (1/Γ0)")
+            elif grid:
+                x = s[grid[0]].values
+                for sel, tag in _slices(s, grid[1:]):
+                    ax.errorbar(x, v.sel(sel).transpose(grid[0]), yerr=u.sel(sel).transpose(grid[0]),
+                                marker="o", capsize=3, label=f"{lv}{tag}",
+                                color=_color(s, lv) if not tag else None)
+                ax.set_xlabel(s[grid[0]].attrs.get("parameter", grid[0]))
+                if np.all(x > 0) and x.max() / x.min() > 20:
+                    ax.set_xscale("log")
+            else:
+                ax.bar(k, float(v), yerr=float(u), capsize=4, label=str(lv), color=_color(s, lv))
+                ax.set_xticks([])
+        ax.set_title(_title(name, det), fontsize=9)
+        vals = np.abs(s[name].values[np.isfinite(s[name].values)])
+        if name.startswith("g2") and vals.size and vals.min() > 0 and vals.max() / vals.min() > 100:
+            ax.set_yscale("log")
+    axes[0][0].legend(fontsize=8, title="level", title_fontsize=8)
+    fig.suptitle(s.attrs.get("title", "") + (" (quick mode)" if s.attrs.get("quick") else ""), fontsize=10)
+    return _save(fig, path)
+
+
+def _correction_lines(s: xr.Dataset, path: Path) -> Path:
+    panels = _panels(s)
+    grid = _grid_dims(s)
+    tol, base = s.attrs["tolerance"], s.attrs["baseline"]
+    others = [lv for lv in s["level"].values if str(lv) != base]
+    fig, axes = plt.subplots(1, len(panels), figsize=(3.6 * len(panels), 3.2), squeeze=False)
+    for ax, (name, det) in zip(axes[0], panels, strict=True):
+        for k, lv in enumerate(others):
+            sel = {"level": lv} | ({"detector": det} if det else {})
+            c = s[f"{name}_correction"].sel(sel)
+            lo, hi = s[f"{name}_correction_low"].sel(sel), s[f"{name}_correction_high"].sel(sel)
+            if "time" in c.dims:
+                x = s["time"].values
+                ax.set_xlabel("time (1/Γ0)")
+                if grid:  # one grid dimension and a time axis: the curves at the grid's first value
+                    c, lo, hi = (a.isel({grid[0]: 0}) for a in (c, lo, hi))
+            elif grid:
+                x = s[grid[0]].values
+                ax.set_xlabel(s[grid[0]].attrs.get("parameter", grid[0]))
+                if np.all(x > 0) and x.max() / x.min() > 20:
+                    ax.set_xscale("log")
+            else:
+                x = np.array([k])
+                ax.set_xticks(range(len(others)), [str(o) for o in others])
+            col = _color(s, lv)
+            ax.plot(x, np.clip(np.atleast_1d(c), -_CLIP, _CLIP), marker="o", label=str(lv), color=col)
+            lo_c, hi_c = (np.clip(np.atleast_1d(a), -_CLIP, _CLIP) for a in (lo, hi))
+            ax.fill_between(x, lo_c, hi_c,
+                            alpha=0.25, color=col)
+        for y in (-tol, tol):
+            ax.axhline(y, color="k", ls=":", lw=1)
+        ax.axhline(0, color="k", lw=0.5)
+        ax.set_ylim(-_CLIP * 1.05, _CLIP * 1.05)
+        ax.set_title(f"correction of {_title(name, det)}", fontsize=9)
+    if others:
+        axes[0][0].legend(fontsize=8, title=f"vs {base}", title_fontsize=8)
+    fig.suptitle(f"relative corrections (X − X_{base})/X_{base}, {s.attrs['confidence']:.0%} intervals, "
+                 f"tolerance ±{tol:g} (dotted), drawn within ±{_CLIP:g}",
+                 fontsize=10)
+    return _save(fig, path)
+
+
+def _correction_maps(s: xr.Dataset, path: Path) -> Path:
+    gx, gy = _grid_dims(s)[:2]
+    base, tol = s.attrs["baseline"], s.attrs["tolerance"]
+    others = [lv for lv in s["level"].values if str(lv) != base]
+    panels = _panels(s)
+    fig, axes = plt.subplots(len(panels), max(len(others), 1), figsize=(3.8 * max(len(others), 1),
+                             3.2 * len(panels)), squeeze=False)
+    for i, (name, det) in enumerate(panels):
+        for j, lv in enumerate(others):
+            ax = axes[i][j]
+            sel = {"level": lv} | ({"detector": det} if det else {})
+            c, verdict = s[f"{name}_correction"].sel(sel), s[f"{name}_verdict"].sel(sel)
+            rest = {d: -1 for d in c.dims if d not in (gx, gy)}  # time (the last), further grid dims
+            c, verdict = c.isel(rest).transpose(gy, gx), verdict.isel(rest).transpose(gy, gx).values
+            top = float(np.nanmax(np.abs(c.values))) if np.isfinite(c.values).any() else tol
+            lim = min(max(top, tol), _CLIP)
+            im = ax.imshow(c.values, origin="lower", cmap="RdBu_r", vmin=-lim, vmax=lim, aspect="auto")
+            for (yi, xi), v in np.ndenumerate(verdict):
+                ax.text(xi, yi, _MARK.get(str(v), ""), ha="center", va="center", fontsize=11)
+            ax.set_xticks(range(s.sizes[gx]), [f"{v:g}" for v in s[gx].values], fontsize=7)
+            ax.set_yticks(range(s.sizes[gy]), [f"{v:g}" for v in s[gy].values], fontsize=7)
+            ax.set_xlabel(s[gx].attrs.get("parameter", gx))
+            ax.set_ylabel(s[gy].attrs.get("parameter", gy))
+            at = " at the last time" if "time" in rest else ""
+            ax.set_title(f"{lv}: correction of {_title(name, det)}{at}", fontsize=8)
+            fig.colorbar(im, ax=ax, shrink=0.8)
+    fig.suptitle(f"against {base}: ✓ holds within ±{tol:g}, ✗ fails, ? undecided "
+                 f"({s.attrs['confidence']:.0%} intervals)", fontsize=9)
+    return _save(fig, path)
+
+
+def plot_sweep(ds: xr.Dataset, directory: str | Path) -> list[Path]:
+    """Write values.png and, with several levels, corrections.png (correction_map.png for a 2-D grid)."""
+    directory = Path(directory)
+    directory.mkdir(parents=True, exist_ok=True)
+    s = _summary(ds)
+    paths = [_values_figure(s, directory / "values.png")]
+    if s.sizes["level"] > 1:
+        if len(_grid_dims(s)) >= 2:
+            paths.append(_correction_maps(s, directory / "correction_map.png"))
+        else:
+            paths.append(_correction_lines(s, directory / "corrections.png"))
+    return paths

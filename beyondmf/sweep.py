@@ -1,0 +1,550 @@
+"""Sweeps: a study's grid × levels × realizations as resumable tasks, merged into DIR/results.nc.
+
+Study-file sections added here (docs/user-guide.md, "Writing a study"):
+
+    [sweep]
+    realizations = 8            # K position draws (and sampling seeds) per grid point
+    seed = 0                    # base seed: draw k uses SeedSequence([seed, k]) at every grid point
+    keep = "all"                # or "last_time": keep only the late-time value of a dynamics run
+    [sweep.grid]                # each key: a dotted path into the study, each value: a list
+    "geometry.n" = [4, 8]
+    "geometry.density" = [0.1, 1.0]   # n·λ0³: rescales the cloud, keeping its shape
+    "drive.saturation" = [0.1, 1, 10] # s = 2Ω²/(1 + 4Δ²): sets drive.rabi
+    "levels.twa.samples" = [100, 400] # a level option
+
+    [compare]
+    baseline = "meanfield"      # the level the others are measured against
+    tolerance = 0.1             # relative correction up to which the baseline holds
+    confidence = 0.95
+    observables = ["emission_rate", "intensity", "g2", "g2_total"]
+
+    [convergence]               # a grid dimension that refines one level: has it converged?
+    dimension = "samples"
+    level = "twa"
+    tolerance = 0.05            # criterion: beyondmf.convergence
+
+    [quick]                     # overrides applied with --quick (CI-sized runs), same layout as the study
+    sweep = { realizations = 2 }
+
+Every (grid point, level, realization) is one task (`beyondmf.tasks`): a pure function of its parameters,
+written to DIR/tasks/<hash>.nc when it finishes, so running the same command again resumes.
+"""
+
+from __future__ import annotations
+
+import copy
+import itertools
+import tomllib
+import warnings
+from collections.abc import Callable, Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from .levels.base import available_levels, get_level
+from .study import Study, StudyError, parse_table, section
+from .tasks import SCALAR_VARIABLES, task_key
+
+__all__ = [
+    "SweepSpec",
+    "CompareSpec",
+    "read_study",
+    "is_sweep",
+    "study_tasks",
+    "run_sweep",
+    "check_convergence",
+    "build_task",
+    "level_table",
+    "realization_seeds",
+    "stack",
+]
+
+# Observables a [compare] section may name besides the default ones; the last three exist for dynamics.
+EXTRA_OBSERVABLES = ("intensity_coherent", "intensity_incoherent", "excited_mean", "emission_rate_peak",
+                     "peak_time", "emitted")
+_SIZE_KEYS = {"gaussian": "widths", "ellipsoid": "semi_axes", "box": "sides"}
+_RANDOM = tuple(_SIZE_KEYS)
+# Paths whose value is derived into another parameter before the study is validated.
+_DERIVED = ("geometry.density", "drive.saturation")
+
+
+# ---------------------------------------------------------------------------------------------------
+# Seeds and tasks
+
+
+def realization_seeds(seed: int, realization: int) -> tuple[int, int]:
+    """(position seed, sampling seed) of realization k: SeedSequence([seed, k]) and ([seed, k, 1])."""
+    pos = np.random.SeedSequence([int(seed), int(realization)]).generate_state(1)[0]
+    lvl = np.random.SeedSequence([int(seed), int(realization), 1]).generate_state(1)[0]
+    return int(pos % 2**31), int(lvl % 2**31)
+
+
+def level_table(levels: Sequence[str] | Mapping[str, Any]) -> dict[str, dict[str, Any]]:
+    """label → {"level": name, "options": {...}} from a list of names or label → {level?, **options}."""
+    if isinstance(levels, str) or not isinstance(levels, Sequence | Mapping) or not levels:
+        raise ValueError("levels must be a non-empty list of level names or a table label → options")
+    items = {name: {} for name in levels} if not isinstance(levels, Mapping) else dict(levels)
+    out = {}
+    for label, opts in items.items():
+        opts = dict(opts or {})
+        name = opts.pop("level", label)
+        get_level(name)  # unknown names raise, listing the known ones
+        out[str(label)] = {"level": name, "options": opts}
+    return out
+
+
+def build_task(
+    positions: np.ndarray,
+    model: Mapping[str, Any],
+    run: Mapping[str, Any],
+    detectors: Mapping[str, Any] | None,
+    level: Mapping[str, Any],
+    seed: int,
+    realization: int,
+) -> dict[str, Any]:
+    """The task dictionary of one level on one draw; deterministic levels carry no seed, so equal
+    positions at a deterministic level are one task whatever the realization number."""
+    task = {
+        "positions": np.asarray(positions, dtype=float),
+        "model": dict(model),
+        "run": dict(run),
+        "detectors": None if detectors is None else {k: np.asarray(v, float) for k, v in detectors.items()},
+        "level": level["level"],
+        "options": dict(level["options"]),
+    }
+    if get_level(level["level"]).stochastic:
+        task["seed"] = realization_seeds(seed, realization)[1]
+    return task
+
+
+def stack(
+    index: Mapping[tuple, Mapping[str, Any]],
+    results: Mapping[str, xr.Dataset],
+    labels: Sequence[str],
+    realizations: int,
+    observables: Sequence[str] = (),
+    grid: Sequence[tuple[str, Sequence]] = (),
+    last_time: bool = False,
+) -> xr.Dataset:
+    """Per-task results into one Dataset with dimensions (grid..., level, realization, time?, detector).
+
+    ``last_time`` keeps only the last saved time of a dynamics run (its late-time value).
+
+    ``index`` maps (grid indices..., label, realization) to the task; per-emitter variables are reduced
+    to ``excited_mean`` (mean population) because N may differ across the grid. A failed task (its
+    level refused the model, or the solve failed) gives NaN and its message in ``failures``.
+    """
+    template = next((results[task_key(t)] for t in index.values()
+                     if results[task_key(t)].attrs.get("task_status", "done") == "done"
+                     and "emission_rate" in results[task_key(t)]), None)
+    if template is None:
+        msgs = {results[task_key(t)].attrs.get("error", "") for t in index.values()}
+        raise ValueError("every task failed: " + "; ".join(sorted(msgs)))
+    names = list(dict.fromkeys([*SCALAR_VARIABLES, *(o for o in observables if o in template)]))
+    stochastic = any(f"{n}_stderr" in results[task_key(t)] for t in index.values() for n in names)
+    if stochastic:
+        names += [f"{n}_stderr" for n in names]
+    outer = [len(v) for _, v in grid] + [len(labels), realizations]
+    arrays, failures = {}, []
+    for name in names + ["excited_mean"]:
+        base = template["emission_rate"] if name == "excited_mean" else template[name.removesuffix("_stderr")]
+        arrays[name] = (base.dims, np.full(outer + list(base.shape), np.nan, dtype=base.dtype))
+    for key_tuple, task in index.items():
+        ds = results[task_key(task)]
+        if "emission_rate" not in ds:
+            failures.append(f"{key_tuple} (task {task_key(task)}): {ds.attrs.get('error', 'failed')}")
+            continue
+        idx = tuple(key_tuple[:-2]) + (labels.index(key_tuple[-2]), key_tuple[-1])
+        for name in names:
+            if name in ds:
+                arrays[name][1][idx] = ds[name].values
+        arrays["excited_mean"][1][idx] = ds["excited"].mean("atom").values
+    dims = [g for g, _ in grid] + ["level", "realization"]
+    coords = {g: np.asarray(v) for g, v in grid}
+    coords.update(level=list(labels), realization=np.arange(realizations))
+    for c in ("time", "detector", "direction"):
+        if c in template.coords:
+            coords[c] = template[c]
+    data = {n: (dims + list(d), a) for n, (d, a) in arrays.items()}
+    out = xr.Dataset(data, coords=coords)
+    for n in names:
+        out[n].attrs = dict(template[n.removesuffix("_stderr")].attrs)
+    out["excited_mean"].attrs.update(long_name="mean excited population over emitters")
+    if "time" in out.dims and last_time:
+        out = out.isel(time=-1)
+    elif "time" in out.dims:
+        out = out.assign(_burst_observables(out))
+    out.attrs["failures"] = failures
+    return out
+
+
+def _burst_observables(ds: xr.Dataset) -> dict[str, xr.DataArray]:
+    """Scalars of a dynamics run: peak rate, its time, and photons emitted in the window.
+
+    emission_rate_peak = max_t P(t) (its error: the sampling error at the peak's time),
+    peak_time = argmax_t P(t) (on the saved time grid), emitted = ∫P dt (trapezoid rule; its error
+    ∫σ_P dt, an upper bound since errors at neighbouring times are correlated).
+    """
+    p = ds["emission_rate"]
+    valid = p.notnull().all("time")
+    at = p.fillna(-np.inf).argmax("time")
+    out = {
+        "emission_rate_peak": p.max("time").assign_attrs(units="photons per 1/Γ0",
+                                                         long_name="peak emission rate max_t P(t)"),
+        "peak_time": ds["time"][at].drop_vars("time").where(valid).assign_attrs(
+            units="1/Γ0", long_name="time of the peak emission rate"),
+        "emitted": p.integrate("time").assign_attrs(units="photons", long_name="photons emitted, ∫P dt"),
+    }
+    if "emission_rate_stderr" in ds:
+        se = ds["emission_rate_stderr"]
+        out["emission_rate_peak_stderr"] = se.isel(time=at).drop_vars("time")
+        out["emitted_stderr"] = se.integrate("time")
+    return out
+
+
+# ---------------------------------------------------------------------------------------------------
+# Study-file sections
+
+
+def _fail(key: str, expected: str, value) -> StudyError:
+    return StudyError(f"{key}: expected {expected}, got {value!r}")
+
+
+def _flatten(table: Mapping, prefix: str) -> dict[str, Any]:
+    out = {}
+    for k, v in table.items():
+        path = f"{prefix}.{k}" if prefix else str(k)
+        if isinstance(v, Mapping):
+            out.update(_flatten(v, path))
+        else:
+            out[path] = v
+    return out
+
+
+_GRID_ROOTS = ("geometry", "model", "drive", "run", "levels")
+
+
+class SweepSpec:
+    """The parsed [sweep] section: grid (path → values), realizations K and base seed."""
+
+    def __init__(self, grid: dict[str, list], realizations: int, seed: int, keep: str = "all") -> None:
+        self.grid, self.realizations, self.seed, self.keep = grid, realizations, seed, keep
+
+    def dims(self) -> list[tuple[str, list]]:
+        """(dimension name, coordinate values) per grid path: the last path component, or the whole
+        path with '_' when two paths end alike; list-valued parameters get index coordinates."""
+        lasts = [p.rsplit(".", 1)[-1] for p in self.grid]
+        out = []
+        for path, last in zip(self.grid, lasts, strict=True):
+            name = last if lasts.count(last) == 1 else path.replace(".", "_")
+            vals = self.grid[path]
+            out.append((name, vals if all(not isinstance(v, list) for v in vals) else list(range(len(vals)))))
+        return out
+
+
+def _parse_sweep(value, where: str) -> SweepSpec:
+    if not isinstance(value, dict):
+        raise _fail(where, "a table", value)
+    for k in value:
+        if k not in ("grid", "realizations", "seed", "keep"):
+            raise StudyError(f"{where}.{k}: unknown key; {where} takes grid, realizations, seed, keep")
+    keep = value.get("keep", "all")
+    if keep not in ("all", "last_time"):
+        raise _fail(f"{where}.keep", "'all' or 'last_time' (the late-time value of a dynamics run)", keep)
+    k = value.get("realizations", 1)
+    if isinstance(k, bool) or not isinstance(k, int) or k < 1:
+        raise _fail(f"{where}.realizations", "a positive integer", k)
+    seed = value.get("seed", 0)
+    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
+        raise _fail(f"{where}.seed", "a non-negative integer", seed)
+    grid_raw = value.get("grid", {})
+    if not isinstance(grid_raw, dict):
+        raise _fail(f"{where}.grid", "a table of parameter paths → lists of values", grid_raw)
+    grid = {}
+    for path, vals in _flatten(grid_raw, "").items():
+        key = f"{where}.grid.{path}"
+        if path.split(".", 1)[0] not in _GRID_ROOTS or "." not in path:
+            raise StudyError(f"{key}: unknown parameter path; a grid path starts with one of "
+                             f"{', '.join(_GRID_ROOTS)}, e.g. \"drive.rabi\" or \"geometry.density\"")
+        if not isinstance(vals, list) or not vals:
+            raise _fail(key, "a non-empty list of values", vals)
+        if len({repr(v) for v in vals}) != len(vals):
+            raise _fail(key, "distinct values", vals)
+        grid[path] = vals
+    return SweepSpec(grid, k, seed, keep)
+
+
+class CompareSpec:
+    """The parsed [compare] section."""
+
+    def __init__(self, baseline: str, tolerance: float, confidence: float, observables: tuple[str, ...]):
+        self.baseline, self.tolerance, self.confidence, self.observables = (
+            baseline, tolerance, confidence, observables)
+
+
+def _parse_compare(value, where: str) -> CompareSpec:
+    from .compare import OBSERVABLES
+
+    if not isinstance(value, dict):
+        raise _fail(where, "a table", value)
+    allowed = ("baseline", "tolerance", "confidence", "observables")
+    for k in value:
+        if k not in allowed:
+            raise StudyError(f"{where}.{k}: unknown key; {where} takes {', '.join(allowed)}")
+    base = value.get("baseline", "meanfield")
+    if not isinstance(base, str):
+        raise _fail(f"{where}.baseline", "a level name", base)
+    tol = value.get("tolerance", 0.1)
+    if isinstance(tol, bool) or not isinstance(tol, int | float) or not (0 < tol < np.inf):
+        raise _fail(f"{where}.tolerance", "a positive relative correction, e.g. 0.1", tol)
+    conf = value.get("confidence", 0.95)
+    if isinstance(conf, bool) or not isinstance(conf, int | float) or not (0 < conf < 1):
+        raise _fail(f"{where}.confidence", "a number between 0 and 1, e.g. 0.95", conf)
+    obs = value.get("observables", list(OBSERVABLES))
+    known = (*OBSERVABLES, *EXTRA_OBSERVABLES)
+    if not isinstance(obs, list) or not obs or not all(o in known for o in obs):
+        raise _fail(f"{where}.observables", f"a list drawn from {', '.join(known)}", obs)
+    return CompareSpec(base, float(tol), float(conf), tuple(obs))
+
+
+def _parse_quick(value, where: str) -> dict:
+    if not isinstance(value, dict):
+        raise _fail(where, "a table of overrides with the study's own layout", value)
+    if "quick" in value:
+        raise StudyError(f"{where}.quick: a [quick] table cannot contain another")
+    return value
+
+
+class ConvergenceSpec:
+    """The parsed [convergence] section: which grid dimension is a refinement, for which level."""
+
+    def __init__(self, dim: str, level: str, tolerance: float, observables: tuple[str, ...]):
+        self.dim, self.level, self.tolerance, self.observables = dim, level, tolerance, observables
+
+
+def _parse_convergence(value, where: str) -> ConvergenceSpec:
+    if not isinstance(value, dict):
+        raise _fail(where, "a table", value)
+    allowed = ("dimension", "level", "tolerance", "observables")
+    for k in value:
+        if k not in allowed:
+            raise StudyError(f"{where}.{k}: unknown key; {where} takes {', '.join(allowed)}")
+    for k in ("dimension", "level"):
+        if not isinstance(value.get(k), str):
+            raise _fail(f"{where}.{k}", "a name (required)", value.get(k))
+    tol = value.get("tolerance", 0.05)
+    if isinstance(tol, bool) or not isinstance(tol, int | float) or not tol > 0:
+        raise _fail(f"{where}.tolerance", "a positive relative change, e.g. 0.05", tol)
+    obs = value.get("observables", ["emission_rate", "g2_total"])
+    if not isinstance(obs, list) or not obs or not all(isinstance(o, str) for o in obs):
+        raise _fail(f"{where}.observables", "a list of observable names", obs)
+    return ConvergenceSpec(value["dimension"], value["level"], float(tol), tuple(obs))
+
+
+def check_convergence(study: Study, ds: xr.Dataset) -> dict[str, xr.Dataset]:
+    """The [convergence] tables of a finished sweep (`beyondmf.convergence.assess_sweep`)."""
+    from .convergence import assess_sweep
+
+    spec: ConvergenceSpec = study.extra["convergence"]
+    if spec.dim not in ds.dims:
+        raise StudyError(f"convergence.dimension: {spec.dim!r} is not a grid dimension of the sweep "
+                         f"({', '.join(d for d in ds.dims)})")
+    if spec.level not in [str(v) for v in ds["level"].values]:
+        raise StudyError(f"convergence.level: {spec.level!r} is not among the study's levels")
+    missing = [o for o in spec.observables if o not in ds]
+    if missing:
+        raise StudyError(f"convergence.observables: {', '.join(missing)} not in the results")
+    return assess_sweep(ds, spec.dim, spec.level, spec.observables, spec.tolerance)
+
+
+section("sweep")(_parse_sweep)
+section("convergence")(_parse_convergence)
+section("compare")(_parse_compare)
+section("quick")(_parse_quick)
+
+
+def _merge(base: dict, over: Mapping) -> dict:
+    out = copy.deepcopy(base)
+    for k, v in over.items():
+        nested = isinstance(v, Mapping) and isinstance(out.get(k), dict)
+        out[k] = _merge(out[k], v) if nested else copy.deepcopy(v)
+    return out
+
+
+def read_study(path: str | Path, quick: bool = False) -> Study:
+    """Read and validate a study file; ``quick`` applies its [quick] overrides (a warning if it has none)."""
+    p = Path(path)
+    if not p.is_file():
+        raise StudyError(f"{p}: no such study file")
+    text = p.read_text(encoding="utf-8")
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as err:
+        raise StudyError(f"not valid TOML: {err}") from None
+    if quick and "quick" not in raw:
+        warnings.warn(f"{p}: no [quick] table; --quick runs the study unchanged", stacklevel=2)
+    elif quick:
+        _parse_quick(raw["quick"], "quick")
+        raw = _merge(raw, raw["quick"])
+        raw.pop("quick")
+    study = parse_table(raw, text, p)
+    study.extra["raw"] = raw
+    study.extra["quick"] = quick
+    return study
+
+
+def is_sweep(study: Study) -> bool:
+    """Whether the study declares a [sweep] or [compare] section (and so runs as tasks)."""
+    return "sweep" in study.extra or "compare" in study.extra
+
+
+# ---------------------------------------------------------------------------------------------------
+# From a study to tasks
+
+
+def _set(raw: dict, path: str, value) -> None:
+    parts = path.split(".")
+    node = raw
+    for p in parts[:-1]:
+        if isinstance(node.get(p), list) and p == "levels":  # levels = ["a", "b"] → table form
+            node[p] = {name: {} for name in node[p]}
+        node = node.setdefault(p, {})
+        if not isinstance(node, dict):
+            raise StudyError(f"sweep.grid.{path}: {p} is not a table in the study")
+    node[parts[-1]] = value
+
+
+def _point_study(raw: dict, point: Mapping[str, Any]) -> Study:
+    """The study at one grid point: overrides applied, derived parameters resolved, then validated."""
+    raw = copy.deepcopy(raw)
+    for sec in ("sweep", "compare", "quick"):
+        raw.pop(sec, None)
+    for path, v in point.items():
+        if path not in _DERIVED:
+            _set(raw, path, v)
+    if "drive.saturation" in point:
+        s = point["drive.saturation"]
+        if isinstance(s, bool) or not isinstance(s, int | float) or s < 0:
+            raise _fail("sweep.grid.drive.saturation", "non-negative saturation parameters", s)
+        det = float(raw.get("drive", {}).get("detuning", 0.0))
+        _set(raw, "drive.rabi", float(np.sqrt(s * (1 + 4 * det**2) / 2)))
+    if "geometry.density" in point:
+        geo = raw.get("geometry", {})
+        kind, rho = geo.get("kind"), point["geometry.density"]
+        if kind not in _SIZE_KEYS:
+            raise StudyError(f"sweep.grid.geometry.density: needs a random cloud ({', '.join(_RANDOM)}), "
+                             f"the study's geometry.kind is {kind!r}")
+        if isinstance(rho, bool) or not isinstance(rho, int | float) or rho <= 0:
+            raise _fail("sweep.grid.geometry.density", "positive densities (λ0⁻³)", rho)
+        size = np.broadcast_to(np.asarray(geo.get(_SIZE_KEYS[kind], 1.0), dtype=float), (3,))
+        geo[_SIZE_KEYS[kind]] = (size * cloud_scale(kind, int(geo.get("n", 1)), rho, size)).tolist()
+    try:
+        return parse_table(raw)
+    except StudyError as err:
+        where = ", ".join(f"{k} = {v!r}" for k, v in point.items())
+        raise StudyError(f"{err} (at the grid point {where})") from None
+
+
+def cloud_scale(kind: str, n: int, density: float, size) -> float:
+    """Factor that brings a random cloud of ``n`` emitters and size ``size`` to ``density`` (n·λ0³).
+
+    The density of a uniform ellipsoid is n/((4π/3)abc), of a box n/(abc); of a Gaussian cloud its peak
+    n/((2π)^{3/2}σxσyσz) (geometry.density states the same convention).
+    """
+    shape = {"ellipsoid": 4 / 3 * np.pi, "box": 1.0, "gaussian": (2 * np.pi) ** 1.5}[kind]
+    vol = float(np.prod(size)) * shape
+    return float((n / (density * vol)) ** (1 / 3))
+
+
+def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[tuple[str, list]], dict]:
+    """Every task of a sweep study: (index → task, level labels, K, grid dims, per-point parameters)."""
+    spec: SweepSpec = study.extra.get("sweep") or SweepSpec({}, 1, 0)
+    raw = study.extra.get("raw")
+    if raw is None:
+        raw = tomllib.loads(study.source)
+    dims = spec.dims()
+    paths = list(spec.grid)
+    index, labels, params = {}, None, {}
+    for idx in itertools.product(*(range(len(spec.grid[p])) for p in paths)):
+        point = {p: spec.grid[p][i] for p, i in zip(paths, idx, strict=True)}
+        st = _point_study(raw, point)
+        table = level_table(st.levels)
+        labels = labels or list(table)
+        model = {"dipole": list(st.emitters.dipole), "coupling": st.emitters.coupling, "rabi": st.drive.rabi,
+                 "detuning": st.drive.detuning, "laser": list(st.drive.laser)}
+        if st.drive.windows is not None:
+            model["envelope"] = [list(w) for w in st.drive.windows]
+        if st.run.calculation == "steady":
+            run = {"calculation": "steady"}
+        else:
+            run = {"calculation": "evolve", "times": st.run.times(), "initial": st.run.initial}
+        dets = st.detector_directions()
+        params[idx] = {"rabi": st.drive.rabi, "N": int(st.geometry.params.get("n", 0))}
+        for r in range(spec.realizations):
+            geo = st.geometry
+            if geo.kind in _RANDOM:
+                geo = type(geo)(geo.kind, {**geo.params, "seed": realization_seeds(spec.seed, r)[0]})
+            try:
+                pos = geo.positions()
+            except ValueError as err:
+                raise StudyError(f"geometry: {err} (grid point {point})") from None
+            for label, lv in table.items():
+                index[(*idx, label, r)] = build_task(pos, model, run, dets, lv, spec.seed, r)
+    return index, labels, spec.realizations, dims, params
+
+
+def run_sweep(
+    study: Study,
+    out: str | Path,
+    executor=None,
+    progress: bool = True,
+    on_done: Callable[[str, str], None] | None = None,
+) -> xr.Dataset:
+    """Run (or resume) every task of ``study`` and write the merged DIR/results.nc.
+
+    Without [compare] the result has dimensions (grid..., level, realization, ...); with it, the
+    `beyondmf.compare.summarize` reduction (level dimension, corrections, verdicts) plus the
+    per-realization values as ``X_realizations``.
+    """
+    from .compare import OBSERVABLES, summarize
+    from .executors import execute
+    from .results import save
+
+    out = Path(out)
+    index, labels, k, dims, params = study_tasks(study)
+    cmp: CompareSpec | None = study.extra.get("compare")
+    observables = cmp.observables if cmp else OBSERVABLES
+    results = execute(list(index.values()), out, executor, progress, on_done)
+    spec = study.extra.get("sweep")
+    last = bool(spec and spec.keep == "last_time")
+    per = stack(index, results, labels, k, observables, dims, last_time=last)
+    for (name, _), path in zip(dims, spec.grid if spec else [], strict=True):
+        per[name].attrs.update(parameter=path)
+    if "N" in per.dims or any(p["N"] for p in params.values()):
+        ns = np.array([params[i]["N"] for i in itertools.product(*(range(len(v)) for _, v in dims))])
+        per["n_emitters"] = ([d for d, _ in dims], ns.reshape([len(v) for _, v in dims]))
+    if cmp is not None:
+        if cmp.baseline not in labels:
+            raise StudyError(f"compare.baseline: {cmp.baseline!r} is not among the study's levels "
+                             f"({', '.join(labels)})")
+        ds = summarize(per, cmp.baseline, cmp.tolerance, cmp.confidence, observables)
+        for name in observables:
+            ds[f"{name}_realizations"] = per[name]
+        for name in ("excited_mean", "n_emitters"):
+            if name in per:
+                ds[name] = per[name].mean("realization") if "realization" in per[name].dims else per[name]
+    else:
+        ds = per
+    ds.attrs.update(
+        study=study.source,
+        title=study.title,
+        quick=int(bool(study.extra.get("quick"))),
+        tasks=len({task_key(t) for t in index.values()}),
+        levels_run=list(labels),
+        available_levels=list(available_levels()),
+        failures=per.attrs.get("failures", []),
+    )
+    save(ds, out / "results.nc")
+    return ds

@@ -1,0 +1,213 @@
+"""One task: one geometry draw, one level, one realization, fully described by a plain dictionary.
+
+A task is self-contained (parameters in, file out), so any executor can run it in any process and get
+the same numbers. Its identity is a stable hash of its canonical JSON form, which names its file; a task
+file records that key, the task itself and a checksum of its data, so a partial, corrupted or foreign
+file is recognised and recomputed.
+
+Task dictionary
+---------------
+positions : (N, 3) list of emitter positions (λ0) — drawn by whoever builds the task, so that every
+    level of one realization sees the same draw.
+model : the other arguments of `beyondmf.Model` (coupling, dipole, rabi, detuning, laser, envelope).
+run : {"calculation": "steady"} or {"calculation": "evolve", "times": [...] or {"start", "stop", "num"},
+    "initial": "ground" | "excited" | [sx, sy, sz]}.
+detectors : name → direction.
+level, options : the level's name and its options.
+seed : the sampling seed of a stochastic level (absent for deterministic levels, so that realizations
+    with the same positions are one task).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import time
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+__all__ = [
+    "canonical",
+    "task_key",
+    "build_model",
+    "compute",
+    "run_task",
+    "read_task",
+    "task_path",
+    "SCALAR_VARIABLES",
+    "TaskFileError",
+]
+
+FORMAT = 1
+# The per-task results that survive merging across geometries of different N (per-emitter arrays do not).
+SCALAR_VARIABLES = (
+    "emission_rate",
+    "intensity",
+    "intensity_coherent",
+    "intensity_incoherent",
+    "g2",
+    "g2_total",
+)
+
+
+class TaskFileError(RuntimeError):
+    """A task file is missing, unreadable, incomplete, or belongs to another task."""
+
+
+def _plain(value: Any) -> Any:
+    """JSON-ready copy: numpy scalars and arrays to Python, tuples to lists, integral floats to ints.
+
+    Integral floats become ints so that ``rabi = 1`` and ``rabi = 1.0`` name the same task.
+    """
+    if isinstance(value, Mapping):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple | np.ndarray):
+        return [_plain(v) for v in (value.tolist() if isinstance(value, np.ndarray) else value)]
+    if isinstance(value, bool | np.bool_):
+        return bool(value)
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, float | np.floating):
+        v = float(value)
+        if not math.isfinite(v):
+            raise ValueError(f"task parameters must be finite numbers, got {v}")
+        return int(v) if v.is_integer() and abs(v) < 2**53 else v
+    if isinstance(value, complex | np.complexfloating):
+        return {"re": _plain(value.real), "im": _plain(value.imag)}
+    if value is None or isinstance(value, str | int):
+        return value
+    raise TypeError(f"a task parameter must be a number, string, list or table, got {type(value).__name__}")
+
+
+def canonical(task: Mapping[str, Any]) -> str:
+    """The task's canonical JSON text: sorted keys, no spaces, plain numbers."""
+    return json.dumps(_plain(task), sort_keys=True, separators=(",", ":"))
+
+
+def task_key(task: Mapping[str, Any]) -> str:
+    """Stable identity of a task: the first 20 hex digits of SHA-256 of its canonical JSON."""
+    return hashlib.sha256(canonical(task).encode()).hexdigest()[:20]
+
+
+def task_path(directory: str | Path, key: str) -> Path:
+    return Path(directory) / "tasks" / f"{key}.nc"
+
+
+def _complex(v):
+    return complex(v["re"], v["im"]) if isinstance(v, Mapping) else v
+
+
+def build_model(task: Mapping[str, Any]):
+    """The `beyondmf.Model` of a task."""
+    from .model import Model
+
+    params = dict(task.get("model") or {})
+    if "rabi" in params:
+        params["rabi"] = _complex(params["rabi"])
+    if "dipole" in params:
+        params["dipole"] = [_complex(c) for c in params["dipole"]]
+    if "envelope" in params and params["envelope"] is not None:
+        params["envelope"] = [tuple(w) for w in params["envelope"]]
+    return Model(np.asarray(task["positions"], dtype=float).reshape(-1, 3), **params)
+
+
+def times_of(run: Mapping[str, Any]) -> np.ndarray:
+    t = run.get("times")
+    if isinstance(t, Mapping):
+        return np.linspace(float(t["start"]), float(t["stop"]), int(t["num"]))
+    if t is None:
+        raise ValueError("run.times is required for calculation = 'evolve'")
+    return np.asarray(t, dtype=float)
+
+
+def compute(task: Mapping[str, Any]) -> xr.Dataset:
+    """Run one task in this process and return its full results Dataset (no file written)."""
+    from .api import evolve, steady
+
+    model = build_model(task)
+    run = dict(task.get("run") or {"calculation": "steady"})
+    level = task["level"]
+    seed = task.get("seed")
+    opts = dict(task.get("options") or {})
+    dets = task.get("detectors")
+    if run.get("calculation", "steady") == "evolve":
+        ds = evolve(model, level, times_of(run), initial=run.get("initial", "ground"), detectors=dets,
+                    seed=seed, **opts)
+    elif run.get("calculation", "steady") == "steady":
+        ds = steady(model, level, detectors=dets, seed=seed, **opts)
+    else:
+        raise ValueError(f"run.calculation must be 'steady' or 'evolve', got {run.get('calculation')!r}")
+    return ds
+
+
+def _checksum(ds: xr.Dataset) -> str:
+    """SHA-256 over the names and bytes of every data variable, in name order."""
+    h = hashlib.sha256()
+    for name in sorted(ds.data_vars):
+        h.update(name.encode())
+        h.update(np.ascontiguousarray(ds[name].values).tobytes())
+    return h.hexdigest()
+
+
+def _stamp(ds: xr.Dataset, task: Mapping[str, Any], status: str, seconds: float) -> xr.Dataset:
+    ds = ds.copy()
+    ds.attrs.update(
+        task_key=task_key(task),
+        task=canonical(task),
+        task_format=FORMAT,
+        task_status=status,
+        task_seconds=float(seconds),
+        task_checksum=_checksum(ds),
+    )
+    return ds
+
+
+def run_task(task: Mapping[str, Any], directory: str | Path | None = None) -> tuple[str, str, float]:
+    """Run one task and write DIR/tasks/<key>.nc atomically (``directory`` None: nothing is written).
+
+    A level that refuses the model, or a solve that fails, is a result too (``task_status = "failed"``,
+    the message in ``error``): it is deterministic, so running again would fail the same way. A memory
+    refusal depends on the machine: delete its task file (the key is in the sweep's ``failures``) to
+    retry it on a larger one.
+    Returns (key, status, seconds).
+    """
+    from .integrate import SolveError
+    from .results import save
+
+    start = time.perf_counter()
+    try:
+        ds, status = compute(task), "done"
+    except (ValueError, SolveError, MemoryError) as err:
+        ds = xr.Dataset(attrs={"level": task["level"], "error": f"{type(err).__name__}: {err}"})
+        status = "failed"
+    seconds = time.perf_counter() - start
+    key = task_key(task)
+    if directory is not None:
+        save(_stamp(ds, task, status, seconds), task_path(directory, key))
+    return key, status, seconds
+
+
+def read_task(path: str | Path, task: Mapping[str, Any]) -> xr.Dataset:
+    """Load a task file and check it is complete and belongs to ``task``; raise TaskFileError if not."""
+    from .results import load
+
+    path = Path(path)
+    try:
+        ds = load(path)
+    except FileNotFoundError as err:
+        raise TaskFileError(f"{path}: missing") from err
+    except Exception as err:  # any reader error means the file is unusable: recompute it
+        raise TaskFileError(f"{path}: unreadable ({type(err).__name__}: {err})") from err
+    attrs = ds.attrs
+    if attrs.get("task_key") != task_key(task) or attrs.get("task") != canonical(task):
+        raise TaskFileError(f"{path}: written for another task")
+    if attrs.get("task_status") not in ("done", "failed"):
+        raise TaskFileError(f"{path}: incomplete (status {attrs.get('task_status')!r})")
+    if attrs.get("task_checksum") != _checksum(ds):
+        raise TaskFileError(f"{path}: data checksum mismatch")
+    return ds

@@ -1,0 +1,235 @@
+"""The `beyondmf` command: running study files, their errors, help, and the bench arguments.
+
+Most cases call `beyondmf.cli.main` in-process (no second JAX start-up); one runs `python -m beyondmf`
+as a user would, to check the module entry point and the exit status seen by a shell.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import beyondmf
+from beyondmf import cli
+from beyondmf.study import StudyError, detector_direction, parse_study, read_study
+
+ROOT = Path(__file__).resolve().parents[1]
+QUICKSTART = ROOT / "studies" / "quickstart.toml"
+FIGURES = ("emission.png", "intensity.png", "geometry.png")
+
+SMALL = """
+title = "small disc"
+[geometry]
+kind = "gaussian"
+n = 12
+widths = [1.0, 1.0, 0.2]
+seed = 3
+min_distance = 0.1
+[drive]
+rabi = 1.0
+[detectors]
+forward = [0, 0, 1]
+sixty = { angle = 60, azimuth = 90 }
+[run]
+t_end = 4.0
+points = 21
+[levels.meanfield]
+rtol = 1e-7
+"""
+
+
+def _run(args, capsys):
+    code = cli.main([str(a) for a in args])
+    return code, capsys.readouterr().err
+
+
+def _replace(text: str, old: str, new: str) -> str:
+    assert old in text, old
+    return text.replace(old, new)
+
+
+def test_quickstart_study_runs_and_writes_results_and_figures(tmp_path, capsys):
+    code, err = _run(["run", QUICKSTART, "--out", tmp_path], capsys)
+    assert code == 0, err
+    assert "level meanfield: started" in err and "level meanfield: finished in" in err
+    ds = beyondmf.load(tmp_path / "results.nc")
+    assert list(ds["level"].values) == ["meanfield"]
+    assert ds.sizes["atom"] == 200 and ds.sizes["time"] == 201
+    assert list(ds["detector"].values) == ["forward", "sixty"]
+    assert ds["time"].values[-1] == pytest.approx(20.0)
+    assert np.all(np.isfinite(ds["emission_rate"].values[:, 1:]))
+    assert "levels" in ds.attrs and "meanfield" in ds.attrs["levels"]
+    assert ds.attrs["study"] == QUICKSTART.read_text()
+    for name in FIGURES:
+        png = tmp_path / name
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n", name
+
+
+def test_results_match_a_direct_evolve_call(tmp_path, capsys):
+    """The command runs exactly the model the study describes: same numbers as the Python API."""
+    study_file = tmp_path / "small.toml"
+    study_file.write_text(SMALL)
+    code, err = _run(["run", study_file, "--out", tmp_path / "out", "--no-plots"], capsys)
+    assert code == 0, err
+    ds = beyondmf.load(tmp_path / "out" / "results.nc").sel(level="meanfield")
+    pos = beyondmf.geometry.gaussian_cloud(12, (1.0, 1.0, 0.2), seed=3, min_distance=0.1)
+    model = beyondmf.Model(pos, rabi=1.0)
+    sixty = (0.0, np.sin(np.pi / 3), np.cos(np.pi / 3))  # 60° from z, in the y–z plane
+    ref = beyondmf.evolve(model, "meanfield", np.linspace(0, 4, 21),
+                          detectors={"forward": (0, 0, 1), "sixty": sixty}, rtol=1e-7)
+    np.testing.assert_allclose(ds["position"].values, pos)
+    np.testing.assert_allclose(ds["emission_rate"].values, ref["emission_rate"].values, rtol=1e-12)
+    np.testing.assert_allclose(ds["intensity"].values, ref["intensity"].values, rtol=1e-12)
+    assert not (tmp_path / "out" / "emission.png").exists()
+
+
+def test_steady_study_writes_results_without_time(tmp_path, capsys):
+    text = _replace(SMALL, "[run]\nt_end = 4.0\npoints = 21", '[run]\ncalculation = "steady"')
+    study_file = tmp_path / "steady.toml"
+    study_file.write_text(text)
+    code, err = _run(["run", study_file, "--out", tmp_path / "out"], capsys)
+    assert code == 0, err
+    ds = beyondmf.load(tmp_path / "out" / "results.nc")
+    assert "time" not in ds.dims and ds["intensity"].dims == ("level", "detector")
+    for name in FIGURES:
+        assert (tmp_path / "out" / name).is_file()
+
+
+def test_missing_variables_of_a_level_are_filled_with_nan():
+    """Levels with stderr (sampling) and without (meanfield) concatenate along `level`."""
+    import xarray as xr
+
+    from beyondmf.study import _fill_missing
+
+    a = xr.Dataset({"x": (("time",), np.ones(3))})
+    b = xr.Dataset({"x": (("time",), np.zeros(3)), "x_stderr": (("time",), np.full(3, 0.1))})
+    fa, fb = _fill_missing([a, b])
+    assert np.all(np.isnan(fa["x_stderr"].values)) and fa["x_stderr"].shape == (3,)
+    np.testing.assert_array_equal(fb["x_stderr"].values, 0.1)
+
+
+def test_detector_angle_is_measured_from_the_laser():
+    for laser in [(0, 0, 1), (1, 0, 0), (1, 1, 1)]:
+        for angle, az in [(0, 0), (60, 0), (60, 90), (135, 30), (180, 0)]:
+            n = detector_direction(laser, angle, az)
+            l_hat = np.asarray(laser) / np.linalg.norm(laser)
+            assert np.linalg.norm(n) == pytest.approx(1.0)
+            assert np.degrees(np.arccos(np.clip(n @ l_hat, -1, 1))) == pytest.approx(angle, abs=1e-6)
+    np.testing.assert_allclose(detector_direction((0, 0, 1), 60, 90), [0, np.sin(np.pi / 3), 0.5], atol=1e-12)
+
+
+# Each bad study: (replace this, by that) in SMALL → the message starts with this key.
+BAD = {
+    "unknown top-level key": ("[drive]", "colour = 'red'\n[drive]", "colour: unknown key"),
+    "unknown key in a section": ("rabi = 1.0", "rabi = 1.0\nphase = 0.3", "drive.phase: unknown key"),
+    "wrong type": ("n = 12", 'n = "twelve"', "geometry.n: expected a positive integer, got 'twelve'"),
+    "negative width": (
+        "widths = [1.0, 1.0, 0.2]", "widths = [1, -2, 3]",
+        "geometry.widths: expected 3 positive numbers, got [1, -2, 3]",
+    ),
+    "impossible time range": ("t_end = 4.0", "t_end = -1.0", "run.t_end: expected a time after t_start"),
+    "too few points": ("points = 21", "points = 1", "run.points: expected an integer ≥ 2"),
+    "unknown geometry kind": ('kind = "gaussian"', 'kind = "torus"', "geometry.kind: expected one of"),
+    "missing required key": ("rabi = 1.0", "detuning = 0.0", "drive.rabi: missing"),
+    "missing section": ("[run]\nt_end = 4.0\npoints = 21", "", "run: missing section"),
+    "zero laser": ("[drive]", "[drive]\nlaser = [0, 0, 0]", "drive.laser: expected 3 numbers, not all zero"),
+    "detector angle out of range": ("angle = 60", "angle = 200", "detectors.sixty.angle: expected an angle"),
+    "unknown level": (
+        "[levels.meanfield]", "[levels.nosuchlevel]", "levels.nosuchlevel: unknown level; known"
+    ),
+    "unknown level option": ("rtol = 1e-7", "rtl = 1e-7", "levels.meanfield.rtl: unknown option"),
+    "wrong option type": ("rtol = 1e-7", 'rtol = "tight"', "levels.meanfield.rtol: expected a number"),
+    "steady with evolve keys": ("[run]", '[run]\ncalculation = "steady"', "run.t_end: not used by"),
+    "cloud too dense": ("min_distance = 0.1", "min_distance = 0.9", "geometry.min_distance: 12 emitters"),
+    "not TOML": ("[drive]", "[drive", "not valid TOML"),
+}
+
+
+@pytest.mark.parametrize("case", list(BAD))
+def test_bad_study_exits_with_one_line_naming_the_key(case, tmp_path, capsys):
+    old, new, message = BAD[case]
+    study_file = tmp_path / "bad.toml"
+    study_file.write_text(_replace(SMALL, old, new))
+    code, err = _run(["run", study_file, "--out", tmp_path / "out"], capsys)
+    assert code == cli.EXIT_USAGE
+    lines = err.strip().splitlines()
+    assert len(lines) == 1, err
+    assert lines[0].startswith("beyondmf run: error: ")
+    assert message in lines[0], lines[0]
+    assert not (tmp_path / "out" / "results.nc").exists()
+
+
+def test_unknown_level_error_lists_the_known_levels():
+    with pytest.raises(StudyError) as info:
+        parse_study(_replace(SMALL, "[levels.meanfield]", "[levels.nosuchlevel]"))
+    for name in beyondmf.available_levels():
+        assert name in str(info.value)
+
+
+def test_missing_study_file(tmp_path, capsys):
+    code, err = _run(["run", tmp_path / "nowhere.toml", "--out", tmp_path], capsys)
+    assert code == cli.EXIT_USAGE
+    assert err.strip() == f"beyondmf run: error: {tmp_path / 'nowhere.toml'}: no such study file"
+
+
+def test_levels_may_be_a_list_of_names():
+    # a top-level key must come before the first [table] header in TOML
+    study = parse_study('levels = ["meanfield"]\n' + _replace(SMALL, "[levels.meanfield]\nrtol = 1e-7", ""))
+    assert study.levels == {"meanfield": {}}
+
+
+def test_quickstart_file_parses():
+    study = read_study(QUICKSTART)
+    assert study.geometry.kind == "gaussian" and study.geometry.params["n"] == 200
+    assert study.run.t_end == 20.0 and list(study.levels) == ["meanfield"]
+
+
+@pytest.mark.parametrize("command", [[], ["run"], ["levels"], ["bench"]])
+def test_help_for_every_command(command, capsys):
+    with pytest.raises(SystemExit) as info:
+        cli.main([*command, "--help"])
+    assert info.value.code == 0
+    out = capsys.readouterr().out
+    assert out.startswith("usage: beyondmf")
+
+
+def test_levels_command_lists_registered_levels_and_options(capsys):
+    assert cli.main(["levels"]) == 0
+    out = capsys.readouterr().out
+    for name in beyondmf.available_levels():
+        assert out.count(f"{name}: ") == 1
+    assert "rtol = 1e-06" in out
+
+
+def test_bench_refuses_an_unknown_suite_before_measuring(capsys):
+    code, err = _run(["bench", "--suite", "nosuchsuite"], capsys)
+    assert code == cli.EXIT_USAGE
+    assert "--suite: unknown benchmark suite(s) nosuchsuite; known:" in err
+    assert len(err.strip().splitlines()) == 1
+
+
+def test_bad_arguments_are_one_line_errors(capsys):
+    with pytest.raises(SystemExit) as info:
+        cli.main(["run", "study.toml"])  # no --out
+    assert info.value.code == cli.EXIT_USAGE
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and "--out" in err
+
+
+def test_python_dash_m_entry_point_exit_status(tmp_path):
+    """As a shell sees it: `python -m beyondmf` with a bad study exits 2 with one line, no traceback."""
+    study_file = tmp_path / "bad.toml"
+    study_file.write_text(_replace(SMALL, "n = 12", "n = -3"))
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.run(
+        [sys.executable, "-m", "beyondmf", "run", str(study_file), "--out", str(tmp_path / "o")],
+        capture_output=True, text=True, env=env, timeout=120,
+    )
+    assert proc.returncode == 2
+    assert proc.stderr.strip() == "beyondmf run: error: geometry.n: expected a positive integer, got -3"
+    assert "Traceback" not in proc.stderr

@@ -1,0 +1,124 @@
+"""Comparison of levels: statistics of the corrections and the verdicts, on cases with known answers."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import xarray as xr
+from scipy import stats
+
+import beyondmf as bm
+from beyondmf.compare import compare_levels, summarize, verdict_table
+
+
+def _per_realization(values: dict[str, np.ndarray], stderr: dict | None = None) -> xr.Dataset:
+    levels = list(values)
+    data = {"emission_rate": (("level", "realization"), np.array([values[lv] for lv in levels]))}
+    if stderr:
+        data["emission_rate_stderr"] = (("level", "realization"), np.array([stderr[lv] for lv in levels]))
+    return xr.Dataset(data, coords={"level": levels, "realization": np.arange(len(values[levels[0]]))})
+
+
+def test_paired_interval_is_the_t_interval_when_the_baseline_does_not_vary():
+    # With a constant baseline X_b the correction is d̄/X_b and its interval the paired Student-t
+    # interval t_{K-1} s(d)/√K / X_b (handbook formula: e.g. scipy.stats.t.interval).
+    rng = np.random.default_rng(5)
+    d = rng.normal(0.03, 0.02, size=6)
+    ds = _per_realization({"base": np.full(6, 2.0), "other": 2.0 + d})
+    s = summarize(ds, baseline="base", tolerance=0.1, observables=["emission_rate"])
+    lo, hi = stats.t.interval(0.95, 5, loc=d.mean(), scale=d.std(ddof=1) / np.sqrt(6))
+    assert float(s["emission_rate_correction"].sel(level="other")) == pytest.approx(d.mean() / 2, rel=1e-12)
+    assert float(s["emission_rate_correction_low"].sel(level="other")) == pytest.approx(lo / 2, rel=1e-10)
+    assert float(s["emission_rate_correction_high"].sel(level="other")) == pytest.approx(hi / 2, rel=1e-10)
+
+
+def test_verdicts_on_constructed_cases():
+    base = np.array([1.0, 2.0, 3.0, 4.0])  # the draws differ a lot; the paired differences do not
+    ds = _per_realization({
+        "meanfield": base,
+        "close": base * 1.01,            # 1 % everywhere: holds within 5 %
+        "far": base * 1.30,              # 30 %: fails
+        "straddling": base * np.array([1.0, 1.10, 0.98, 1.12]),  # mean ~5 %, wide interval
+    })
+    s = summarize(ds, baseline="meanfield", tolerance=0.05, observables=["emission_rate"])
+    v = dict(zip(s["level"].values, s["emission_rate_verdict"].values, strict=True))
+    assert v == {"meanfield": "baseline", "close": "holds", "far": "fails", "straddling": "undecided"}
+    assert float(s["emission_rate_correction"].sel(level="far")) == pytest.approx(0.30, rel=1e-12)
+    # the draw-to-draw spread sets the uncertainty of the mean, not the width of the paired interval
+    assert float(s["emission_rate_uncertainty"].sel(level="close")) == pytest.approx(
+        1.01 * base.std(ddof=1) / 2, rel=1e-12)
+    assert float(s["emission_rate_correction_high"].sel(level="close")) == pytest.approx(0.01, abs=1e-12)
+    assert s.attrs["tolerance"] == 0.05 and "Student-t" in s.attrs["interval"]
+
+
+def test_sampling_error_of_a_stochastic_level_enters_in_quadrature():
+    # one realization: only the sampling error is left; u = σ and the interval is ±1.96 σ / X_b (normal)
+    ds = _per_realization({"meanfield": np.array([2.0]), "sampled": np.array([2.1])},
+                          {"meanfield": np.array([0.0]), "sampled": np.array([0.05])})
+    s = summarize(ds, baseline="meanfield", tolerance=0.2, observables=["emission_rate"])
+    assert float(s["emission_rate_uncertainty"].sel(level="sampled")) == pytest.approx(0.05)
+    half = float(s["emission_rate_correction_high"].sel(level="sampled")) - 0.05
+    assert half == pytest.approx(stats.norm.ppf(0.975) * 0.05 / 2.0, rel=1e-10)
+    assert str(s["emission_rate_verdict"].sel(level="sampled").values) == "holds"
+    # a tolerance inside the interval: undecided
+    s = summarize(ds, baseline="meanfield", tolerance=0.06, observables=["emission_rate"])
+    assert str(s["emission_rate_verdict"].sel(level="sampled").values) == "undecided"
+
+
+def test_a_zero_baseline_gives_an_undefined_verdict():
+    ds = _per_realization({"meanfield": np.zeros(3), "other": np.array([0.0, 0.1, 0.2])})
+    s = summarize(ds, baseline="meanfield", observables=["emission_rate"])
+    assert str(s["emission_rate_verdict"].sel(level="other").values) == "undefined"
+
+
+def test_bad_arguments_are_explained():
+    ds = _per_realization({"meanfield": np.ones(2)})
+    with pytest.raises(ValueError, match="baseline level 'exact'"):
+        summarize(ds, baseline="exact")
+    with pytest.raises(ValueError, match="tolerance"):
+        summarize(ds, tolerance=-1, observables=["emission_rate"])
+    with pytest.raises(ValueError, match="g2"):
+        summarize(ds, observables=["g2"])
+
+
+def _deterministic_levels() -> list[str]:
+    return [name for name in bm.available_levels() if not bm.get_level(name).stochastic]
+
+
+def test_single_emitter_every_deterministic_level_agrees_with_mean_field():
+    # One emitter: mean field is exact (conventions.md; the optical Bloch equations), and the steady
+    # excited population is (s/2)/(1 + s) with s = 2Ω²/(1 + 4Δ²) (textbook two-level result, e.g.
+    # Foot, Atomic Physics (OUP 2005), eq. 7.84, from memory); P = Γ0 · that population.
+    rabi, det = 1.3, 0.4
+    levels = {name: {} for name in _deterministic_levels()}
+    levels["meanfield_tight"] = {"level": "meanfield", "rtol": 1e-10, "atol": 1e-12}
+    s = compare_levels(np.zeros((1, 3)), levels, model={"rabi": rabi, "detuning": det}, tolerance=1e-4,
+                       detectors={"forward": (0, 0, 1), "side": (0, 1, 0)})
+    sat = 2 * rabi**2 / (1 + 4 * det**2)
+    np.testing.assert_allclose(s["emission_rate"].values, sat / 2 / (1 + sat), rtol=1e-5)
+    table = verdict_table(s)
+    for lv in levels:
+        if lv != "meanfield":
+            assert table[lv]["emission_rate"] == "holds", (lv, table[lv])
+            assert table[lv]["intensity"] == "holds", (lv, table[lv])
+            # g2 of one emitter is 0 (σ⁺σ⁺ = 0): no relative correction exists
+            assert table[lv]["g2"] == "undefined"
+    assert s["emission_rate_realizations"].dims == ("level", "realization")
+
+
+def test_compare_levels_uses_the_same_draws_at_every_level(tmp_path):
+    def disc(seed):
+        return bm.geometry.ellipsoid_cloud(4, [1.0, 1.0, 0.2], seed=seed, min_distance=0.05)
+
+    levels = {"meanfield": {}, "meanfield_tight": {"level": "meanfield", "rtol": 1e-10, "atol": 1e-12}}
+    s = compare_levels(disc, levels, realizations=3, seed=2, model={"rabi": 1.0}, times=np.linspace(0, 2, 5),
+                       tolerance=1e-3, out=tmp_path)
+    per = s["emission_rate_realizations"]
+    # different draws differ, the same draw at two tolerances agrees to the solver tolerance
+    assert float(abs(per.sel(level="meanfield", realization=0) - per.sel(level="meanfield", realization=1))
+                 .isel(time=-1)) > 1e-3
+    np.testing.assert_allclose(per.sel(level="meanfield"), per.sel(level="meanfield_tight"), rtol=1e-4)
+    verdict = s["emission_rate_verdict"].sel(level="meanfield_tight").values
+    assert verdict[0] == "undefined"  # t = 0 from the ground state: P = 0, no relative correction
+    assert set(verdict[1:]) == {"holds"} and verdict_table(s)["meanfield_tight"]["emission_rate"] == "holds"
+    assert len(list((tmp_path / "tasks").glob("*.nc"))) == 6

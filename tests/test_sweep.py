@@ -1,0 +1,209 @@
+"""Sweeps: resume after a kill, recomputation of damaged task files, dask = in-process, study errors."""
+
+from __future__ import annotations
+
+import textwrap
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from beyondmf import load as bm_load
+from beyondmf.executors import Dask, execute
+from beyondmf.study import StudyError
+from beyondmf.sweep import _point_study, read_study, run_sweep, study_tasks
+from beyondmf.tasks import task_key, task_path
+
+STUDY = """
+title = "test sweep: small discs, mean field"
+[geometry]
+kind = "ellipsoid"
+n = 3
+semi_axes = [1.0, 1.0, 0.2]
+min_distance = 0.05
+[drive]
+rabi = 1.0
+[detectors]
+forward = [0, 0, 1]
+side = [1, 0, 0]
+[run]
+calculation = "evolve"
+t_end = 2.0
+points = 5
+[levels.meanfield]
+[sweep]
+realizations = 2
+seed = 3
+[sweep.grid]
+"geometry.density" = [0.2, 2.0]
+"drive.saturation" = [0.5, 4.0]
+"""
+
+
+def _study(tmp_path, text=STUDY, quick=False):
+    path = tmp_path / "study.toml"
+    path.write_text(textwrap.dedent(text))
+    return read_study(path, quick=quick)
+
+
+def _same(a: xr.Dataset, b: xr.Dataset) -> None:
+    for name in a.data_vars:
+        np.testing.assert_array_equal(a[name].values, b[name].values, err_msg=name)
+
+
+class _Killed(Exception):
+    pass
+
+
+def test_killed_run_resumes_to_the_uninterrupted_result(tmp_path):
+    study = _study(tmp_path)
+    full = run_sweep(study, tmp_path / "full", progress=False)
+    assert full["emission_rate"].dims == ("density", "saturation", "level", "realization", "time")
+    done = []
+
+    def kill_after_three(key, status):
+        done.append(key)
+        if len(done) == 3:
+            raise _Killed
+
+    with pytest.raises(_Killed):
+        run_sweep(study, tmp_path / "part", progress=False, on_done=kill_after_three)
+    assert len(list((tmp_path / "part" / "tasks").glob("*.nc"))) == 3
+    assert not (tmp_path / "part" / "results.nc").exists()
+    rerun = []
+    resumed = run_sweep(study, tmp_path / "part", progress=False, on_done=lambda k, s: rerun.append(k))
+    assert len(rerun) == 8 - 3 and not set(rerun) & set(done)  # finished tasks are not run again
+    _same(full, resumed)
+
+
+def test_damaged_task_files_are_recomputed(tmp_path):
+    study = _study(tmp_path)
+    out = tmp_path / "out"
+    ref = run_sweep(study, out, progress=False)
+    index = study_tasks(study)[0]
+    tasks = list({task_key(t): t for t in index.values()}.values())
+    truncated, garbage, foreign = (task_path(out, task_key(t)) for t in tasks[:3])
+    truncated.write_bytes(truncated.read_bytes()[:200])  # a partial write
+    garbage.write_bytes(b"not a netcdf file")
+    foreign.write_bytes(task_path(out, task_key(tasks[3])).read_bytes())  # another task's file
+    rerun = []
+    with pytest.warns(UserWarning, match="recomputing task"):
+        again = run_sweep(study, out, progress=False, on_done=lambda k, s: rerun.append(k))
+    assert sorted(rerun) == sorted(task_key(t) for t in tasks[:3])
+    _same(ref, again)
+
+
+def test_task_keys_are_stable_across_number_spellings(tmp_path):
+    a = _study(tmp_path, STUDY.replace("rabi = 1.0", "rabi = 1"))
+    b = _study(tmp_path)
+    keys = [[task_key(t) for t in study_tasks(s)[0].values()] for s in (a, b)]
+    assert keys[0] == keys[1]
+
+
+def test_two_dask_workers_on_loopback_give_the_in_process_result(tmp_path):
+    study = _study(tmp_path, STUDY.replace('"drive.saturation" = [0.5, 4.0]', '"drive.saturation" = [0.5]'))
+    plain = run_sweep(study, tmp_path / "plain", progress=False)
+    distributed = run_sweep(study, tmp_path / "dask", executor=Dask(workers=2), progress=False)
+    _same(plain, distributed)
+
+
+def test_quick_overrides_shrink_the_sweep(tmp_path):
+    text = STUDY + '\n[quick]\nsweep = { realizations = 1, grid = { "drive.saturation" = [1.0] } }\n'
+    quick = _study(tmp_path, text, quick=True)
+    index, labels, k, dims, _ = study_tasks(quick)
+    assert k == 1 and dims == [("density", [0.2, 2.0]), ("saturation", [1.0])] and len(index) == 2
+
+
+def test_density_grid_rescales_the_cloud_at_its_shape(tmp_path):
+    study = _study(tmp_path, STUDY.replace("n = 3", "n = 40"))
+    st = _point_study(study.extra["raw"], {"geometry.density": 2.0})
+    a, b, c = st.geometry.params["semi_axes"]
+    # uniform ellipsoid: n = ρ (4π/3) abc (volume of an ellipsoid, handbook formula); shape 1 : 1 : 0.2 kept
+    assert 40 / (4 / 3 * np.pi * a * b * c) == pytest.approx(2.0, rel=1e-12)
+    assert (b / a, c / a) == pytest.approx((1.0, 0.2), rel=1e-12)
+
+
+@pytest.mark.parametrize(
+    "section, key",
+    [
+        ("[sweep]\nrealisations = 2", "sweep.realisations"),
+        ("[sweep]\nrealizations = 0", "sweep.realizations"),
+        ("[sweep]\nseed = -1", "sweep.seed"),
+        ('[sweep.grid]\n"drive.rabbi" = [1, 2]', "drive.rabbi"),
+        ('[sweep.grid]\n"colour.n" = [1, 2]', "sweep.grid.colour.n"),
+        ('[sweep.grid]\n"drive.rabi" = 1.0', "sweep.grid.drive.rabi"),
+        ('[sweep.grid]\n"drive.rabi" = [1.0, 1.0]', "sweep.grid.drive.rabi"),
+        ('[sweep.grid]\n"drive.rabi" = [1.0, -2.0]', "drive.rabi"),
+        ("[compare]\ntolerance = -0.1", "compare.tolerance"),
+        ("[compare]\nconfidence = 95", "compare.confidence"),
+        ('[compare]\nobservables = ["brightness"]', "compare.observables"),
+        ("[compare]\nverdict = true", "compare.verdict"),
+        ('[compare]\nbaseline = "twa"', "compare.baseline"),
+    ],
+)
+def test_bad_sweep_and_compare_keys_are_named(tmp_path, section, key):
+    text = STUDY.split("[sweep]")[0] + section + "\n"
+    with pytest.raises(StudyError, match=key.replace(".", r"\.")):
+        study = _study(tmp_path, text)
+        study_tasks(study)
+        run_sweep(study, tmp_path / "out", progress=False)
+
+
+def test_density_grid_on_a_lattice_is_refused(tmp_path):
+    text = STUDY.replace('kind = "ellipsoid"\nn = 3\nsemi_axes = [1.0, 1.0, 0.2]\nmin_distance = 0.05',
+                         'kind = "plane"\nnx = 2\nny = 2\nspacing = 0.3')
+    with pytest.raises(StudyError, match=r"sweep\.grid\.geometry\.density: needs a random cloud"):
+        study_tasks(_study(tmp_path, text))
+
+
+def test_quick_without_a_quick_table_runs_the_study_unchanged(tmp_path):
+    with pytest.warns(UserWarning, match="no \\[quick\\] table"):
+        study = _study(tmp_path, quick=True)
+    assert study_tasks(study)[2] == 2
+
+
+def test_in_memory_execution_matches_files(tmp_path):
+    study = _study(tmp_path)
+    index = study_tasks(study)[0]
+    tasks = list(index.values())[:2]
+    mem = execute(tasks, None, progress=False)
+    disk = execute(tasks, tmp_path / "o", progress=False)
+    for key in mem:
+        np.testing.assert_array_equal(mem[key]["emission_rate"], disk[key]["emission_rate"])
+
+
+def test_command_line_runs_a_quick_comparison_study(tmp_path, capsys):
+    from beyondmf.cli import main
+
+    text = STUDY.replace("[levels.meanfield]", '[levels.meanfield]\n[levels.cumulant2]') + (
+        '\n[compare]\ntolerance = 0.1\n[quick]\n'
+        'sweep = { realizations = 1, grid = { "drive.saturation" = [1.0] } }\n')
+    path = tmp_path / "study.toml"
+    path.write_text(text)
+    assert main(["run", str(path), "--out", str(tmp_path / "out"), "--quick"]) == 0
+    ds = bm_load(tmp_path / "out" / "results.nc")
+    assert list(ds["level"].values) == ["meanfield", "cumulant2"] and "emission_rate_verdict" in ds
+    assert (tmp_path / "out" / "correction_map.png").exists()
+    assert "verdicts against meanfield" in capsys.readouterr().err
+    assert main(["run", str(path), "--out", str(tmp_path / "o2"), "--workers", "0"]) == 2
+
+
+@pytest.mark.parametrize("quick", [False, True])
+def test_shipped_studies_parse_and_expand(quick):
+    from pathlib import Path
+
+    for path in sorted((Path(__file__).parent.parent / "studies").glob("*.toml")):
+        study = read_study(path, quick=quick)
+        index, labels, k, dims, _ = study_tasks(study)
+        assert index and labels, path
+
+
+def test_a_level_that_refuses_the_model_gives_nan_and_a_failure_note(tmp_path):
+    # dicke needs all-to-all couplings; the study's vector couplings make it refuse every task
+    study = _study(tmp_path, STUDY.replace("[levels.meanfield]", "[levels.meanfield]\n[levels.dicke]")
+                   .replace("realizations = 2", "realizations = 1"))
+    ds = run_sweep(study, tmp_path / "out", progress=False)
+    assert np.isfinite(ds["emission_rate"].sel(level="meanfield")).all()
+    assert np.isnan(ds["emission_rate"].sel(level="dicke")).all()
+    assert len(ds.attrs["failures"]) == 4
+    assert all("dicke" in f or "all-to-all" in f for f in ds.attrs["failures"])
