@@ -14,14 +14,16 @@ Scalar: Γ_ij = sin ξ/ξ, J_ij = −½ cos ξ/ξ. All-to-all (Dicke limit): Γ_
 
 from __future__ import annotations
 
+import functools
 from typing import Literal
 
+import jax
+import jax.numpy as jnp
 import numpy as np
 
-__all__ = ["couplings", "validate_custom", "KINDS"]
+__all__ = ["couplings", "device_couplings", "validate_custom", "KINDS"]
 
 KINDS = ("vector", "scalar", "all-to-all")
-_BLOCK = 1024  # rows per block: keeps temporaries at a few × 1024 × N doubles
 
 
 def _unit(vec, name: str) -> np.ndarray:
@@ -34,25 +36,39 @@ def _unit(vec, name: str) -> np.ndarray:
     return v / norm
 
 
-def _pair_block(pos: np.ndarray, rows: slice, dipole: np.ndarray, kind: str):
-    r = pos[rows, None, :] - pos[None, :, :]
-    dist = np.linalg.norm(r, axis=-1)
-    i_idx = np.arange(rows.start, rows.stop)
-    same = i_idx[:, None] == np.arange(len(pos))[None, :]
-    xi = 2 * np.pi * np.where(same, 1.0, dist)
-    sin, cos = np.sin(xi), np.cos(xi)
+@functools.partial(jax.jit, static_argnames="kind")
+def _pair_matrices(pos, pol, kind: str):
+    """J and Γ as one fused elementwise XLA loop: no N×N temporaries beyond the two outputs.
+
+    ``pol`` = Re(ê* ⊗ ê), so that |ê·r̂|² = r̂ᵀ pol r̂ for any complex ê.
+    """
+    x, y, z = pos[:, 0], pos[:, 1], pos[:, 2]
+    dx, dy, dz = x[:, None] - x[None, :], y[:, None] - y[None, :], z[:, None] - z[None, :]
+    n = pos.shape[0]
+    same = jnp.arange(n)[:, None] == jnp.arange(n)[None, :]
+    d2 = jnp.where(same, 1.0, dx * dx + dy * dy + dz * dz)
+    xi = 2 * jnp.pi * jnp.sqrt(d2)
+    sin, cos, inv = jnp.sin(xi), jnp.cos(xi), 1 / xi
     if kind == "scalar":
-        gam = sin / xi
-        jay = -0.5 * cos / xi
+        gam = sin * inv
+        jay = -0.5 * cos * inv
     else:
-        rhat = r / np.where(same, 1.0, dist)[..., None]
-        c2 = np.abs(rhat @ dipole) ** 2  # |ê·r̂|², real
-        xi2, xi3 = xi**2, xi**3
-        gam = 1.5 * ((1 - c2) * sin / xi + (1 - 3 * c2) * (cos / xi2 - sin / xi3))
-        jay = 0.75 * (-(1 - c2) * cos / xi + (1 - 3 * c2) * (sin / xi2 + cos / xi3))
-    gam[same] = 1.0
-    jay[same] = 0.0
-    return jay, gam
+        c2 = (
+            pol[0, 0] * dx * dx + pol[1, 1] * dy * dy + pol[2, 2] * dz * dz
+            + 2 * (pol[0, 1] * dx * dy + pol[0, 2] * dx * dz + pol[1, 2] * dy * dz)
+        ) / d2
+        gam = 1.5 * ((1 - c2) * sin * inv + (1 - 3 * c2) * (cos * inv**2 - sin * inv**3))
+        jay = 0.75 * (-(1 - c2) * cos * inv + (1 - 3 * c2) * (sin * inv**2 + cos * inv**3))
+    return jnp.where(same, 0.0, jay), jnp.where(same, 1.0, gam)
+
+
+def device_couplings(positions: np.ndarray, dipole: np.ndarray, kind: str):
+    """(J, Γ) as JAX arrays on the default device; ``positions`` and ``dipole`` already validated."""
+    n = len(positions)
+    if kind == "all-to-all":
+        return jnp.zeros((n, n)), jnp.ones((n, n))
+    pol = np.real(np.outer(np.conj(dipole), dipole))
+    return _pair_matrices(jnp.asarray(positions, dtype=float), jnp.asarray(pol), kind)
 
 
 def couplings(
@@ -70,7 +86,8 @@ def couplings(
 
     Returns
     -------
-    (J, Gamma) : two real symmetric (N, N) float64 arrays in units of Γ0, J_ii = 0, Γ_ii = 1.
+    (J, Gamma) : two real symmetric (N, N) float64 arrays in units of Γ0, J_ii = 0, Γ_ii = 1
+        (read-only views of the JAX arrays they were computed as).
 
     Examples
     --------
@@ -85,16 +102,8 @@ def couplings(
         raise ValueError("positions contain NaN or infinite values")
     if kind not in KINDS:
         raise ValueError(f"unknown coupling kind {kind!r}; choose one of {', '.join(KINDS)}")
-    n = len(pos)
-    if kind == "all-to-all":
-        return np.zeros((n, n)), np.ones((n, n))
-    e = _unit(dipole, "dipole")
-    J = np.empty((n, n))
-    G = np.empty((n, n))
-    for start in range(0, n, _BLOCK):
-        rows = slice(start, min(n, start + _BLOCK))
-        J[rows], G[rows] = _pair_block(pos, rows, e, kind)
-    return J, G
+    J, G = device_couplings(pos, _unit(dipole, "dipole"), kind)
+    return np.asarray(J), np.asarray(G)
 
 
 def validate_custom(J, Gamma, n: int, tol: float = 1e-9) -> tuple[np.ndarray, np.ndarray]:

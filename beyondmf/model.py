@@ -6,9 +6,10 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+import jax.numpy as jnp
 import numpy as np
 
-from .couplings import KINDS, _unit, couplings, validate_custom
+from .couplings import KINDS, _unit, device_couplings, validate_custom
 from .geometry import nearest_distance
 from .memory import require
 
@@ -116,6 +117,8 @@ class Model:
     envelope: Any = None
     J: np.ndarray = field(init=False, repr=False)
     Gamma: np.ndarray = field(init=False, repr=False)
+    _device: tuple = field(init=False, repr=False)
+    _stiffness: float = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
         pos = np.array(self.positions, dtype=float)
@@ -148,17 +151,18 @@ class Model:
                         f"emitters {i} and {j} are {dmin:.3g} λ0 apart, closer than {MIN_SEPARATION} λ0: "
                         "the couplings diverge there; draw the cloud with a min_distance"
                     )
-            J, G = couplings(pos, dip, self.coupling)
+            Jd, Gd = device_couplings(pos, dip, self.coupling)
             kind = self.coupling
         else:
             try:
                 Jc, Gc = self.coupling
             except (TypeError, ValueError) as err:
                 raise ValueError("coupling must be a kind name or a (J, Gamma) pair of arrays") from err
-            J, G = validate_custom(Jc, Gc, len(pos))
+            Jd, Gd = (jnp.asarray(m) for m in validate_custom(Jc, Gc, len(pos)))
             kind = "custom"
-        for a in (pos, J, G):
-            a.setflags(write=False)
+        pos.setflags(write=False)
+        # Gershgorin bound, one fused reduction over the device arrays (no N×N temporaries)
+        stiff = jnp.max(jnp.sum(jnp.abs(Jd), axis=1) + 0.5 * jnp.sum(jnp.abs(Gd), axis=1))
         set_ = object.__setattr__
         set_(self, "positions", pos)
         set_(self, "dipole", dip)
@@ -167,8 +171,11 @@ class Model:
         set_(self, "detuning", det)
         set_(self, "envelope", env)
         set_(self, "coupling", kind)
-        set_(self, "J", J)
-        set_(self, "Gamma", G)
+        set_(self, "_device", (Jd, Gd))
+        set_(self, "_stiffness", float(stiff))
+        # zero-copy read-only NumPy views of the device arrays (on the CPU)
+        set_(self, "J", np.asarray(Jd))
+        set_(self, "Gamma", np.asarray(Gd))
 
     @property
     def n(self) -> int:
@@ -200,7 +207,11 @@ class Model:
         An explicit integrator needs steps of order 1/stiffness; far above the drive and decay scales
         the equations are stiff.
         """
-        return float(np.max(np.abs(self.J).sum(axis=1) + 0.5 * np.abs(self.Gamma).sum(axis=1)))
+        return self._stiffness
+
+    def device_couplings(self):
+        """(J, Γ) as the JAX arrays the levels compute with, held once per model."""
+        return self._device
 
     def parameters(self) -> dict[str, Any]:
         """The model's parameters as plain values, for a results file's attributes."""

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import warnings
 
-import _cumulant_reference as ref  # noqa: E402  (tests/ is on sys.path under pytest)
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -19,6 +18,7 @@ from scipy.integrate import solve_ivp
 import beyondmf as bm
 from beyondmf.estimators_pair import pair_field_moments, pair_rate_moments
 from beyondmf.levels.cumulant2 import cumulant2_args, cumulant2_rhs, pack, product_state, unpack
+from tests import _cumulant_reference as ref
 
 TIGHT = {"rtol": 1e-9, "atol": 1e-11}
 GROUND = np.array([0.0, 0.0, -1.0])

@@ -76,10 +76,11 @@ def _observe(y, obs_args):
 
 def coupling_args(model: Model) -> dict[str, Any]:
     """The model's arrays as the JAX pytree the right-hand sides read."""
-    args = {"J": jnp.asarray(model.J.real), "G": jnp.asarray(model.Gamma.real)}
+    J, G = model.device_couplings()
     if model.complex_couplings:
-        args["Ji"] = jnp.asarray(np.imag(model.J))
-        args["Gi"] = jnp.asarray(np.imag(model.Gamma))
+        args = {"J": J.real, "G": G.real, "Ji": J.imag, "Gi": G.imag}
+    else:
+        args = {"J": J, "G": G}
     om = model.rabi_sites
     args["omega"] = jnp.asarray(np.stack([om.real, om.imag]))
     args["detuning"] = jnp.asarray(model.detuning)
@@ -99,8 +100,9 @@ class MeanField(Level):
     options = dict(ODE_OPTIONS)
 
     def _prepare(self, model: Model, probes: Probes, options):
-        n_mats = 4 if model.complex_couplings else 2
-        require(8 * model.n**2 * (n_mats + 1), f"mean field for {model.n} emitters")
+        # beyond the model's own J and Γ: real/imag splits of complex ones, one N×N temporary per save
+        extra = 5 if model.complex_couplings else 1
+        require(8 * model.n**2 * extra, f"mean field for {model.n} emitters")
         solver = pick_solver(options["solver"], 3 * model.n, model.stiffness())
         args = coupling_args(model)
         gamma = args["G"] + 1j * args["Gi"] if "Gi" in args else args["G"]
