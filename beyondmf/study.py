@@ -28,7 +28,14 @@ from .levels.base import available_levels, get_level
 from .model import Model
 
 __all__ = [
-    "StudyError", "Study", "read_study", "parse_study", "parse_table", "run_study", "section", "detector_direction",
+    "StudyError",
+    "Study",
+    "read_study",
+    "parse_study",
+    "parse_table",
+    "run_study",
+    "section",
+    "detector_direction",
 ]
 
 

@@ -231,7 +231,8 @@ def test_dense_triangle_cumulant2_beats_meanfield(rabi):
 def test_dense_rings_cumulant2_beats_meanfield(n, rabi):
     """Rings of N = 4–6 emitters 0.2 λ0 apart (ê ⊥ plane), Ω = 1 and 3, from the ground state: cumulant2's
     relative emission-rate error against exact dynamics is at least 3× below mean field's (see the table
-    in docs/cumulant2.md). At 0.1 λ0 spacing this no longer holds for N = 5 at Ω = 3 and for N = 6 (documented there)."""
+    in docs/cumulant2.md). At 0.1 λ0 spacing this no longer holds for N = 5 at Ω = 3 and for N = 6
+    (documented there)."""
     err = _rate_errors(n, 0.2, rabi, CLUSTER_TIMES)
     assert err["cumulant2"] < err["meanfield"] / 3, err
 
