@@ -41,10 +41,9 @@ RTOL, ATOL = 1e-6, 1e-8
 
 
 def _solve_bytes(n: int) -> float:
-    """Peak memory of a mean-field solve (bytes), as measured: the model's J and Γ (16N²), JAX's copies
-    of them inside the solve (16N²) and one N×N temporary of the observables (8N²); while the model is
-    built, J and Γ (16N²) and the row blocks in which they are computed (~24 arrays of 1024 × N doubles)."""
-    return max(40.0 * n**2, 16.0 * n**2 + 24 * 1024 * 8.0 * n)
+    """Peak memory of a mean-field solve (bytes): the model's J and Γ, held once as device arrays (16N²),
+    and one N×N temporary of the observables at a save point (8N²)."""
+    return 24.0 * n**2
 
 
 def cloud_model(n: int, width: float = WIDTH, min_distance: float = MIN_DISTANCE, seed: int = 0) -> Model:
