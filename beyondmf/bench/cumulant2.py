@@ -56,7 +56,7 @@ def bench_cumulant2(full: bool, machine: Machine) -> list[Row]:
                 "target ≥ 0.4 at N = 1000"),
         ]
         del f, y, args, model
-    n_cloud = 1000 if full else 500
+    n_cloud = 1000
     model = _cloud(n_cloud, seed=2)
     times = np.linspace(0, 10, 11)
     t0 = time.perf_counter()
