@@ -1,8 +1,8 @@
 """Level "twa": discrete truncated Wigner sampling of driven, collectively decaying spins ½.
 
 Each sample is a classical spin s_i = (x_i, y_i, z_i) per emitter. Initial samples come from the discrete
-Wigner function of the initial product state (W. K. Wootters, Ann. Phys. 176, 1 (1987); its use as a
-truncated Wigner sampler: J. Schachenmayer, A. Pikovski, A. M. Rey, Phys. Rev. X 5, 011022 (2015)): along
+Wigner function of the initial product state (W. K. Wootters, Ann. Phys. 176, 1 (1987); the truncated
+Wigner approach as reviewed by A. Polkovnikov, Ann. Phys. 325, 1790 (2010)): along
 the Bloch direction u the component is ±1 with probabilities (1 ± |s|)/2, the two transverse components
 are ±1 with equal probability. Each sample then obeys the Itô equations (derivation: docs/twa.md)
 
