@@ -7,6 +7,7 @@ no storage of the full state history), and turns a failed solve into an error th
 
 from __future__ import annotations
 
+import functools
 import sys
 import warnings
 from collections.abc import Callable
@@ -17,7 +18,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-__all__ = ["ODE_OPTIONS", "SolveError", "solve", "settle", "pick_solver"]
+__all__ = ["ODE_OPTIONS", "SolveError", "solve", "settle", "pick_solver", "per_envelope"]
 
 ODE_OPTIONS: dict[str, Any] = {
     "solver": "auto",
@@ -39,6 +40,12 @@ IMPLICIT = ("kvaerno3", "kvaerno5")
 # the explicit steps it saves.
 IMPLICIT_MAX_SIZE = 3000
 STIFF_RATIO = 200.0  # stiffness (Γ0) above which an explicit solver is warned about
+
+
+def per_envelope(build: Callable) -> Callable:
+    """Decorator for a level's ``build(envelope) -> rhs``: equal envelopes get the same right-hand-side
+    function, so every model of one shape reuses one compiled solve (`solve` caches by function)."""
+    return functools.lru_cache(maxsize=64)(build)
 
 
 class SolveError(RuntimeError):

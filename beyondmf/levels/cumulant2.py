@@ -38,7 +38,6 @@ truncation can produce unphysical moments, reported per time in the diagnostics 
 
 from __future__ import annotations
 
-import functools
 import warnings
 from typing import Any
 
@@ -47,7 +46,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..estimators_pair import pair_field_moments, pair_rate_moments
-from ..integrate import ODE_OPTIONS, pick_solver, settle, solve
+from ..integrate import ODE_OPTIONS, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
@@ -116,13 +115,9 @@ def cumulant2_args(model: Model) -> dict[str, Any]:
     }
 
 
+@per_envelope
 def cumulant2_rhs(envelope: Envelope):
     """The cumulant2 right-hand side for one envelope (cached so equal envelopes share a compile)."""
-    return _rhs_for(envelope)
-
-
-@functools.lru_cache(maxsize=64)
-def _rhs_for(envelope: Envelope):
     def rhs(t, y, args):
         beta, n, A, B, Z, D = unpack(y)
         Kr, Ki = args["Kr"], args["Ki"]

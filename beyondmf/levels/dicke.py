@@ -30,14 +30,12 @@ The emission rate and its four-body sum are ⟨J⁺J⁻⟩ and ⟨J⁺J⁺J⁻J�
 
 from __future__ import annotations
 
-import functools
-
 import jax
 import jax.numpy as jnp
 import numpy as np
 from scipy.special import gammaln
 
-from ..integrate import IMPLICIT_MAX_SIZE, ODE_OPTIONS, STIFF_RATIO, pick_solver, settle, solve
+from ..integrate import IMPLICIT_MAX_SIZE, ODE_OPTIONS, STIFF_RATIO, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
@@ -77,13 +75,9 @@ def _shift(x, dk: int, dl: int):
     return jax.lax.dynamic_slice(big, (max(dk, 0), max(dl, 0)), (m, n))
 
 
+@per_envelope
 def dicke_rhs(envelope: Envelope):
     """The symmetric-space right-hand side for one envelope (cached: equal envelopes share a compile)."""
-    return _rhs_for(envelope)
-
-
-@functools.lru_cache(maxsize=64)
-def _rhs_for(envelope: Envelope):
     def rhs(t, y, args):
         # every term is elementwise on ρ_kl or a shift of it (J^± are one off-diagonal): no transposes
         rho = y[0] + 1j * y[1]

@@ -26,7 +26,6 @@ mixed state); distinct limits reveal a non-unique steady state (a lower bound on
 
 from __future__ import annotations
 
-import functools
 from typing import Any
 
 import jax
@@ -34,7 +33,7 @@ import jax.numpy as jnp
 import numpy as np
 import scipy.linalg
 
-from ..integrate import ODE_OPTIONS, SolveError, pick_solver, settle, solve
+from ..integrate import ODE_OPTIONS, SolveError, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
 from . import _qubits as q
@@ -57,13 +56,9 @@ def _model_args(model: Model) -> dict[str, Any]:
     }
 
 
+@per_envelope
 def exact_rhs(envelope: Envelope):
     """The matrix-free Lindblad right-hand side for one envelope (cached: equal envelopes share a compile)."""
-    return _rhs_for(envelope)
-
-
-@functools.lru_cache(maxsize=64)
-def _rhs_for(envelope: Envelope):
     def rhs(t, y, args):
         rho = y[0] + 1j * y[1]
         tab = args["tab"]

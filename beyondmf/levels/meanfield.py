@@ -15,7 +15,6 @@ inverted (an unstable fixed point), and g2 is that of a product state.
 
 from __future__ import annotations
 
-import functools
 from typing import Any
 
 import jax
@@ -23,7 +22,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..estimators import product_field_moments, product_rate_moments
-from ..integrate import ODE_OPTIONS, pick_solver, settle, solve
+from ..integrate import ODE_OPTIONS, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
@@ -41,13 +40,9 @@ def _coupled(args, B):
     return (JB[:, 0], JB[:, 1]), (GB[:, 0], GB[:, 1])
 
 
+@per_envelope
 def meanfield_rhs(envelope: Envelope):
     """The mean-field right-hand side for one envelope (cached so equal envelopes share a compile)."""
-    return _rhs_for(envelope)
-
-
-@functools.lru_cache(maxsize=64)
-def _rhs_for(envelope: Envelope):
     def rhs(t, y, args):
         br, bi, n = y[0], y[1], y[2]
         (jr, ji), (gr, gi) = _coupled(args, jnp.stack([br, bi], axis=1))
