@@ -99,14 +99,22 @@ def _solver_fn(rhs, observe, solver: str, rtol, atol, max_steps, dtmin, jump_ts,
 
     @jax.jit
     def run(y0, args, ts, obs_args):
+        # complex arguments travel as (real, imag) pairs: diffrax's complex support is unfinished (it
+        # warns on any complex leaf); the level's right-hand side still sees complex arrays
+        flags = jax.tree.map(jnp.iscomplexobj, args)
+        split = jax.tree.map(lambda f, x: (jnp.real(x), jnp.imag(x)) if f else x, flags, args)
+
+        def real_rhs(t, y, a):
+            return rhs(t, y, jax.tree.map(lambda f, x: x[0] + 1j * x[1] if f else x, flags, a))
+
         sol = diffrax.diffeqsolve(
-            diffrax.ODETerm(rhs),
+            diffrax.ODETerm(real_rhs),
             SOLVERS[solver](),
             t0=ts[0],
             t1=ts[-1],
             dt0=None,
             y0=y0,
-            args=args,
+            args=split,
             saveat=diffrax.SaveAt(
                 subs=[
                     diffrax.SubSaveAt(ts=ts, fn=lambda t, y, a: observe(y, obs_args)),
