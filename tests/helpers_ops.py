@@ -3,6 +3,7 @@
 from functools import reduce
 
 import numpy as np
+from scipy.integrate import solve_ivp
 
 SM = np.array([[0, 1], [0, 0]], dtype=complex)  # σ⁻|e⟩ = |g⟩ with |g⟩ = index 0, |e⟩ = index 1
 
@@ -52,3 +53,28 @@ def hamiltonian(model, sm, envelope=1.0):
             if i != j:
                 H += model.J[i, j] * sp @ sm[j]
     return H
+
+
+def dense_liouvillian(model):
+    """The dense Lindblad generator of ``model`` (conventions.md), row-major vec, envelope 1."""
+    sm = lowering(model.n)
+    return liouvillian(hamiltonian(model, sm), model.Gamma, sm)
+
+
+def dicke_ladder_rate(n, times):
+    """Emission rate of the symmetric ladder |J, M⟩, J = N/2, from full inversion M = J, decaying
+    M → M − 1 at (J + M)(J − M + 1)Γ0 (R. H. Dicke, Phys. Rev. 93, 99 (1954); M. Gross and S. Haroche,
+    Phys. Rep. 93, 301 (1982)), integrated with scipy's solve_ivp."""
+    j = n / 2
+    m = j - np.arange(n + 1)
+    rate = (j + m) * (j - m + 1)
+
+    def f(_t, p):
+        d = -rate * p
+        d[1:] += rate[:-1] * p[:-1]
+        return d
+
+    p0 = np.zeros(n + 1)
+    p0[0] = 1.0
+    sol = solve_ivp(f, (times[0], times[-1]), p0, t_eval=times, method="LSODA", rtol=1e-10, atol=1e-13)
+    return rate @ sol.y

@@ -13,12 +13,12 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 import scipy.linalg
-from scipy.integrate import solve_ivp
 
 import beyondmf as bm
 from beyondmf.estimators_pair import pair_field_moments, pair_rate_moments
 from beyondmf.levels.cumulant2 import cumulant2_args, cumulant2_rhs, pack, product_state, unpack
 from tests import _cumulant_reference as ref
+from tests.helpers_ops import dicke_ladder_rate
 
 TIGHT = {"rtol": 1e-9, "atol": 1e-11}
 GROUND = np.array([0.0, 0.0, -1.0])
@@ -263,25 +263,6 @@ def test_dilute_cloud_agrees_with_meanfield():
 
 
 # --- superradiance ---------------------------------------------------------------------------------
-
-def dicke_ladder_rate(n, ts):
-    """Emission rate of the symmetric ladder |J, M⟩, J = N/2, decaying M → M − 1 at (J + M)(J − M + 1)
-    from M = J (R. H. Dicke, Phys. Rev. 93, 99 (1954); M. Gross and S. Haroche, Phys. Rep. 93, 301 (1982)),
-    solved with scipy."""
-    jj = n / 2
-    m = jj - np.arange(n + 1)
-    rate = (jj + m) * (jj - m + 1)
-
-    def f(_t, p):
-        d = -rate * p
-        d[1:] += rate[:-1] * p[:-1]
-        return d
-
-    p0 = np.zeros(n + 1)
-    p0[0] = 1
-    sol = solve_ivp(f, (ts[0], ts[-1]), p0, t_eval=ts, method="LSODA", rtol=1e-10, atol=1e-12)
-    return rate @ sol.y
-
 
 def burst_errors(n):
     model = bm.Model(np.zeros((n, 3)) + np.arange(n)[:, None], coupling="all-to-all")

@@ -4,10 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy.integrate import solve_ivp
 
 import beyondmf as bm
 from beyondmf import Model
+from tests.helpers_ops import dicke_ladder_rate
 
 
 def dicke_model(n, **kw):
@@ -17,29 +17,12 @@ def dicke_model(n, **kw):
     return Model(positions=pos, coupling="all-to-all", **kw)
 
 
-def ladder_rate(n, times):
-    """Emission rate of the ladder |J, M⟩ → |J, M − 1⟩ at (J + M)(J − M + 1)Γ0 from full inversion
-    (R. H. Dicke, Phys. Rev. 93, 99 (1954); M. Gross and S. Haroche, Phys. Rep. 93, 301 (1982)),
-    integrated with scipy's solve_ivp."""
-    k = np.arange(n + 1)
-    rates = k * (n - k + 1.0)  # k = J + M excitations
-
-    def f(_, p):
-        gain = np.append(rates[1:] * p[1:], 0.0)
-        return -rates * p + gain
-
-    p0 = np.zeros(n + 1)
-    p0[-1] = 1.0
-    sol = solve_ivp(f, (times[0], times[-1]), p0, t_eval=times, method="LSODA", rtol=1e-10, atol=1e-13)
-    return rates @ sol.y
-
-
 @pytest.mark.parametrize("n", [6, 100])
 def test_burst_from_full_inversion_matches_ladder(n):
     m = dicke_model(n)
     times = np.linspace(0, 8 * np.log(n) / n, 25)
     ds = bm.evolve(m, "dicke", times, initial="excited", rtol=1e-9, atol=1e-11)
-    ref = ladder_rate(n, times)
+    ref = dicke_ladder_rate(n, times)
     np.testing.assert_allclose(ds.emission_rate.values, ref, rtol=1e-6, atol=1e-8 * ref.max())
     if n >= 100:  # at large N the averaged peak lies below the semiclassical N²/4 (Gross and Haroche 1982)
         assert n**2 / 8 < ds.emission_rate.values.max() < n**2 / 4

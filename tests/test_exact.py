@@ -10,44 +10,7 @@ import scipy.linalg
 import beyondmf as bm
 from beyondmf import Model
 from beyondmf.levels import Probes
-
-SM = np.array([[0, 1], [0, 0]], dtype=complex)  # σ⁻ = |g⟩⟨e| in the basis (g, e)
-
-
-def site_op(op, j, n):
-    """op on emitter j of n (Kronecker product, emitter 0 the most significant factor)."""
-    out = np.ones((1, 1), dtype=complex)
-    for k in range(n):
-        out = np.kron(out, op if k == j else np.eye(2))
-    return out
-
-
-def dense_liouvillian(model: Model) -> np.ndarray:
-    """L with vec(dρ/dt) = L vec(ρ) (row-major vec), straight from conventions.md's master equation."""
-    n = model.n
-    sm = [site_op(SM, j, n) for j in range(n)]
-    sp = [s.conj().T for s in sm]
-    om = model.rabi_sites
-    h = sum(-model.detuning * sp[i] @ sm[i] + 0.5 * (om[i] * sp[i] + np.conj(om[i]) * sm[i])
-            for i in range(n))
-    h = h + sum(model.J[i, j] * sp[i] @ sm[j] for i in range(n) for j in range(n) if i != j)
-    eye = np.eye(2**n)
-    # row-major vec: vec(AρB) = (A ⊗ Bᵀ) vec(ρ)
-    lv = -1j * (np.kron(h, eye) - np.kron(eye, h.T))
-    for i in range(n):
-        for j in range(n):
-            g = model.Gamma[i, j]
-            a = sp[i] @ sm[j]
-            lv += g * (np.kron(sm[j], sp[i].T) - 0.5 * np.kron(a, eye) - 0.5 * np.kron(eye, a.T))
-    return lv
-
-
-def product_rho(bloch):
-    rho = np.ones((1, 1), dtype=complex)
-    for sx, sy, sz in bloch:
-        b = (sx - 1j * sy) / 2
-        rho = np.kron(rho, np.array([[(1 - sz) / 2, np.conj(b)], [b, (1 + sz) / 2]]))
-    return rho
+from tests.helpers_ops import SM, dense_liouvillian, product_density, site_op
 
 
 def test_one_emitter_steady_state_and_antibunching():
@@ -88,7 +51,7 @@ def test_evolution_matches_expm_of_dense_liouvillian():
     )
     probes = Probes.build(m, detectors)
     for ti, t in enumerate(times):
-        rho = (scipy.linalg.expm(lv * t) @ product_rho(bloch).reshape(-1)).reshape(2**n, 2**n)
+        rho = (scipy.linalg.expm(lv * t) @ product_density(bloch).reshape(-1)).reshape(2**n, 2**n)
         exc = [np.trace(sp[i] @ sm[i] @ rho).real for i in range(n)]
         coh = [np.trace(sm[i] @ rho) for i in range(n)]
         np.testing.assert_allclose(ds.excited.values[ti], exc, atol=1e-8)
@@ -146,7 +109,8 @@ def test_custom_couplings_any_model():
     ds = bm.evolve(m, "exact", [0, 1, 2], initial="excited")
     assert np.all(np.isfinite(ds.g2_total.values[1:]))
     ref = dense_liouvillian(m)
-    rho = (scipy.linalg.expm(ref * 2) @ product_rho(np.tile([0, 0, 1.0], (3, 1))).reshape(-1)).reshape(8, 8)
+    rho0 = product_density(np.tile([0, 0, 1.0], (3, 1))).reshape(-1)
+    rho = (scipy.linalg.expm(ref * 2) @ rho0).reshape(8, 8)
     exc = [np.trace(site_op(SM.conj().T @ SM, i, 3) @ rho).real for i in range(3)]
     np.testing.assert_allclose(ds.excited.values[-1], exc, atol=1e-6)
 

@@ -7,7 +7,7 @@ from scipy.special import roots_legendre
 
 import beyondmf as bm
 from beyondmf.integrate import SolveError
-from tests.helpers_ops import hamiltonian, liouvillian, lowering
+from tests.helpers_ops import dense_liouvillian
 
 
 @pytest.mark.parametrize("rabi, detuning", [(1.0, 0.0), (0.4, -0.7), (3.0, 2.0)])
@@ -27,8 +27,7 @@ def test_single_emitter_dynamics_matches_lindblad_with_scipy():
     model = bm.Model([[0, 0, 0]], rabi=2.0, detuning=0.5)
     times = np.linspace(0, 6, 13)
     ds = bm.evolve(model, "meanfield", times, rtol=1e-10, atol=1e-12)
-    sm = lowering(1)
-    L = liouvillian(hamiltonian(model, sm), model.Gamma, sm)
+    L = dense_liouvillian(model)
     rho0 = np.diag([1.0, 0.0]).astype(complex).reshape(-1)
     sol = solve_ivp(lambda t, r: L @ r, (0, 6), rho0, t_eval=times, rtol=1e-11, atol=1e-13)
     rho = sol.y.T.reshape(-1, 2, 2)

@@ -6,50 +6,28 @@ formula), the Dicke ladder and small-cluster Lindblad dynamics (scipy), the coup
 the documented accuracy of the approximation (docs/twa.md).
 """
 
-from functools import reduce
 
 import jax
 import numpy as np
 import pytest
 import scipy.linalg
-from scipy.integrate import solve_ivp
 
 from beyondmf import Model, evolve, steady
 from beyondmf.geometry import ellipsoid_cloud
 from beyondmf.integrate import SolveError
 from beyondmf.levels.twa import noise_factor, sample_initial
+from tests.helpers_ops import dense_liouvillian, dicke_ladder_rate, lowering, product_density
 
 # ---------------------------------------------------------------- independent dense references
 
-_SM = np.array([[0, 0], [1, 0]], dtype=complex)  # basis (|e⟩, |g⟩): σ⁻|e⟩ = |g⟩
-
-
-def _site(op, i, n):
-    return reduce(np.kron, [op if k == i else np.eye(2) for k in range(n)])
-
-
 def _lindblad_reference(model: Model, bloch: np.ndarray, times: np.ndarray):
-    """Excited populations (T, N) and emission rate (T,) from the dense Lindblad equation of conventions.md.
-
-    dρ/dt = −i[H, ρ] + Σ Γ_ij(σ_j⁻ρσ_i⁺ − ½{σ_i⁺σ_j⁻, ρ}), vectorised row-major, propagated with expm.
-    """
-    n = model.n
-    sm = [_site(_SM, i, n) for i in range(n)]
+    """Excited populations (T, N) and emission rate (T,) from the dense Lindblad equation of conventions.md
+    (tests/helpers_ops.py), propagated with expm."""
+    n, d = model.n, 2**model.n
+    L = dense_liouvillian(model)
+    sm = lowering(n)
     sp = [s.conj().T for s in sm]
-    om = model.rabi_sites
-    H = sum(-model.detuning * sp[i] @ sm[i] + 0.5 * (om[i] * sp[i] + np.conj(om[i]) * sm[i])
-            for i in range(n))
-    H = H + sum(model.J[i, j] * sp[i] @ sm[j] for i in range(n) for j in range(n) if i != j)
-    d = 2**n
-    eye = np.eye(d)
-    L = -1j * (np.kron(H, eye) - np.kron(eye, H.T))
-    for i in range(n):
-        for j in range(n):
-            ba = sp[i] @ sm[j]
-            jump = np.kron(sm[j], sp[i].T) - 0.5 * np.kron(ba, eye) - 0.5 * np.kron(eye, ba.T)
-            L += model.Gamma[i, j] * jump
-    rhos = [0.5 * np.array([[1 + z, x - 1j * y], [x + 1j * y, 1 - z]]) for x, y, z in bloch]
-    rho = reduce(np.kron, rhos).reshape(-1)
+    rho = product_density(bloch).reshape(-1)
     nops = [sp[i] @ sm[i] for i in range(n)]
     rate_op = sum(model.Gamma[i, j] * sp[i] @ sm[j] for i in range(n) for j in range(n))
     exc, rate = [], []
@@ -60,26 +38,6 @@ def _lindblad_reference(model: Model, bloch: np.ndarray, times: np.ndarray):
         exc.append([np.trace(o @ r).real for o in nops])
         rate.append(np.trace(rate_op @ r).real)
     return np.array(exc), np.array(rate)
-
-
-def _dicke_burst(n: int, times: np.ndarray) -> np.ndarray:
-    """Emission rate of the Dicke ladder from |J, J⟩, J = N/2: M → M − 1 at (J + M)(J − M + 1)Γ0.
-
-    R. H. Dicke, Phys. Rev. 93, 99 (1954); M. Gross and S. Haroche, Phys. Rep. 93, 301 (1982).
-    """
-    j = n / 2
-    m = np.arange(j, -j - 1, -1)
-    r = (j + m) * (j - m + 1)
-
-    def f(_, p):
-        dp = -r * p
-        dp[1:] += r[:-1] * p[:-1]
-        return dp
-
-    p0 = np.zeros(n + 1)
-    p0[0] = 1.0
-    sol = solve_ivp(f, (times[0], times[-1]), p0, t_eval=times, method="LSODA", rtol=1e-10, atol=1e-12)
-    return r @ sol.y
 
 
 def _line(n, spacing):
@@ -239,7 +197,7 @@ def test_superradiant_burst_matches_the_dicke_ladder():
     # above. Documented DTWA accuracy (docs/twa.md): peak height and time within 5 %.
     n = 100
     ts = np.linspace(0, 0.12, 121)
-    exact = _dicke_burst(n, ts)
+    exact = dicke_ladder_rate(n, ts)
     pos = np.zeros((n, 3))
     pos[:, 0] = np.arange(n)
     m = Model(positions=pos, coupling="all-to-all")
