@@ -119,6 +119,7 @@ class Model:
     Gamma: np.ndarray = field(init=False, repr=False)
     _device: tuple = field(init=False, repr=False)
     _stiffness: float = field(init=False, repr=False)
+    _norm: list = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
         pos = np.array(self.positions, dtype=float)
@@ -173,6 +174,7 @@ class Model:
         set_(self, "coupling", kind)
         set_(self, "_device", (Jd, Gd))
         set_(self, "_stiffness", float(stiff))
+        set_(self, "_norm", [])  # filled on the first call of coupling_norm()
         # zero-copy read-only NumPy views of the device arrays (on the CPU)
         set_(self, "J", np.asarray(Jd))
         set_(self, "Gamma", np.asarray(Gd))
@@ -208,6 +210,28 @@ class Model:
         the equations are stiff.
         """
         return self._stiffness
+
+    def coupling_norm(self) -> float:
+        """Spectral norm ‖iJ + ½Γ‖₂ of the couplings between distinct emitters, in Γ0 (computed once).
+
+        The fastest rate of the linear coupled-dipole dynamics is at most this, and it is far tighter than
+        the Gershgorin bound `stiffness()` in a large random cloud, where the rows' many couplings of mixed
+        sign add up in the bound but not in the spectrum (N = 1000 at n·λ0³ ≈ 1: 2.0 against 25.7). It
+        is unchanged by the signs ±1 a level's samples put in front of the couplings, so a fixed-step
+        integrator can use it for every sample. Dense LAPACK norm up to N = 512, ARPACK (Lanczos on the
+        normal matrix, relative tolerance 1e-8) beyond.
+        """
+        if not self._norm:
+            m = 1j * np.asarray(self.J) + 0.5 * np.asarray(self.Gamma)
+            m = m - np.diag(np.diag(m))
+            if self.n <= 512:
+                value = float(np.linalg.norm(m, 2))
+            else:
+                from scipy.sparse.linalg import svds
+
+                value = float(svds(m, k=1, tol=1e-8, return_singular_vectors=False, random_state=0)[0])
+            self._norm.append(value)
+        return self._norm[0]
 
     def device_couplings(self):
         """(J, Γ) as the JAX arrays the levels compute with, held once per model."""

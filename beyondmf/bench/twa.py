@@ -42,11 +42,10 @@ def twa_suite(full: bool, machine: Machine) -> list[Row]:
     rows.append(Row("twa", f"N={n} S={samples}", "drift / matmul peak", flops / t / machine.matmul_flops, "1",
                     "target ≥ 0.5"))
 
-    # a sampled run towards t = 10: on a shared CPU the full run takes far longer than the 10-minute
-    # target, so a run to t = 0.5 is timed and the time per step extrapolated (labelled as such)
-    t_end = 0.5
+    # the sampled run to t = 10 (issue target: N = 1000 × 1000 samples within 10 minutes), measured
+    t_end = 10.0
     times = np.linspace(0.0, t_end, 11)
-    evolve(model, "twa", times * 0.01, seed=0, samples=samples)  # compile (same shapes, fewer steps)
+    evolve(model, "twa", times * 0.001, seed=0, samples=samples)  # compile (same shapes, fewer steps)
     t0 = time.perf_counter()
     ds = evolve(model, "twa", times, seed=0, samples=samples)
     wall = time.perf_counter() - t0
@@ -54,10 +53,8 @@ def twa_suite(full: bool, machine: Machine) -> list[Row]:
     per_step = wall / steps
     step_flops = 20 * n * n * samples
     rows.append(Row("twa", f"N={n} S={samples} t={t_end:g}", "wall time", wall, "s",
-                    f"{steps} Heun steps of dt={dt:g}, 11 observation times"))
+                    f"{steps} Heun steps of dt={dt:g} (‖iJ+Γ/2‖₂ = {model.coupling_norm():.3g} Γ0), "
+                    "11 observation times; target 600 s at N=1000 S=1000"))
     rows.append(Row("twa", f"N={n} S={samples}", "step FLOP/s / matmul peak",
                     step_flops / per_step / machine.matmul_flops, "1", "20N²S FLOPs per Heun step"))
-    rows.append(Row("twa", f"N={n} S={samples} t=10", "wall time (extrapolated)",
-                    per_step * np.ceil(10 / dt), "s",
-                    "measured time per step × steps to t = 10, not a measured run"))
     return rows

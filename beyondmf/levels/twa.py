@@ -42,7 +42,7 @@ from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
 
-__all__ = ["TruncatedWigner", "noise_factor", "sample_initial", "twa_args", "twa_drift"]
+__all__ = ["TruncatedWigner", "auto_dt", "noise_factor", "sample_initial", "twa_args", "twa_drift"]
 
 # A spin component beyond this is a diverged sample (the exact dynamics keeps |s| ≤ √3 initially and
 # the sampled spins stay of order one).
@@ -67,6 +67,16 @@ def noise_factor(gamma: np.ndarray, tol: float = 1e-8) -> np.ndarray:
             "semi-definite (check custom couplings)"
         )
     return vec * np.sqrt(np.clip(lam, 0.0, None))
+
+
+def auto_dt(model: Model) -> float:
+    """The default Heun step: min(0.01, 0.05/ω) with ω = max(‖iJ + ½Γ‖₂, |Ω|, |Δ|, 1) (docs/twa.md §2).
+
+    ‖iJ + ½Γ‖₂ (`Model.coupling_norm`) bounds the fastest coupled rate whatever the signs ±1 of a
+    sample's z_i, so the fastest mode turns by at most 0.05 rad per step.
+    """
+    scale = max(model.coupling_norm(), abs(model.rabi), abs(model.detuning), 1.0)
+    return min(0.01, 0.05 / scale)
 
 
 def _population_check(excited, stderr, sigmas: float = 3.0):
@@ -318,8 +328,7 @@ class TruncatedWigner(Level):
             raise ValueError(f"max_failed must be a fraction in [0, 1), got {options['max_failed']!r}")
         dt = options["dt"]
         if dt == "auto":
-            scale = max(model.stiffness(), abs(model.rabi), abs(model.detuning), 1.0)
-            dt = min(0.01, 0.05 / scale)
+            dt = auto_dt(model)
         dt = float(dt)
         if not (np.isfinite(dt) and dt > 0):
             raise ValueError(f"dt must be a positive time step (1/Γ0) or 'auto', got {options['dt']!r}")
