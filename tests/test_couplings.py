@@ -5,7 +5,8 @@ import numpy as np
 import pytest
 from scipy.special import roots_legendre
 
-from beyondmf import couplings
+from beyondmf import Model, couplings
+from beyondmf.geometry import ellipsoid_cloud
 
 
 def lehmberg(dist, cos2):
@@ -102,3 +103,17 @@ def test_scalar_and_all_to_all_kinds():
 def test_unknown_kind_is_refused():
     with pytest.raises(ValueError, match="unknown coupling kind"):
         couplings([[0, 0, 0]], kind="tensor")
+
+
+def test_coupling_norm_is_the_spectral_norm_and_at_most_the_gershgorin_bound():
+    # The spectral norm of the off-diagonal iJ + ½Γ, checked against numpy's dense SVD norm on both code
+    # paths (LAPACK below N = 512, ARPACK above); a matrix norm never exceeds its largest absolute row
+    # sum (Gershgorin; Horn & Johnson, Matrix Analysis, 2nd ed., §5.6 — from memory), which is `stiffness()`.
+    for n in (40, 600):
+        m = Model(positions=ellipsoid_cloud(n, (3 * n / (4 * np.pi)) ** (1 / 3), seed=2, min_distance=0.1))
+        a = 1j * np.asarray(m.J) + 0.5 * np.asarray(m.Gamma)
+        a -= np.diag(np.diag(a))
+        ref = np.linalg.norm(a, 2)
+        assert abs(m.coupling_norm() - ref) < 1e-7 * ref
+        assert m.coupling_norm() <= m.stiffness()
+    assert Model(positions=np.zeros((1, 3))).coupling_norm() == 0.0
