@@ -156,6 +156,37 @@ def test_independent_decay_with_coherent_couplings_keeps_the_ground_state_dark()
     assert np.all(np.abs(ds.excited.sum("atom").values) < 1e-9)
 
 
+def test_vacuum_control_measures_the_known_dense_cloud_error_and_warns():
+    # The control integrates the undriven ground state, exactly dark for any J, Γ (conventions.md: H|g…g⟩ = 0,
+    # nothing to emit). With independent decay the equations keep it dark per sample (Σz conserved); in the
+    # dense cloud of docs/twa.md §7 they do not, and the diagnostic must show it beyond its sampling error.
+    pos = _dense_cloud(20, 0.5)
+    ts = np.linspace(0, 4, 3)
+    m0 = Model(positions=pos, rabi=0.5)
+    indep = Model(positions=pos, coupling=(np.array(m0.J), np.eye(20)), rabi=0.5)
+    ds = evolve(indep, "twa", ts, seed=1, samples=50, chunk=50)
+    assert np.all(np.abs(ds.vacuum_excitation.values) < 1e-9)
+    with pytest.warns(UserWarning, match="undriven ground state of this cloud"):
+        ds = evolve(m0, "twa", ts, seed=1, samples=50, chunk=50)
+    v, e = ds.vacuum_excitation.values, ds.vacuum_excitation_stderr.values
+    assert v[0] == 0.0 and np.any(np.abs(v) > 4 * e)
+    assert ds.attrs["vacuum_check"] == 64 and ds.attrs["max_vacuum_excitation"] == np.max(np.abs(v))
+
+
+def test_vacuum_control_leaves_the_run_unchanged_and_repeats_with_the_seed():
+    m = Model(positions=_line(3, 0.3), rabi=1.0)
+    ts = [0.0, 1.0, 2.0]
+    a = evolve(m, "twa", ts, seed=4, samples=40, chunk=40, vacuum_check=0)
+    b = evolve(m, "twa", ts, seed=4, samples=40, chunk=40, vacuum_check=16)
+    c = evolve(m, "twa", ts, seed=4, samples=40, chunk=40, vacuum_check=16)
+    assert np.array_equal(a.excited.values, b.excited.values)
+    assert "vacuum_excitation" not in a
+    assert np.array_equal(b.vacuum_excitation.values, c.vacuum_excitation.values)
+    for bad in (1, -3, True, 2.5):
+        with pytest.raises(ValueError, match="vacuum_check"):
+            evolve(m, "twa", ts, samples=4, vacuum_check=bad)
+
+
 @pytest.mark.xfail(strict=True, reason="known defect: collective Γ lets the dense ground state drift below "
                    "⟨σ^z⟩ = −1 (docs/twa.md, 'Known failure')")
 def test_undriven_ground_state_stays_dark_in_a_dense_cloud():

@@ -187,7 +187,8 @@ def _per_sample(Y, weights, gamma):
     n = 0.5 * (1 + Y[:, 2 * S :])
     f2, f4 = jax.vmap(product_field_moments, in_axes=(1, 1, None))(beta, n, weights)
     r2, r4 = jax.vmap(product_rate_moments, in_axes=(1, 1, None))(beta, n, gamma)
-    return {"excited": n.T, "coherence": beta.T, "field2": f2, "field4": f4, "rate": r2, "rate4": r4}
+    return {"excited": n.T, "coherence": beta.T, "field2": f2, "field4": f4, "rate": r2, "rate4": r4,
+            "excited_total": jnp.sum(n, axis=0)}
 
 
 def _bad(Y):
@@ -277,6 +278,32 @@ def _runner(envelope: Envelope, steady: bool):
     return run
 
 
+def _sampled_sums(run, bloch, seed, samples, chunk, args, obs_args, t_obs, n_sub, steady, streams=(0, 1)):
+    """Sums over ``samples`` samples (in chunks of ``chunk``) of every estimator, and the failed count.
+
+    Sample k uses the key fold_in(PRNGKey(seed), k); its initial draw the sub-key fold_in(key, streams[0])
+    and its noise fold_in(key, streams[1]) (the vacuum control uses streams (2, 3), so that its numbers are
+    independent of the run's). Every chunk has ``chunk`` columns (one compile); the last one's surplus
+    samples are masked out.
+    """
+    tot, failed = None, 0
+    for start in range(0, samples, chunk):
+        keys = _sample_keys(seed, start, chunk)
+        Y0 = sample_initial(bloch, jax.vmap(lambda k: jax.random.fold_in(k, streams[0]))(keys))
+        keys = jax.vmap(lambda k: jax.random.fold_in(k, streams[1]))(keys)  # the noise's own stream
+        Y0 = jnp.concatenate([Y0[:, 0, :], Y0[:, 1, :], Y0[:, 2, :]], axis=1)
+        mask = jnp.arange(chunk) < samples - start
+        sums, bad = run(Y0, keys, mask, args, obs_args, t_obs, n_sub)
+        bad = bad & mask
+        nbad = int(jnp.sum(bad))
+        if nbad and not steady:  # rerun without the failed samples (same keys, same trajectories)
+            sums, _ = run(Y0, keys, mask & ~bad, args, obs_args, t_obs, n_sub)
+        failed += nbad
+        sums = {k: np.asarray(v) for k, v in sums.items()}
+        tot = sums if tot is None else {k: tot[k] + sums[k] for k in tot}
+    return tot, failed
+
+
 def _substeps(times, dt: float) -> np.ndarray:
     """Heun steps per interval of ``times``: the fewest that keep each step at most ``dt``."""
     return np.maximum(1, np.ceil(np.diff(np.asarray(times, dtype=float)) / dt - 1e-9)).astype(int)
@@ -309,6 +336,7 @@ class TruncatedWigner(Level):
         "window": 40.0,
         "window_points": 80,
         "chunk": "auto",
+        "vacuum_check": 64,
     }
     stochastic = True
 
@@ -342,6 +370,11 @@ class TruncatedWigner(Level):
             chunk = int(max(1, min(samples, CHUNK_BYTES // per_sample)))
         elif not (isinstance(chunk, int | np.integer) and chunk >= 1):
             raise ValueError(f"chunk must be 'auto' or a positive number of samples, got {chunk!r}")
+        vac = options["vacuum_check"]
+        if not (isinstance(vac, int | np.integer) and not isinstance(vac, bool) and (vac == 0 or vac >= 2)):
+            raise ValueError(
+                f"vacuum_check must be 0 (off) or a number of control samples ≥ 2, got {vac!r}"
+            )
         return samples, frac, dt, int(chunk), args, obs_args
 
     def _run(self, model, t_obs, n_sub, initial, seed, options, probes, steady: bool):
@@ -351,23 +384,8 @@ class TruncatedWigner(Level):
         n_sub = jnp.asarray(n_sub)
         bloch = jnp.asarray(initial, dtype=float)
         n = model.n
-        tot, failed = None, 0
         require(chunk * (8 * (14 * 3 * n + 6 * n)), f"a chunk of {chunk} 'twa' samples of {n} emitters")
-        for start in range(0, samples, chunk):
-            # every chunk has `chunk` columns (one compile); the last one's surplus samples are masked out
-            keys = _sample_keys(seed, start, chunk)
-            Y0 = sample_initial(bloch, jax.vmap(lambda k: jax.random.fold_in(k, 0))(keys))
-            keys = jax.vmap(lambda k: jax.random.fold_in(k, 1))(keys)  # the noise's own stream
-            Y0 = jnp.concatenate([Y0[:, 0, :], Y0[:, 1, :], Y0[:, 2, :]], axis=1)
-            mask = jnp.arange(chunk) < samples - start
-            sums, bad = run(Y0, keys, mask, args, obs_args, t_obs, n_sub)
-            bad = bad & mask
-            nbad = int(jnp.sum(bad))
-            if nbad and not steady:  # rerun without the failed samples (same keys, same trajectories)
-                sums, _ = run(Y0, keys, mask & ~bad, args, obs_args, t_obs, n_sub)
-            failed += nbad
-            sums = {k: np.asarray(v) for k, v in sums.items()}
-            tot = sums if tot is None else {k: tot[k] + sums[k] for k in tot}
+        tot, failed = _sampled_sums(run, bloch, seed, samples, chunk, args, obs_args, t_obs, n_sub, steady)
         if failed > frac * samples:
             raise SolveError(
                 f"truncated Wigner: {failed} of {samples} samples diverged or became non-finite, more than "
@@ -388,7 +406,47 @@ class TruncatedWigner(Level):
         }
         diagnostics = _population_check(means["excited"], stderr["excited"])
         attrs["max_population_violation"] = float(np.max(diagnostics["population_violation"][1]))
+        vac = int(options["vacuum_check"])
+        attrs["vacuum_check"] = vac
+        if vac:
+            diagnostics.update(self._vacuum_control(model, vac, seed, chunk, args, obs_args, t_obs, n_sub,
+                                                    steady, attrs))
         return Moments(**means, stderr=stderr, cov=cov, diagnostics=diagnostics, attrs=attrs)
+
+    @staticmethod
+    def _vacuum_control(model, count, seed, chunk, args, obs_args, t_obs, n_sub, steady, attrs):
+        """The same equations, steps and observation times for ``count`` samples of the undriven ground
+        state, whose exact total excitation is 0 at all times (|g…g⟩ is stationary for any J, Γ).
+
+        Its Σ_i ρ_ee measures the equations' known error for this cloud (docs/twa.md §7) and is reported as
+        the diagnostics ``vacuum_excitation`` and ``vacuum_excitation_stderr`` (per time), with a warning
+        when it is beyond 4 standard errors. Own random streams (2, 3 of each sample key).
+        """
+        run = _runner(model.envelope, steady)
+        quiet = dict(args, omega=jnp.zeros_like(args["omega"]))
+        ground = jnp.tile(jnp.array([0.0, 0.0, -1.0]), (model.n, 1))
+        width = min(count, chunk)
+        tot, failed = _sampled_sums(run, ground, seed, count, width, quiet, obs_args, t_obs, n_sub, steady,
+                                    streams=(2, 3))
+        good = count - failed
+        attrs["vacuum_check_failed"] = failed
+        if good < 2:
+            nan = np.full(np.shape(tot["excited_total"]), np.nan)
+            return {"vacuum_excitation": (("time",), nan), "vacuum_excitation_stderr": (("time",), nan)}
+        mean = tot["excited_total"] / good
+        var = (tot["excited_total^2"] - good * mean**2) / (good * (good - 1))
+        err = np.sqrt(np.maximum(var, 0.0))
+        worst = int(np.argmax(np.abs(mean) - 4 * err))
+        attrs["max_vacuum_excitation"] = float(np.max(np.abs(mean)))
+        if abs(mean[worst]) > 4 * err[worst]:
+            warnings.warn(
+                f"twa: the undriven ground state of this cloud, exactly dark, reaches a total excitation "
+                f"{mean[worst]:.3g} ± {err[worst]:.2g} in the same equations (diagnostic vacuum_excitation): "
+                "their known error at this density and collective decay (docs/twa.md §7). Excitations and "
+                "rates of that size in the results are not reliable; compare with 'cumulant2' or an exact level",
+                stacklevel=4,
+            )
+        return {"vacuum_excitation": (("time",), mean), "vacuum_excitation_stderr": (("time",), err)}
 
     def evolve(self, model, times, initial, probes, seed, options) -> Moments:
         dt = self._setup(model, probes, options)[2]
