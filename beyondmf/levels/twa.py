@@ -347,6 +347,17 @@ class TruncatedWigner(Level):
                 "use a linearly polarised dipole"
             )
 
+    @staticmethod
+    def _step(model: Model, options: dict[str, Any]) -> float:
+        dt = auto_dt(model) if options["dt"] == "auto" else options["dt"]
+        try:
+            dt = float(dt)
+        except (TypeError, ValueError):
+            dt = float("nan")
+        if not (np.isfinite(dt) and dt > 0):
+            raise ValueError(f"dt must be a positive time step (1/Γ0) or 'auto', got {options['dt']!r}")
+        return dt
+
     def _setup(self, model: Model, probes: Probes, options: dict[str, Any]):
         samples = options["samples"]
         if not (isinstance(samples, int | np.integer) and samples >= 2):
@@ -354,12 +365,7 @@ class TruncatedWigner(Level):
         frac = float(options["max_failed"])
         if not 0 <= frac < 1:
             raise ValueError(f"max_failed must be a fraction in [0, 1), got {options['max_failed']!r}")
-        dt = options["dt"]
-        if dt == "auto":
-            dt = auto_dt(model)
-        dt = float(dt)
-        if not (np.isfinite(dt) and dt > 0):
-            raise ValueError(f"dt must be a positive time step (1/Γ0) or 'auto', got {options['dt']!r}")
+        dt = self._step(model, options)
         n = model.n
         args = twa_args(model)
         obs_args = (jnp.asarray(probes.weights), args["JG"][n:])
@@ -449,13 +455,13 @@ class TruncatedWigner(Level):
         return {"vacuum_excitation": (("time",), mean), "vacuum_excitation_stderr": (("time",), err)}
 
     def evolve(self, model, times, initial, probes, seed, options) -> Moments:
-        dt = self._setup(model, probes, options)[2]
+        dt = self._step(model, options)
         return self._run(model, times, _substeps(times, dt), initial, seed, options, probes, steady=False)
 
     def steady(self, model, probes, seed, options) -> Moments:
         """Average over samples and over ``window_points`` equally spaced times of the window
         [settle_time, settle_time + window], starting from the ground state at t = 0."""
-        dt = self._setup(model, probes, options)[2]
+        dt = self._step(model, options)
         t_settle, window = float(options["settle_time"]), float(options["window"])
         points = options["window_points"]
         if not (t_settle >= 0 and window > 0 and isinstance(points, int) and points >= 1):
