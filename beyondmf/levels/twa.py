@@ -248,7 +248,7 @@ def _runner(envelope: Envelope, steady: bool):
 
         def interval(carry, inp):
             Y, k, bad, acc = carry
-            ta, tb, m = inp
+            ta, tb, m, late = inp
             dt = (tb - ta) / m
 
             def body(i, c):
@@ -258,20 +258,36 @@ def _runner(envelope: Envelope, steady: bool):
             bad = bad | _bad(Y)
             obs = observe(Y)
             if steady:
+                acc, halves = acc
                 acc = jax.tree.map(lambda a, o: a + o, acc, obs)
-                return (Y, k, bad, acc), None
+                # the settling check: the scalars of each half of the window, summed separately
+                here = jnp.stack([obs["excited_total"], jnp.real(obs["rate"])])
+                halves = halves + jnp.stack([(1.0 - late) * here, late * here])
+                return (Y, k, bad, (acc, halves)), None
             return (Y, k, bad, acc), _sums(obs, mask)
 
         obs0 = observe(Y0)
         bad0 = _bad(Y0)
-        acc0 = jax.tree.map(jnp.zeros_like, obs0) if steady else 0.0
+        points = t_obs.shape[0] - 1
+        # window points in the second half of the window (steady only; the first entry of t_obs is the start)
+        late = (jnp.arange(points) >= points // 2).astype(float)
+        acc0 = 0.0
+        if steady:
+            acc0 = (jax.tree.map(jnp.zeros_like, obs0), jnp.zeros((2, 2) + obs0["excited_total"].shape))
         (Y, _, bad, acc), per_time = jax.lax.scan(
-            interval, (Y0, jnp.asarray(0), bad0, acc0), (t_obs[:-1], t_obs[1:], n_sub)
+            interval, (Y0, jnp.asarray(0), bad0, acc0), (t_obs[:-1], t_obs[1:], n_sub, late)
         )
         if steady:
-            # window average per sample (the first entry of t_obs is the start, not a window point)
-            mean = jax.tree.map(lambda a: a / t_obs[1:].shape[0], acc)
-            return jax.tree.map(lambda a: a[None], _sums(mean, mask & ~bad)), bad
+            acc, halves = acc
+            mean = jax.tree.map(lambda a: a / points, acc)  # window average per sample
+            sums = _sums(mean, mask & ~bad)
+            # per sample: second-half average − first-half average of Σρ_ee and of the emission rate
+            n_early, n_late = points // 2, points - points // 2
+            d = halves[1] / n_late - halves[0] / max(n_early, 1)
+            w = (mask & ~bad).astype(float)
+            sums["settling"] = jnp.where(w > 0, d, 0.0) @ w
+            sums["settling^2"] = jnp.where(w > 0, d * d, 0.0) @ w
+            return jax.tree.map(lambda a: a[None], sums), bad
         first = _sums(obs0, mask)
         return jax.tree.map(lambda a, b: jnp.concatenate([a[None], b]), first, per_time), bad
 
@@ -302,6 +318,38 @@ def _sampled_sums(run, bloch, seed, samples, chunk, args, obs_args, t_obs, n_sub
         sums = {k: np.asarray(v) for k, v in sums.items()}
         tot = sums if tot is None else {k: tot[k] + sums[k] for k in tot}
     return tot, failed
+
+
+def _settling(tot: dict[str, np.ndarray], count: int, points: int) -> dict[str, float]:
+    """The steady state's settling check from the per-sample half-window differences.
+
+    For Σρ_ee and the emission rate: the mean over samples of (second-half average − first-half average) of the
+    window and its standard error (the samples are independent, so the paired difference's error is honest even
+    though the two halves of one sample are correlated). ``steady_drift_sigmas`` is the larger |mean|/error;
+    beyond 4 a warning says that the window was not yet stationary.
+    """
+    if points < 2:
+        return {"steady_drift_sigmas": float("nan")}
+    mean = tot["settling"][0] / count
+    var = (tot["settling^2"][0] - count * mean**2) / (count * max(count - 1, 1))
+    err = np.sqrt(np.maximum(var, 0.0))
+    sig = np.where(err > 0, np.abs(mean) / np.where(err > 0, err, 1.0), np.where(mean == 0, 0.0, np.inf))
+    out = {
+        "steady_drift_excitation": float(mean[0]),
+        "steady_drift_excitation_stderr": float(err[0]),
+        "steady_drift_rate": float(mean[1]),
+        "steady_drift_rate_stderr": float(err[1]),
+        "steady_drift_sigmas": float(np.max(sig)),
+    }
+    if out["steady_drift_sigmas"] > 4:
+        warnings.warn(
+            f"twa steady: the second half of the averaging window differs from the first by "
+            f"{mean[0]:.3g} ± {err[0]:.2g} in Σρ_ee and {mean[1]:.3g} ± {err[1]:.2g} in the emission rate "
+            f"({out['steady_drift_sigmas']:.1f} standard errors): the samples had not settled; raise "
+            "settle_time or window, or look at the approach with evolve",
+            stacklevel=4,
+        )
+    return out
 
 
 def _substeps(times, dt: float) -> np.ndarray:
@@ -410,6 +458,8 @@ class TruncatedWigner(Level):
             "chunk": chunk,
             "calculus": "Ito (= Stratonovich here), stochastic Heun, fixed step",
         }
+        if steady:
+            attrs.update(_settling(tot, good, len(t_obs) - 1))
         diagnostics = _population_check(means["excited"], stderr["excited"])
         attrs["max_population_violation"] = float(np.max(diagnostics["population_violation"][1]))
         vac = int(options["vacuum_check"])
