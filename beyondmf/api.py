@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Mapping
 from typing import Any
 
@@ -71,6 +72,27 @@ def _attrs(model: Model, level: Level, kind: str, options, seed, extra) -> dict[
     return attrs
 
 
+def _recorded(call):
+    """Run ``call()`` and return (its result, the messages of the UserWarnings it issued).
+
+    The warnings are issued again afterwards, under the caller's own filters (so "error" still raises and
+    "ignore" still hides them); their messages also go into the result's ``warnings`` attribute, so that a
+    run's own verdict on itself survives in its file and in sweeps run on other processes.
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        result = call()
+    messages, seen = [], set()
+    for w in caught:
+        if (w.category, str(w.message)) in seen:
+            continue
+        seen.add((w.category, str(w.message)))
+        if issubclass(w.category, UserWarning):
+            messages.append(str(w.message))
+        warnings.warn(w.message, w.category, stacklevel=3)  # at the caller of evolve/steady
+    return result, messages
+
+
 def _check_model(model) -> None:
     if not isinstance(model, Model):
         raise TypeError(f"model must be a beyondmf.Model, got {type(model).__name__}")
@@ -99,7 +121,9 @@ def evolve(
 
     Returns
     -------
-    xarray.Dataset with the variables of the data contract (conventions.md) along ``time``.
+    xarray.Dataset with the variables of the data contract (conventions.md) along ``time``. The
+    attribute ``warnings`` lists the messages of the warnings the level issued about this run (empty when
+    it had nothing to say), e.g. twa's vacuum control or cumulant2's unphysical moments.
     """
     _check_model(model)
     lvl = get_level(level)
@@ -111,9 +135,9 @@ def evolve(
     probes = Probes.build(model, _detectors(model, detectors))
     lvl.check(model)
     seed = _seed(lvl, seed)
-    moments = lvl.evolve(model, ts, bloch, probes, seed, opts)
+    moments, said = _recorded(lambda: lvl.evolve(model, ts, bloch, probes, seed, opts))
     init = initial if isinstance(initial, str) else "bloch vectors"
-    attrs = _attrs(model, lvl, "evolve", opts, seed, {"initial": init})
+    attrs = _attrs(model, lvl, "evolve", opts, seed, {"initial": init, "warnings": said})
     return assemble(model, lvl.name, moments, probes, ts, attrs)
 
 
@@ -136,5 +160,6 @@ def steady(
     probes = Probes.build(model, _detectors(model, detectors))
     lvl.check(model)
     seed = _seed(lvl, seed)
-    moments = lvl.steady(model, probes, seed, opts)
-    return assemble(model, lvl.name, moments, probes, None, _attrs(model, lvl, "steady", opts, seed, {}))
+    moments, said = _recorded(lambda: lvl.steady(model, probes, seed, opts))
+    attrs = _attrs(model, lvl, "steady", opts, seed, {"warnings": said})
+    return assemble(model, lvl.name, moments, probes, None, attrs)

@@ -126,6 +126,10 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
     _say(f"wrote {out / 'results.nc'} ({ds.attrs['tasks']} tasks)")
     for failure in ds.attrs.get("failures", []):
         _say(f"task failed: {failure}")
+    said = ds.attrs.get("warnings", [])
+    if said:
+        _say(f"{len(said)} warning(s) from the levels about their own runs (all in results.nc, attribute "
+             "'warnings'); the first: " + said[0])
     if not args.no_plots:
         for fig in plot_sweep(ds, out):
             _say(f"wrote {fig}")
@@ -135,8 +139,13 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
         from .compare import verdict_table
 
         _say(f"verdicts against {ds.attrs['baseline']} (tolerance {ds.attrs['tolerance']:g}):")
+        warned = ds.get("warned_realizations")
         for level, row in verdict_table(ds).items():
-            _say(f"  {level}: " + ", ".join(f"{k} {v}" for k, v in row.items()))
+            note = ""
+            if warned is not None and int(warned.sel(level=level).sum()):
+                note = (f"  [{int(warned.sel(level=level).sum())} of its runs warned about themselves: "
+                        "treat these verdicts with care]")
+            _say(f"  {level}: " + ", ".join(f"{k} {v}" for k, v in row.items()) + note)
     _say(f"done in {time.perf_counter() - t0:.1f} s")
     return 0
 

@@ -95,7 +95,9 @@ def summarize(
     -------
     Dataset with ``level`` and the other dimensions of ``ds`` (no ``realization``): ``X``,
     ``X_uncertainty``, ``X_correction``, ``X_correction_low``, ``X_correction_high``, ``X_verdict``
-    for each observable X; attributes state the baseline, tolerance, confidence and interval.
+    for each observable X, and ``warned_realizations`` (how many of a level's runs warned about
+    themselves) when ``ds`` has the per-run ``warnings`` count of `sweep.stack`; attributes state the
+    baseline, tolerance, confidence and interval.
     """
     if "level" not in ds.dims or "realization" not in ds.dims:
         raise ValueError("summarize needs results with 'level' and 'realization' dimensions")
@@ -147,6 +149,11 @@ def summarize(
             long_name=f"upper end of the {confidence:.0%} interval")
         out[f"{name}_verdict"] = xr.DataArray(verdict, dims=c.dims, coords=c.coords).assign_attrs(
             long_name=f"does {baseline} hold for {name} within the tolerance", values=", ".join(VERDICTS))
+    if "warnings" in ds:
+        # a level's own verdict on its runs (twa's vacuum control, cumulant2's unphysical moments, ...):
+        # its corrections at these points rest on runs that said they were outside their range
+        out["warned_realizations"] = (ds["warnings"] > 0).sum("realization").assign_attrs(
+            long_name="realizations whose run issued warnings about itself (see the attribute warnings)")
     summary = xr.Dataset(out)
     summary.attrs.update(
         {k: v for k, v in ds.attrs.items() if k not in ("level",)},
@@ -248,4 +255,5 @@ def compare_levels(
     summary = summarize(per, baseline, tolerance, confidence, observables)
     for name in observables:
         summary[f"{name}_realizations"] = per[name]
+    summary.attrs["warnings"] = per.attrs.get("warnings", [])
     return summary

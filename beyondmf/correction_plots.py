@@ -53,6 +53,14 @@ def _color(s: xr.Dataset, level) -> str:
     return f"C{list(s['level'].values).index(level) % 10}"
 
 
+def _name(s: xr.Dataset, level) -> str:
+    """The level's legend name, marked when some of its runs warned about themselves."""
+    if "warned_realizations" not in s:
+        return str(level)
+    k = int(s["warned_realizations"].sel(level=level).sum())
+    return f"{level} ({k} run{'s' if k != 1 else ''} warned)" if k else str(level)
+
+
 def _pick(s: xr.Dataset, name: str, det: str | None, level) -> tuple[xr.DataArray, xr.DataArray]:
     v, u = s[name].sel(level=level), s[f"{name}_uncertainty"].sel(level=level)
     if det is not None:
@@ -95,20 +103,20 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
                 for sel, tag in _slices(s, grid):
                     vv, uu = v.sel(sel).transpose("time"), u.sel(sel).transpose("time")
                     col = _color(s, lv) if not tag else None
-                    line = ax.plot(t, vv, label=f"{lv}{tag}", color=col)[0]
+                    line = ax.plot(t, vv, label=f"{_name(s, lv)}{tag}", color=col)[0]
                     ax.fill_between(t, vv - uu, vv + uu, alpha=0.25, color=line.get_color())
                 ax.set_xlabel("time (1/Γ0)")
             elif grid:
                 x = s[grid[0]].values
                 for sel, tag in _slices(s, grid[1:]):
                     ax.errorbar(x, v.sel(sel).transpose(grid[0]), yerr=u.sel(sel).transpose(grid[0]),
-                                marker="o", capsize=3, label=f"{lv}{tag}",
+                                marker="o", capsize=3, label=f"{_name(s, lv)}{tag}",
                                 color=_color(s, lv) if not tag else None)
                 ax.set_xlabel(s[grid[0]].attrs.get("parameter", grid[0]))
                 if np.all(x > 0) and x.max() / x.min() > 20:
                     ax.set_xscale("log")
             else:
-                ax.bar(k, float(v), yerr=float(u), capsize=4, label=str(lv), color=_color(s, lv))
+                ax.bar(k, float(v), yerr=float(u), capsize=4, label=_name(s, lv), color=_color(s, lv))
                 ax.set_xticks([])
         ax.set_title(_title(name, det), fontsize=9)
         vals = np.abs(s[name].values[np.isfinite(s[name].values)])
@@ -130,6 +138,9 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
             sel = {"level": lv} | ({"detector": det} if det else {})
             c = s[f"{name}_correction"].sel(sel)
             lo, hi = s[f"{name}_correction_low"].sel(sel), s[f"{name}_correction_high"].sel(sel)
+            # no relative correction where the baseline is zero (e.g. t = 0 from the ground state): not drawn
+            defined = s[f"{name}_verdict"].sel(sel) != "undefined"
+            c, lo, hi = (a.where(defined) for a in (c, lo, hi))
             if "time" in c.dims:
                 x = s["time"].values
                 ax.set_xlabel("time (1/Γ0)")
@@ -144,7 +155,7 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
                 x = np.array([k])
                 ax.set_xticks(range(len(others)), [str(o) for o in others])
             col = _color(s, lv)
-            ax.plot(x, np.clip(np.atleast_1d(c), -_CLIP, _CLIP), marker="o", label=str(lv), color=col)
+            ax.plot(x, np.clip(np.atleast_1d(c), -_CLIP, _CLIP), marker="o", label=_name(s, lv), color=col)
             lo_c, hi_c = (np.clip(np.atleast_1d(a), -_CLIP, _CLIP) for a in (lo, hi))
             ax.fill_between(x, lo_c, hi_c,
                             alpha=0.25, color=col)
@@ -185,7 +196,7 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
             ax.set_xlabel(s[gx].attrs.get("parameter", gx))
             ax.set_ylabel(s[gy].attrs.get("parameter", gy))
             at = " at the last time" if "time" in rest else ""
-            ax.set_title(f"{lv}: correction of {_title(name, det)}{at}", fontsize=8)
+            ax.set_title(f"{_name(s, lv)}: correction of {_title(name, det)}{at}", fontsize=8)
             fig.colorbar(im, ax=ax, shrink=0.8)
     fig.suptitle(f"against {base}: ✓ holds within ±{tol:g}, ✗ fails, ? undecided "
                  f"({s.attrs['confidence']:.0%} intervals)", fontsize=9)

@@ -134,7 +134,9 @@ def stack(
 
     ``index`` maps (grid indices..., label, realization) to the task; per-emitter variables are reduced
     to ``excited_mean`` (mean population) because N may differ across the grid. A failed task (its
-    level refused the model, or the solve failed) gives NaN and its message in ``failures``.
+    level refused the model, or the solve failed) gives NaN and its message in ``failures``. The variable
+    ``warnings`` counts the warnings each task's level issued about its own run (NaN for a failed task),
+    and the attribute ``warnings`` lists them as "(indices) (task KEY): message".
     """
     template = next((results[task_key(t)] for t in index.values()
                      if results[task_key(t)].attrs.get("task_status", "done") == "done"
@@ -147,10 +149,11 @@ def stack(
     if stochastic:
         names += [f"{n}_stderr" for n in names]
     outer = [len(v) for _, v in grid] + [len(labels), realizations]
-    arrays, failures = {}, []
+    arrays, failures, said = {}, [], []
     for name in names + ["excited_mean"]:
         base = template["emission_rate"] if name == "excited_mean" else template[name.removesuffix("_stderr")]
         arrays[name] = (base.dims, np.full(outer + list(base.shape), np.nan, dtype=base.dtype))
+    counts = np.full(outer, np.nan)
     for key_tuple, task in index.items():
         ds = results[task_key(task)]
         if "emission_rate" not in ds:
@@ -161,6 +164,9 @@ def stack(
             if name in ds:
                 arrays[name][1][idx] = ds[name].values
         arrays["excited_mean"][1][idx] = ds["excited"].mean("atom").values
+        messages = list(ds.attrs.get("warnings", []))
+        counts[idx] = len(messages)
+        said.extend(f"{key_tuple} (task {task_key(task)}): {m}" for m in messages)
     dims = [g for g, _ in grid] + ["level", "realization"]
     coords = {g: np.asarray(v) for g, v in grid}
     coords.update(level=list(labels), realization=np.arange(realizations))
@@ -172,11 +178,14 @@ def stack(
     for n in names:
         out[n].attrs = dict(template[n.removesuffix("_stderr")].attrs)
     out["excited_mean"].attrs.update(long_name="mean excited population over emitters")
+    out["warnings"] = xr.DataArray(counts, dims=dims, coords={d: coords[d] for d in dims}).assign_attrs(
+        long_name="warnings the level issued about this run (its own diagnostics; NaN: the task failed)")
     if "time" in out.dims and last_time:
         out = out.isel(time=-1)
     elif "time" in out.dims:
         out = out.assign(_burst_observables(out))
     out.attrs["failures"] = failures
+    out.attrs["warnings"] = said
     return out
 
 
@@ -545,6 +554,7 @@ def run_sweep(
         levels_run=list(labels),
         available_levels=list(available_levels()),
         failures=per.attrs.get("failures", []),
+        warnings=per.attrs.get("warnings", []),
     )
     save(ds, out / "results.nc")
     return ds

@@ -122,3 +122,36 @@ def test_compare_levels_uses_the_same_draws_at_every_level(tmp_path):
     assert verdict[0] == "undefined"  # t = 0 from the ground state: P = 0, no relative correction
     assert set(verdict[1:]) == {"holds"} and verdict_table(s)["meanfield_tight"]["emission_rate"] == "holds"
     assert len(list((tmp_path / "tasks").glob("*.nc"))) == 6
+
+
+def test_a_levels_own_warnings_reach_the_comparison(tmp_path):
+    # twa's vacuum control warns for this dense cloud (n·λ0³ ≈ 38; docs/twa.md §7, and the twa tests);
+    # mean field has nothing to say. The comparison must carry which runs warned, not lose it in the
+    # task files (common practice: a result that says it is unreliable stays marked as such).
+    pos = bm.geometry.ellipsoid_cloud(20, 0.5, seed=3, min_distance=0.1)
+    levels = {"meanfield": {"level": "meanfield"},
+              "twa": {"level": "twa", "samples": 64, "vacuum_check": 64, "chunk": 64}}
+    with pytest.warns(UserWarning, match="vacuum_excitation"):
+        s = compare_levels(pos, levels, realizations=1, model={"rabi": 0.3}, times=[0.0, 2.0, 4.0],
+                           out=tmp_path)
+    warned = s["warned_realizations"]
+    assert int(warned.sel(level="twa")) == 1 and int(warned.sel(level="meanfield")) == 0
+    assert len(s.attrs["warnings"]) == 1 and "vacuum_excitation" in s.attrs["warnings"][0]
+    # the task file keeps the run's own message
+    files = {bm.load(p).attrs["level"]: bm.load(p) for p in (tmp_path / "tasks").glob("*.nc")}
+    assert files["meanfield"].attrs["warnings"] == []
+    assert "vacuum_excitation" in files["twa"].attrs["warnings"][0]
+
+
+def test_recorded_warnings_still_obey_the_callers_filters():
+    import warnings
+
+    m = bm.Model(positions=np.zeros((1, 3)), rabi=1.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UserWarning)
+        with pytest.raises(UserWarning, match="had not settled"):
+            bm.steady(m, "twa", seed=5, samples=100, settle_time=0.0, window=4.0, window_points=40)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ds = bm.steady(m, "twa", seed=5, samples=100, settle_time=0.0, window=4.0, window_points=40)
+    assert any("had not settled" in w for w in ds.attrs["warnings"])
