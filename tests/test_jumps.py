@@ -60,6 +60,25 @@ def test_one_emitter_steady_state_and_antibunching():
     assert np.all(ds.g2.values == 0.0)
 
 
+def test_steady_settling_check_is_paired():
+    """steady's settling check compares the emission rate at t/2 and t on the same trajectories. For one
+    driven emitter still in its transient (settle_time = 2) the change must match the exact one, from level
+    "exact" (itself checked against scipy's expm), within 4 of its paired errors. Those errors must be smaller
+    than the unpaired ones from evolve with the same seed, which draws the same trajectories (common
+    practice: a paired difference of positively correlated values)."""
+    m = Model(positions=np.zeros((1, 3)), rabi=1.0, detuning=0.25)
+    ds = bm.steady(m, "jumps", seed=2, samples=800, settle_time=2.0)
+    ref = bm.evolve(m, "exact", [0.0, 1.0, 2.0], rtol=1e-10, atol=1e-12)
+    exact = float(ref.emission_rate[2] - ref.emission_rate[1])
+    a = ds.attrs
+    assert abs(a["steady_drift_rate"] - exact) < 4 * a["steady_drift_rate_stderr"]
+    same = bm.evolve(m, "jumps", [0.0, 1.0, 2.0], seed=2, samples=800)
+    assert float(same.emission_rate[2] - same.emission_rate[1]) == pytest.approx(a["steady_drift_rate"],
+                                                                                    rel=1e-12)
+    unpaired = float(np.hypot(same.emission_rate_stderr[2], same.emission_rate_stderr[1]))
+    assert a["steady_drift_rate_stderr"] < unpaired
+
+
 @pytest.mark.parametrize("n", [2, 4])
 def test_inverted_g2_total(n):
     """g2_total = 2(1 − 1/N) for N fully inverted emitters (references.md, derived from the ladder);

@@ -150,6 +150,9 @@ def _runner(envelope: Envelope, dt: float):
         sums = {k: wsum(v) for k, v in obs.items()}
         sq = {k: wsum(jnp.abs(v) ** 2) for k, v in obs.items()}
         cross = {"field": wsum(obs["field4"] * obs["field2"]), "rate": wsum(obs["rate4"] * obs["rate"])}
+        # the rate at the last two times of the same trajectories (steady's paired settling check)
+        r = obs["rate"]
+        cross["rate_lag"] = wsum(r[:, -1] * r[:, -2]) if ts.shape[0] >= 2 else wsum(0.0 * r[:, -1])
         return sums, sq, cross
 
     return run
@@ -190,7 +193,7 @@ class Jumps(Level):
         }
         return samples, int(chunk), dt, args, {"channels": len(rates), "dt": dt, "chunk": int(chunk)}
 
-    def _run(self, model, ts, initial, probes, seed, options) -> Moments:
+    def _run(self, model, ts, initial, probes, seed, options) -> tuple[Moments, float]:
         samples, chunk, dt, args, info = self._setup(model, probes, options)
         s = np.asarray(initial, dtype=float)
         length = np.linalg.norm(s, axis=1)
@@ -220,22 +223,33 @@ class Jumps(Level):
             "field": (crs["field"] / samples - mean["field4"] * mean["field2"]) / (samples - 1),
             "rate": (crs["rate"] / samples - mean["rate4"] * mean["rate"]) / (samples - 1),
         }
-        return Moments(**mean, stderr=stderr, cov=cov, attrs={**info, "samples": samples})
+        lag = np.nan
+        if len(ts) >= 2:  # covariance over trajectories of the rates at the last two times
+            lag = (crs["rate_lag"] / samples - mean["rate"][-1] * mean["rate"][-2]) * samples / (samples - 1)
+        return Moments(**mean, stderr=stderr, cov=cov, attrs={**info, "samples": samples}), lag
 
     def evolve(self, model, times, initial, probes, seed, options) -> Moments:
-        return self._run(model, np.asarray(times, dtype=float), initial, probes, seed, options)
+        return self._run(model, np.asarray(times, dtype=float), initial, probes, seed, options)[0]
 
     def steady(self, model, probes, seed, options) -> Moments:
-        """The ensemble at t = settle_time after starting in the ground state (and its drift since half)."""
+        """The ensemble at t = settle_time after starting in the ground state.
+
+        ``steady_drift_sigmas``: the change of the emission rate from t/2 to t over its paired standard error
+        (the same trajectories at both times).
+        """
         t1 = float(options["settle_time"])
         ground = np.tile([0.0, 0.0, -1.0], (model.n, 1))
-        m = self._run(model, np.array([0.0, t1 / 2, t1]), ground, probes, seed, options)
-        drift = np.abs(m.rate[2] - m.rate[1]) / max(float(np.hypot(m.stderr["rate"][2], m.stderr["rate"][1])),
-                                                   1e-300)
+        m, lag = self._run(model, np.array([0.0, t1 / 2, t1]), ground, probes, seed, options)
+        # paired: the same trajectories at both times, so their covariance comes off the variance
+        samples = int(m.attrs["samples"])
+        var = (m.stderr["rate"][2] ** 2 + m.stderr["rate"][1] ** 2) - 2 * lag / samples
+        change, err = float(m.rate[2] - m.rate[1]), float(np.sqrt(max(var, 0.0)))
+        drift = abs(change) / max(err, 1e-300)
         pick = lambda a: np.asarray(a)[2:3]  # noqa: E731
         return Moments(
             **{k: pick(getattr(m, k)) for k in Moments.KEYS},
             stderr={k: pick(v) for k, v in m.stderr.items()},
             cov={k: pick(v) for k, v in m.cov.items()},
-            attrs={**m.attrs, "settle_time": t1, "steady_drift_sigmas": float(drift)},
+            attrs={**m.attrs, "settle_time": t1, "steady_drift_rate": change, "steady_drift_rate_stderr": err,
+                   "steady_drift_sigmas": float(drift)},
         )
