@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-import warnings
 from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
+from ._notes import collecting
 from .levels.base import Level, Probes, get_level
 from .model import Model
 from .observables import assemble
@@ -73,24 +73,15 @@ def _attrs(model: Model, level: Level, kind: str, options, seed, extra) -> dict[
 
 
 def _recorded(call):
-    """Run ``call()`` and return (its result, the messages of the UserWarnings it issued).
+    """Run ``call()`` and return (its result, the messages of the warnings the level issued about this run).
 
-    The warnings are issued again afterwards, under the caller's own filters (so "error" still raises and
-    "ignore" still hides them); their messages also go into the result's ``warnings`` attribute, so that a
-    run's own verdict on itself survives in its file and in sweeps run on other processes.
+    The warnings themselves are issued as usual; their messages also go into the result's ``warnings``
+    attribute, so that a run's own verdict on itself survives in its file and in sweeps run on other
+    processes (`beyondmf._notes`).
     """
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
+    with collecting() as said:
         result = call()
-    messages, seen = [], set()
-    for w in caught:
-        if (w.category, str(w.message)) in seen:
-            continue
-        seen.add((w.category, str(w.message)))
-        if issubclass(w.category, UserWarning):
-            messages.append(str(w.message))
-        warnings.warn(w.message, w.category, stacklevel=3)  # at the caller of evolve/steady
-    return result, messages
+    return result, list(said)
 
 
 def _check_model(model) -> None:

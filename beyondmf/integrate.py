@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import functools
 import sys
-import warnings
 from collections.abc import Callable
 from typing import Any
 
@@ -17,6 +16,8 @@ import diffrax
 import jax
 import jax.numpy as jnp
 import numpy as np
+
+from ._notes import warn as _note
 
 __all__ = ["ODE_OPTIONS", "SolveError", "solve", "settle", "pick_solver", "per_envelope"]
 
@@ -70,7 +71,7 @@ def pick_solver(name: str, size: int, stiffness: float) -> str:
     if name not in SOLVERS:
         raise ValueError(f"unknown solver {name!r}; choose 'auto' or one of {', '.join(SOLVERS)}")
     if name not in IMPLICIT and stiffness > STIFF_RATIO:
-        warnings.warn(
+        _note(
             f"stiff equations: coupling rates up to {stiffness:.3g} Γ0 (close emitters) force explicit "
             f"steps of ~{1 / stiffness:.2g}/Γ0 with solver {name!r}; draw the cloud with a larger "
             "min_distance, or use solver='kvaerno5' for small N",

@@ -155,3 +155,31 @@ def test_recorded_warnings_still_obey_the_callers_filters():
         warnings.simplefilter("ignore")
         ds = bm.steady(m, "twa", seed=5, samples=100, settle_time=0.0, window=4.0, window_points=40)
     assert any("had not settled" in w for w in ds.attrs["warnings"])
+
+
+def test_run_warnings_are_kept_apart_between_threads():
+    # A dask worker may run several tasks in threads; each run must keep only its own messages
+    # (common practice: per-context state, here a contextvars.ContextVar).
+    import threading
+    import warnings
+
+    from beyondmf._notes import collecting, warn
+
+    barrier, got = threading.Barrier(2), {}
+
+    def run(name):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            with collecting() as said:
+                barrier.wait()
+                warn(f"from {name}")
+                barrier.wait()
+                warn(f"from {name}")  # the same message twice is recorded once
+        got[name] = said
+
+    threads = [threading.Thread(target=run, args=(n,)) for n in ("a", "b")]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert got == {"a": ["from a"], "b": ["from b"]}

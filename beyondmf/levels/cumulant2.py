@@ -38,13 +38,13 @@ truncation can produce unphysical moments, reported per time in the diagnostics 
 
 from __future__ import annotations
 
-import warnings
 from typing import Any
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._notes import warn as _note
 from ..estimators_pair import pair_field_moments, pair_rate_moments
 from ..integrate import ODE_OPTIONS, per_envelope, pick_solver, settle, solve
 from ..memory import require
@@ -221,7 +221,7 @@ def _moments(obs, attrs) -> Moments:
     bad = {k: v for k, v in worst.items() if v > VIOLATION_TOL}
     if bad:
         text = ", ".join(f"{k} = {v:.3g}" for k, v in bad.items())
-        warnings.warn(
+        _note(
             f"cumulant2 produced unphysical moments ({text}; tolerance {VIOLATION_TOL:g}): the second-order "
             "truncation is not trustworthy here (dense or strongly driven cloud); compare with 'exact' at "
             "small N, or use a sampling level",

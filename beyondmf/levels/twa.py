@@ -29,13 +29,13 @@ undriven ground state and the mean ⟨σ^z⟩ drifts below −1 (Σρ_ee ≈ −
 from __future__ import annotations
 
 import functools
-import warnings
 from typing import Any
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._notes import warn as _note
 from ..estimators import product_field_moments, product_rate_moments
 from ..integrate import SolveError
 from ..memory import require
@@ -89,7 +89,7 @@ def _population_check(excited, stderr, sigmas: float = 3.0):
     excess = np.maximum(-(excited + sigmas * stderr), excited - sigmas * stderr - 1.0)
     worst = np.maximum(excess, 0.0).max(axis=-1)
     if worst.max() > 0:
-        warnings.warn(
+        _note(
             f"twa: excited populations leave [0, 1] by up to {worst.max():.3g} (beyond {sigmas:g} standard "
             "errors): the truncated Wigner equations are not trustworthy for this cloud (collective decay "
             "in a dense cloud; see docs/twa.md). Compare with 'cumulant2' or an exact level",
@@ -323,10 +323,11 @@ def _sampled_sums(run, bloch, seed, samples, chunk, args, obs_args, t_obs, n_sub
 def _settling(tot: dict[str, np.ndarray], count: int, points: int) -> dict[str, float]:
     """The steady state's settling check from the per-sample half-window differences.
 
-    For Σρ_ee and the emission rate: the mean over samples of (second-half average − first-half average) of the
-    window and its standard error (the samples are independent, so the paired difference's error is honest even
-    though the two halves of one sample are correlated). ``steady_drift_sigmas`` is the larger |mean|/error;
-    beyond 4 a warning says that the window was not yet stationary.
+    For Σρ_ee and the emission rate: the mean over samples of (second-half average − first-half
+    average) of the window and its standard error (the samples are independent, so the paired
+    difference's error is honest even though the two halves of one sample are correlated).
+    ``steady_drift_sigmas`` is the larger |mean|/error; beyond 4 a warning says that the window was not
+    yet stationary.
     """
     if points < 2:
         return {"steady_drift_sigmas": float("nan")}
@@ -342,7 +343,7 @@ def _settling(tot: dict[str, np.ndarray], count: int, points: int) -> dict[str, 
         "steady_drift_sigmas": float(np.max(sig)),
     }
     if out["steady_drift_sigmas"] > 4:
-        warnings.warn(
+        _note(
             f"twa steady: the second half of the averaging window differs from the first by "
             f"{mean[0]:.3g} ± {err[0]:.2g} in Σρ_ee and {mean[1]:.3g} ± {err[1]:.2g} in the emission rate "
             f"({out['steady_drift_sigmas']:.1f} standard errors): the samples had not settled; raise "
@@ -495,11 +496,12 @@ class TruncatedWigner(Level):
         worst = int(np.argmax(np.abs(mean) - 4 * err))
         attrs["max_vacuum_excitation"] = float(np.max(np.abs(mean)))
         if abs(mean[worst]) > 4 * err[worst]:
-            warnings.warn(
+            _note(
                 f"twa: the undriven ground state of this cloud, exactly dark, reaches a total excitation "
                 f"{mean[worst]:.3g} ± {err[worst]:.2g} in the same equations (diagnostic vacuum_excitation): "
                 "their known error at this density and collective decay (docs/twa.md §7). Excitations and "
-                "rates of that size in the results are not reliable; compare with 'cumulant2' or an exact level",
+                "rates of that size in the results are not reliable; compare with 'cumulant2' or an exact "
+                "level",
                 stacklevel=4,
             )
         return {"vacuum_excitation": (("time",), mean), "vacuum_excitation_stderr": (("time",), err)}
