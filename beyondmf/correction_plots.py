@@ -189,8 +189,14 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
             top = float(np.nanmax(np.abs(c.values))) if np.isfinite(c.values).any() else tol
             lim = min(max(top, tol), _CLIP)
             im = ax.imshow(c.values, origin="lower", cmap="RdBu_r", vmin=-lim, vmax=lim, aspect="auto")
+            warned = np.zeros(verdict.shape, dtype=bool)
+            if "warned_realizations" in s:
+                w = s["warned_realizations"].sel(level=lv)
+                w = w.isel({d: -1 for d in w.dims if d not in (gx, gy)})
+                warned = w.transpose(gy, gx).values > 0
             for (yi, xi), v in np.ndenumerate(verdict):
-                ax.text(xi, yi, _MARK.get(str(v), ""), ha="center", va="center", fontsize=11)
+                mark = _MARK.get(str(v), "") + ("!" if warned[yi, xi] else "")
+                ax.text(xi, yi, mark, ha="center", va="center", fontsize=11)
             ax.set_xticks(range(s.sizes[gx]), [f"{v:g}" for v in s[gx].values], fontsize=7)
             ax.set_yticks(range(s.sizes[gy]), [f"{v:g}" for v in s[gy].values], fontsize=7)
             ax.set_xlabel(s[gx].attrs.get("parameter", gx))
@@ -198,8 +204,10 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
             at = " at the last time" if "time" in rest else ""
             ax.set_title(f"{_name(s, lv)}: correction of {_title(name, det)}{at}", fontsize=8)
             fig.colorbar(im, ax=ax, shrink=0.8)
+    flag = (", ! runs warned" if "warned_realizations" in s
+            and int(s["warned_realizations"].sum()) else "")
     fig.suptitle(f"against {base}: ✓ holds within ±{tol:g}, ✗ fails, ? undecided "
-                 f"({s.attrs['confidence']:.0%} intervals)", fontsize=9)
+                 f"({s.attrs['confidence']:.0%} intervals){flag}", fontsize=9)
     return _save(fig, path)
 
 
