@@ -141,10 +141,8 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
         _say(f"verdicts against {ds.attrs['baseline']} (tolerance {ds.attrs['tolerance']:g}):")
         warned = ds.get("warned_realizations")
         for level, row in verdict_table(ds).items():
-            note = ""
-            if warned is not None and int(warned.sel(level=level).sum()):
-                note = (f"  [{int(warned.sel(level=level).sum())} of its runs warned about themselves: "
-                        "treat these verdicts with care]")
+            k = 0 if warned is None else int(warned.sel(level=level).sum())
+            note = f"  [{k} of its runs warned about themselves: treat these verdicts with care]" if k else ""
             _say(f"  {level}: " + ", ".join(f"{k} {v}" for k, v in row.items()) + note)
     _say(f"done in {time.perf_counter() - t0:.1f} s")
     return 0
