@@ -72,18 +72,6 @@ def _attrs(model: Model, level: Level, kind: str, options, seed, extra) -> dict[
     return attrs
 
 
-def _recorded(call):
-    """Run ``call()`` and return (its result, the messages of the warnings the level issued about this run).
-
-    The warnings themselves are issued as usual; their messages also go into the result's ``warnings``
-    attribute, so that a run's own verdict on itself survives in its file and in sweeps run on other
-    processes (`beyondmf._notes`).
-    """
-    with collecting() as said:
-        result = call()
-    return result, list(said)
-
-
 def _check_model(model) -> None:
     if not isinstance(model, Model):
         raise TypeError(f"model must be a beyondmf.Model, got {type(model).__name__}")
@@ -126,7 +114,8 @@ def evolve(
     probes = Probes.build(model, _detectors(model, detectors))
     lvl.check(model)
     seed = _seed(lvl, seed)
-    moments, said = _recorded(lambda: lvl.evolve(model, ts, bloch, probes, seed, opts))
+    with collecting() as said:  # the level's warnings about this run, kept in the result (beyondmf._notes)
+        moments = lvl.evolve(model, ts, bloch, probes, seed, opts)
     init = initial if isinstance(initial, str) else "bloch vectors"
     attrs = _attrs(model, lvl, "evolve", opts, seed, {"initial": init, "warnings": said})
     return assemble(model, lvl.name, moments, probes, ts, attrs)
@@ -151,6 +140,7 @@ def steady(
     probes = Probes.build(model, _detectors(model, detectors))
     lvl.check(model)
     seed = _seed(lvl, seed)
-    moments, said = _recorded(lambda: lvl.steady(model, probes, seed, opts))
+    with collecting() as said:
+        moments = lvl.steady(model, probes, seed, opts)
     attrs = _attrs(model, lvl, "steady", opts, seed, {"warnings": said})
     return assemble(model, lvl.name, moments, probes, None, attrs)

@@ -7,6 +7,8 @@ the documented accuracy of the approximation (docs/twa.md).
 """
 
 
+import warnings
+
 import jax
 import numpy as np
 import pytest
@@ -113,10 +115,8 @@ def test_steady_settling_check_measures_the_drift_across_the_window():
     # One emitter's emission rate is Γ0 ρ_ee (conventions.md), so the two differences are the same numbers.
     assert abs(a["steady_drift_rate"] - a["steady_drift_excitation"]) < 1e-12
     # After 20/Γ0 the transient (rate ≈ Γ0/2) is gone: the same check passes and says nothing.
-    import warnings as _w
-
-    with _w.catch_warnings():
-        _w.simplefilter("error", UserWarning)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UserWarning)
         ds = steady(m, "twa", seed=5, samples=400, settle_time=20.0, window=window, window_points=points)
     assert ds.attrs["steady_drift_sigmas"] < 4
 
