@@ -10,7 +10,7 @@ import scipy.linalg
 import beyondmf as bm
 from beyondmf import Model
 from beyondmf.levels import Probes
-from tests.helpers_ops import SM, dense_liouvillian, product_density, site_op
+from tests.helpers_ops import SM, dense_liouvillian, product_density, site_op, sparse_steady_density
 
 
 def test_one_emitter_steady_state_and_antibunching():
@@ -131,6 +131,26 @@ def test_refuses_above_memory(monkeypatch):
     m = Model(positions=np.arange(24).reshape(8, 3) * 1.0, rabi=1.0)
     with pytest.raises(MemoryError, match="exact density matrix of 8 emitters"):
         bm.evolve(m, "exact", [0, 1])
+
+
+def test_settled_steady_state_above_dense_limit_is_physical_and_exact():
+    """N = 6 > DENSE_MAX_N with the default tolerances, against the null vector of the sparse Lindblad
+    generator (scipy.sparse.linalg.spsolve with the trace condition; common practice). Before the polish was
+    restricted to Hermitian unit-trace matrices it converged to a non-Hermitian root (trace 0.9997 − 0.0006i)
+    and the two starts disagreed, so steady() wrongly reported a non-unique steady state."""
+    rng = np.random.default_rng(7)
+    pos = [rng.uniform(-0.3, 0.3, 3)]
+    while len(pos) < 6:  # random cluster, nearest distances 0.15–0.35 λ0
+        c = pos[rng.integers(len(pos))] + rng.normal(size=3) * 0.25
+        if 0.15 < min(np.linalg.norm(c - p) for p in pos) < 0.35:
+            pos.append(c)
+    las = np.array([0.2, 0.5, 0.84])
+    m = Model(positions=np.array(pos), rabi=1.5, detuning=0.4, laser=tuple(las / np.linalg.norm(las)))
+    rho, sm = sparse_steady_density(m)
+    exc = [np.real(np.sum((sm[i].conj().T @ sm[i]).toarray() * rho.T)) for i in range(6)]
+    ds = bm.steady(m, "exact")
+    np.testing.assert_allclose(ds.excited.values, exc, atol=1e-10)
+    assert ds.attrs["residual"] < 1e-12 and ds.attrs["steady_spread"] < 1e-10
 
 
 @pytest.mark.slow

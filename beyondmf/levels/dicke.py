@@ -35,7 +35,16 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.special import gammaln
 
-from ..integrate import IMPLICIT_MAX_SIZE, ODE_OPTIONS, STIFF_RATIO, per_envelope, pick_solver, settle, solve
+from ..integrate import (
+    IMPLICIT_MAX_SIZE,
+    ODE_OPTIONS,
+    STIFF_RATIO,
+    hermitian_unit_trace,
+    per_envelope,
+    pick_solver,
+    settle,
+    solve,
+)
 from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
@@ -257,7 +266,7 @@ class Dicke(Level):
         y0[0, 0, 0] = 1.0  # the ground state (k = 0), inside the symmetric space
         rhs = dicke_rhs(model.envelope)
         y, info = settle(rhs, _observe, jnp.asarray(y0), args, obs_args, options, solver,
-                         what="Dicke-space steady state")
+                         project=hermitian_unit_trace, what="Dicke-space steady state")
         obs = jax.tree.map(lambda v: v[None], _observe(y, obs_args))
         return Moments(**obs, attrs={"solver": solver, **info})
 

@@ -33,7 +33,7 @@ import jax.numpy as jnp
 import numpy as np
 import scipy.linalg
 
-from ..integrate import ODE_OPTIONS, SolveError, per_envelope, pick_solver, settle, solve
+from ..integrate import ODE_OPTIONS, SolveError, hermitian_unit_trace, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
 from . import _qubits as q
@@ -207,6 +207,7 @@ class Exact(Level):
         for label, bloch in starts.items():
             try:
                 found[label] = settle(rhs, _observe, self._state(bloch), args, obs_args, options, solver,
+                                      project=hermitian_unit_trace,
                                       what=f"exact steady state (from the {label} state)")
             except SolveError as err:
                 raise SolveError(
