@@ -19,7 +19,9 @@ import numpy as np
 
 from ._notes import warn as _note
 
-__all__ = ["ODE_OPTIONS", "SolveError", "solve", "settle", "hermitian_unit_trace", "pick_solver", "per_envelope"]
+__all__ = [
+    "ODE_OPTIONS", "SolveError", "solve", "settle", "hermitian_unit_trace", "pick_solver", "per_envelope",
+]
 
 ODE_OPTIONS: dict[str, Any] = {
     "solver": "auto",

@@ -2,6 +2,7 @@
 
     I(n̂)      = (3/8π)(1 − |ê·n̂|²) ⟨E†E⟩,          E = Σ_j e^{−i2π n̂·r_j} σ_j⁻
     coherent  = (3/8π)(1 − |ê·n̂|²) |Σ_j e^{−i2π n̂·r_j} ⟨σ_j⁻⟩|²,   incoherent = I − coherent
+                (sampling levels: the unbiased estimate of the squared mean, levels._sampling)
     g2(n̂)     = ⟨E†E†EE⟩ / ⟨E†E⟩²,   g2_total = Σ Γ_ij Γ_kl ⟨σ_i⁺σ_k⁺σ_l⁻σ_j⁻⟩ / P²,   P = Σ Γ_ij ⟨σ_i⁺σ_j⁻⟩
 
 Standard errors of the ratios follow from the delta method with the covariances a sampling level reports.
@@ -58,7 +59,10 @@ def assemble(
     with np.errstate(divide="ignore", invalid="ignore"):
         g2 = m.field4 / m.field2**2
         g2_total = m.rate4 / m.rate**2
-    coherent = pref * np.abs(m.coherence @ probes.weights.T) ** 2
+    if m.coherent_field is None:
+        coherent = pref * np.abs(m.coherence @ probes.weights.T) ** 2
+    else:  # a sampling level's unbiased estimate (levels._sampling)
+        coherent = pref * m.coherent_field
     intensity = pref * m.field2
     data = {
         "excited": (("time", "atom"), m.excited),
@@ -76,6 +80,11 @@ def assemble(
         data["coherence_stderr"] = (("time", "atom"), se["coherence"])
         data["emission_rate_stderr"] = (("time",), se["rate"])
         data["intensity_stderr"] = (("time", "detector"), pref * se["field2"])
+        if "coherent_field" in se:
+            sc = se["coherent_field"]
+            data["intensity_coherent_stderr"] = (("time", "detector"), pref * sc)
+            var = se["field2"] ** 2 + sc**2 - 2 * m.cov["field2,coherent"]
+            data["intensity_incoherent_stderr"] = (("time", "detector"), pref * np.sqrt(np.maximum(var, 0)))
         data["g2_stderr"] = (
             ("time", "detector"),
             _ratio_stderr(m.field4, m.field2, se["field4"], se["field2"], m.cov.get("field", 0.0)),

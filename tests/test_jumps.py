@@ -58,6 +58,12 @@ def test_one_emitter_steady_state_and_antibunching():
     assert abs(ds.excited.values[0] - (s / 2) / (1 + s)) < 4 * ds.excited_stderr.values[0]
     assert ds.g2_total.values == 0.0
     assert np.all(ds.g2.values == 0.0)
+    # the coherent part of the scattered light is the fraction 1/(1 + s) of it (B. R. Mollow, Phys. Rev.
+    # 188, 1969 (1969); R. Loudon (2000)), here from the unbiased estimator with its own standard error
+    I, C = float(ds.intensity[0]), float(ds.intensity_coherent[0])
+    assert abs(C - I / (1 + s)) < 4 * float(ds.intensity_coherent_stderr[0])
+    assert abs(float(ds.intensity_incoherent[0]) - I * s / (1 + s)) < 4 * float(
+        ds.intensity_incoherent_stderr[0])
 
 
 def test_steady_settling_check_is_paired():

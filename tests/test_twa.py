@@ -96,6 +96,10 @@ def test_single_emitter_steady_population_is_exact_in_the_mean():
         # H. J. Kimble, M. Dagenais, L. Mandel, PRL 39, 691 (1977): one emitter's light is antibunched,
         # and the same-site rule σ⁺σ⁺ = 0 makes the estimator zero in every sample.
         assert abs(float(ds.g2.values[0])) < 1e-10
+        # coherent fraction 1/(1 + s) of the scattered light (B. R. Mollow, Phys. Rev. 188, 1969 (1969)),
+        # from the unbiased estimator of the squared mean coherence, within its own standard error
+        I, C = float(ds.intensity[0]), float(ds.intensity_coherent[0])
+        assert abs(C - I / (1 + s)) < 4 * float(ds.intensity_coherent_stderr[0])
 
 
 def test_steady_settling_check_measures_the_drift_across_the_window():

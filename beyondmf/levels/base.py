@@ -57,7 +57,10 @@ class Moments:
 
     Sampling levels fill ``stderr`` (same keys, standard errors of the means) and ``cov`` with the
     covariances of the means that the ratios need: ``cov["field"] = cov(field4, field2)`` and
-    ``cov["rate"] = cov(rate4, rate)``. ``diagnostics`` maps extra data-variable names to (dims, array);
+    ``cov["rate"] = cov(rate4, rate)``. They also set ``coherent_field`` (T, D), the unbiased estimate of
+    |Σ_j w_dj ⟨σ_j⁻⟩|² (`levels._sampling`; the square of the mean coherences is biased by their sampling
+    variance), with ``stderr["coherent_field"]`` and ``cov["field2,coherent"]``; without it the coherent
+    part is computed from ``coherence``. ``diagnostics`` maps extra data-variable names to (dims, array);
     ``attrs`` adds attributes (solver statistics, residuals, warnings).
     """
 
@@ -67,6 +70,7 @@ class Moments:
     field4: Any
     rate: Any
     rate4: Any
+    coherent_field: Any = None
     stderr: dict[str, Any] = field(default_factory=dict)
     cov: dict[str, Any] = field(default_factory=dict)
     diagnostics: dict[str, tuple[tuple[str, ...], Any]] = field(default_factory=dict)
@@ -78,6 +82,7 @@ class Moments:
         conv = {k: np.asarray(getattr(self, k)) for k in self.KEYS}
         return Moments(
             **conv,
+            coherent_field=None if self.coherent_field is None else np.asarray(self.coherent_field),
             stderr={k: np.asarray(v) for k, v in self.stderr.items()},
             cov={k: np.asarray(v) for k, v in self.cov.items()},
             diagnostics={k: (d, np.asarray(v)) for k, (d, v) in self.diagnostics.items()},

@@ -33,7 +33,15 @@ import jax.numpy as jnp
 import numpy as np
 import scipy.linalg
 
-from ..integrate import ODE_OPTIONS, SolveError, hermitian_unit_trace, per_envelope, pick_solver, settle, solve
+from ..integrate import (
+    ODE_OPTIONS,
+    SolveError,
+    hermitian_unit_trace,
+    per_envelope,
+    pick_solver,
+    settle,
+    solve,
+)
 from ..memory import require
 from ..model import Envelope, Model
 from . import _qubits as q

@@ -32,6 +32,7 @@ import numpy as np
 from ..memory import available_bytes, require
 from ..model import Envelope, Model
 from . import _qubits as q
+from ._sampling import amplitude_sums, coherent_statistics
 from .base import Level, Moments, Probes, register
 
 __all__ = ["Jumps", "jump_channels"]
@@ -153,6 +154,8 @@ def _runner(envelope: Envelope, dt: float):
         # the rate at the last two times of the same trajectories (steady's paired settling check)
         r = obs["rate"]
         cross["rate_lag"] = wsum(r[:, -1] * r[:, -2]) if ts.shape[0] >= 2 else wsum(0.0 * r[:, -1])
+        # the far-field amplitudes Σ_j w_dj ⟨σ_j⁻⟩ per trajectory, for the unbiased coherent part
+        cross.update(amplitude_sums(obs["coherence"] @ args["weights"].T, obs["field2"], wsum))
         return sums, sq, cross
 
     return run
@@ -223,10 +226,13 @@ class Jumps(Level):
             "field": (crs["field"] / samples - mean["field4"] * mean["field2"]) / (samples - 1),
             "rate": (crs["rate"] / samples - mean["rate4"] * mean["rate"]) / (samples - 1),
         }
+        coherent, stderr["coherent_field"], cov["field2,coherent"] = coherent_statistics(
+            crs, tot["field2"], samples)
         lag = np.nan
         if len(ts) >= 2:  # covariance over trajectories of the rates at the last two times
             lag = (crs["rate_lag"] / samples - mean["rate"][-1] * mean["rate"][-2]) * samples / (samples - 1)
-        return Moments(**mean, stderr=stderr, cov=cov, attrs={**info, "samples": samples}), lag
+        return Moments(**mean, coherent_field=coherent, stderr=stderr, cov=cov,
+                       attrs={**info, "samples": samples}), lag
 
     def evolve(self, model, times, initial, probes, seed, options) -> Moments:
         return self._run(model, np.asarray(times, dtype=float), initial, probes, seed, options)[0]
@@ -248,6 +254,7 @@ class Jumps(Level):
         pick = lambda a: np.asarray(a)[2:3]  # noqa: E731
         return Moments(
             **{k: pick(getattr(m, k)) for k in Moments.KEYS},
+            coherent_field=pick(m.coherent_field),
             stderr={k: pick(v) for k, v in m.stderr.items()},
             cov={k: pick(v) for k, v in m.cov.items()},
             attrs={**m.attrs, "settle_time": t1, "steady_drift_rate": change, "steady_drift_rate_stderr": err,

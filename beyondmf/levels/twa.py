@@ -40,6 +40,7 @@ from ..estimators import product_field_moments, product_rate_moments
 from ..integrate import SolveError
 from ..memory import require
 from ..model import Envelope, Model
+from ._sampling import amplitude_sums, coherent_statistics
 from .base import Level, Moments, Probes, register
 
 __all__ = ["TruncatedWigner", "auto_dt", "noise_factor", "sample_initial", "twa_args", "twa_drift"]
@@ -188,7 +189,7 @@ def _per_sample(Y, weights, gamma):
     f2, f4 = jax.vmap(product_field_moments, in_axes=(1, 1, None))(beta, n, weights)
     r2, r4 = jax.vmap(product_rate_moments, in_axes=(1, 1, None))(beta, n, gamma)
     return {"excited": n.T, "coherence": beta.T, "field2": f2, "field4": f4, "rate": r2, "rate4": r4,
-            "excited_total": jnp.sum(n, axis=0)}
+            "excited_total": jnp.sum(n, axis=0), "amplitude": beta.T @ weights.T}
 
 
 def _bad(Y):
@@ -206,8 +207,11 @@ def _sums(obs, mask):
         a = jnp.where(mask.reshape((-1,) + (1,) * (a.ndim - 1)), a, 0.0)
         return jnp.tensordot(w, a, axes=1)
 
+    obs = dict(obs)
+    amplitude = obs.pop("amplitude")  # per-sample Σ_j w_dj β_j: the unbiased coherent part (levels._sampling)
     out = {k: s(v) for k, v in obs.items()}
     out.update({k + "^2": s(jnp.abs(v) ** 2) for k, v in obs.items()})
+    out.update(amplitude_sums(amplitude, obs["field2"], s))
     out["field4*field2"] = s(obs["field4"] * obs["field2"])
     out["rate4*rate"] = s(obs["rate4"] * obs["rate"])
     return out
@@ -370,6 +374,8 @@ def _statistics(tot: dict[str, np.ndarray], count: int):
         "field": (tot["field4*field2"] - count * means["field4"] * means["field2"]) / denom,
         "rate": (tot["rate4*rate"] - count * means["rate4"] * means["rate"]) / denom,
     }
+    means["coherent_field"], stderr["coherent_field"], cov["field2,coherent"] = coherent_statistics(
+        tot, tot["field2"], count)
     return means, stderr, cov
 
 
