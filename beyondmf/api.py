@@ -9,7 +9,7 @@ import numpy as np
 import xarray as xr
 
 from ._notes import collecting
-from .levels.base import Level, Probes, get_level
+from .levels.base import Level, Probes, get_level, is_count
 from .model import Model
 from .observables import assemble
 from .results import provenance
@@ -53,13 +53,15 @@ def _options(level: Level, given: dict[str, Any]) -> dict[str, Any]:
         allowed = ", ".join(sorted(level.options)) or "none"
         names = ", ".join(map(repr, unknown))
         raise ValueError(f"level {level.name!r} takes no option {names}; its options: {allowed}")
-    return {**level.options, **given}
+    opts = {**level.options, **given}
+    level.validate_options(opts)
+    return opts
 
 
 def _seed(level: Level, seed):
     if seed is None and level.stochastic:
         return int(np.random.SeedSequence().entropy % 2**31)
-    if seed is not None and (int(seed) != seed or seed < 0):
+    if seed is not None and not is_count(seed, 0):
         raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
     return None if seed is None else int(seed)
 
@@ -107,7 +109,12 @@ def evolve(
     _check_model(model)
     lvl = get_level(level)
     opts = _options(lvl, options)
-    ts = np.asarray(times, dtype=float).reshape(-1)
+    if np.ndim(times) != 1:
+        raise ValueError(
+            f"times must be a 1-D sequence of report times starting at the initial time, got {times!r}; "
+            "to evolve from t = 0 to t = 5 pass e.g. numpy.linspace(0, 5, 51)"
+        )
+    ts = np.asarray(times, dtype=float)
     if ts.size == 0 or not np.all(np.isfinite(ts)) or np.any(np.diff(ts) <= 0):
         raise ValueError("times must be a non-empty, finite, strictly increasing sequence")
     bloch = initial_bloch(model, initial)

@@ -23,6 +23,14 @@ and the two-sided interval c ± q·√Var c, q the Student-t quantile with K −
 "fails" when it lies wholly outside, "undecided" when it straddles ±τ, "undefined" when X̄_b = 0
 to round-off (|X̄_b| ≤ 1e-9·max(1, max|X|); the relative correction does not exist, e.g. g2 of one
 emitter), "baseline" for the baseline itself.
+
+A stochastic level (one that reports a positive standard error somewhere) whose samples all agree at a
+point reports a standard error of exactly 0 there, which is not certainty: after every quantum-jump
+trajectory has decayed, the emission rate is 0 in every sample while the exact rate is small but not
+zero, and the interval [−1, −1] would read "fails". Where the level or the baseline reports a zero
+standard error in every realization and the two differ, the verdict is "undecided" (more samples are
+needed to resolve the point); where they agree (e.g. t = 0 from a product state) the interval of zero
+width stands.
 """
 
 from __future__ import annotations
@@ -70,7 +78,7 @@ def _verdict(c, low, high, base_mean, zero: float, tolerance: float, is_base) ->
     out[(low > tolerance) | (high < -tolerance)] = "fails"
     out[~np.isfinite(c) | (np.abs(base_mean) <= zero)] = "undefined"
     out[is_base] = "baseline"
-    return out.astype(str)
+    return out.astype(f"U{max(map(len, VERDICTS))}")  # wide enough for any verdict assigned later
 
 
 def summarize(
@@ -134,10 +142,17 @@ def summarize(
         sd = xr.where(is_base, 0.0, sd).transpose(*mean.dims)
         low, high = c - q * sd, c + q * sd
         order = c.dims
+        zero = _ZERO * max(1.0, float(np.nanmax(np.abs(x.values), initial=0.0)))
         verdict = _verdict(c.values, low.transpose(*order).values, high.transpose(*order).values,
-                           mb.broadcast_like(c).transpose(*order).values,
-                           _ZERO * max(1.0, float(np.nanmax(np.abs(x.values), initial=0.0))), tolerance,
+                           mb.broadcast_like(c).transpose(*order).values, zero, tolerance,
                            is_base.broadcast_like(c).transpose(*order).values)
+        if f"{name}_stderr" in ds:  # samples that all agree: a zero standard error is not certainty
+            raw = ds[f"{name}_stderr"]
+            sampled = (raw > 0).any([dim for dim in raw.dims if dim != "level"])  # reports sampling errors
+            flat = ((raw == 0) & sampled).all("realization")
+            flat = flat | flat.sel(level=baseline, drop=True)
+            unresolved = flat & (abs(d.mean("realization")) > zero) & ~is_base
+            verdict[unresolved.broadcast_like(c).transpose(*order).values] = "undecided"
         out[name] = mean.assign_attrs(x.attrs)
         out[f"{name}_uncertainty"] = np.sqrt(_var(x, k) / k + samp).assign_attrs(
             long_name=f"uncertainty of the mean of {name} over realizations (1 standard error)")
@@ -181,7 +196,7 @@ def verdict_table(summary: xr.Dataset) -> dict[str, dict[str, str]]:
         for name in summary.data_vars:
             if name.endswith("_verdict"):
                 vals = np.atleast_1d(summary[name].sel(level=lv).values).ravel()
-                row[name[: -len("_verdict")]] = min(vals, key=lambda v: rank[str(v)])
+                row[name[: -len("_verdict")]] = str(min(vals, key=lambda v: rank[str(v)]))
         table[str(lv)] = row
     return table
 

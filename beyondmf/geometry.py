@@ -29,7 +29,10 @@ _MAX_PACKING = 0.2
 
 
 def _triple(value: float | Sequence[float], name: str) -> np.ndarray:
-    arr = np.broadcast_to(np.asarray(value, dtype=float), (3,)).copy()
+    try:
+        arr = np.broadcast_to(np.asarray(value, dtype=float), (3,)).copy()
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"{name} must be one length or three (x, y, z) in λ0, got {value!r}") from err
     if not np.all(np.isfinite(arr)) or np.any(arr <= 0):
         raise ValueError(f"{name} must be three positive finite lengths in λ0, got {value!r}")
     return arr
@@ -163,7 +166,8 @@ def nearest_distance(positions: np.ndarray) -> tuple[float, tuple[int, int]]:
         return float("inf"), (0, 0)
     d, idx = cKDTree(pos).query(pos, k=2)
     i = int(np.argmin(d[:, 1]))
-    j = int(idx[i, 1])
+    # for coincident points the two nearest (both at distance 0) may come in either order
+    j = int(idx[i, 1]) if idx[i, 1] != i else int(idx[i, 0])
     return float(d[i, 1]), (min(i, j), max(i, j))
 
 

@@ -21,6 +21,7 @@ from ._notes import warn as _note
 
 __all__ = [
     "ODE_OPTIONS", "SolveError", "solve", "settle", "hermitian_unit_trace", "pick_solver", "per_envelope",
+    "check_ode_options",
 ]
 
 ODE_OPTIONS: dict[str, Any] = {
@@ -60,10 +61,30 @@ _ADVICE = {
     "max_steps_reached": "raise max_steps, or relax rtol/atol; if the cloud is dense, enforce a larger "
     "min_distance or use solver='kvaerno5' (small N)",
     "dt_min_reached": "the step size collapsed below dtmin: the equations are stiff or the state diverges; "
-    "try solver='kvaerno5' (small N), a larger min_distance, or a lower rtol",
+    "try solver='kvaerno5' (small N), a larger min_distance, or a looser rtol (e.g. 1e-5)",
     "nonfinite": "the state became NaN or infinite: the level's equations diverged here; check the model "
     "(very close emitters, huge Rabi frequency) or use a lower rtol",
 }
+
+
+def check_ode_options(options: dict[str, Any], defaults: dict[str, Any]) -> None:
+    """ValueError naming the first ODE option (those in ``defaults``) with a value the solver cannot use."""
+
+    def positive(name):
+        v = options.get(name)
+        if name in defaults and not (isinstance(v, int | float) and not isinstance(v, bool)
+                                     and np.isfinite(v) and v > 0):
+            raise ValueError(f"{name} must be a positive number, got {v!r}")
+
+    for name in ("rtol", "atol", "dtmin"):
+        positive(name)
+    if "max_steps" in defaults:
+        v = options.get("max_steps")
+        if not (isinstance(v, int | np.integer) and not isinstance(v, bool) and v >= 1):
+            raise ValueError(f"max_steps must be a positive integer, got {v!r}")
+    if "solver" in defaults and options.get("solver") != "auto" and options.get("solver") not in SOLVERS:
+        raise ValueError(
+            f"unknown solver {options.get('solver')!r}; choose 'auto' or one of {', '.join(SOLVERS)}")
 
 
 def pick_solver(name: str, size: int, stiffness: float) -> str:
@@ -71,7 +92,7 @@ def pick_solver(name: str, size: int, stiffness: float) -> str:
     if name == "auto":
         name = "kvaerno5" if (stiffness > STIFF_RATIO and size <= IMPLICIT_MAX_SIZE) else "tsit5"
     if name not in SOLVERS:
-        raise ValueError(f"unknown solver {name!r}; choose 'auto' or one of {', '.join(SOLVERS)}")
+        check_ode_options({"solver": name}, {"solver": "auto"})  # raises, naming the known solvers
     if name not in IMPLICIT and stiffness > STIFF_RATIO:
         _note(
             f"stiff equations: coupling rates up to {stiffness:.3g} Γ0 (close emitters) force explicit "

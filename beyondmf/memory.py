@@ -24,6 +24,7 @@ def require(nbytes: float, what: str, fraction: float = 0.9) -> None:
     have = available_bytes()
     if nbytes > fraction * have:
         raise MemoryError(
-            f"{what} needs about {nbytes / 2**30:.1f} GiB but this machine has {have / 2**30:.1f} GiB free; "
-            "reduce the number of emitters (or samples), or run it on a larger machine"
+            f"{what}: about {nbytes / 2**30:.1f} GiB needed, but this machine has {have / 2**30:.1f} GiB "
+            "free; "
+            "use fewer emitters (for a sampling level, a smaller chunk of samples), or a larger machine"
         )

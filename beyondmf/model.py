@@ -79,12 +79,13 @@ class Envelope:
 
 
 def _finite_scalar(value, name: str, complex_ok: bool = False):
-    v = complex(value) if complex_ok else value
-    if not complex_ok:
-        try:
-            v = float(value)
-        except (TypeError, ValueError) as err:
-            raise ValueError(f"{name} must be a real number, got {value!r}") from err
+    kind = "a (complex) number" if complex_ok else "a real number"
+    if isinstance(value, str | bytes) or np.ndim(value) != 0:  # float("0") would accept a string
+        raise ValueError(f"{name} must be {kind}, got {value!r}")
+    try:
+        v = complex(value) if complex_ok else float(value)
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"{name} must be {kind}, got {value!r}") from err
     if not np.isfinite(v):
         raise ValueError(f"{name} must be finite, got {value!r}")
     return v
@@ -122,7 +123,14 @@ class Model:
     _norm: list = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
-        pos = np.array(self.positions, dtype=float)
+        raw = np.asarray(self.positions)
+        if np.iscomplexobj(raw):
+            raise ValueError("positions must be real coordinates (λ0), got complex values")
+        try:
+            pos = np.array(raw, dtype=float)
+        except (TypeError, ValueError) as err:
+            raise ValueError(
+                f"positions must be an (N, 3) array of numbers, got {self.positions!r:.80}") from err
         if pos.ndim == 1 and pos.shape == (3,):
             pos = pos[None, :]
         if pos.ndim != 2 or pos.shape[1] != 3 or len(pos) == 0:

@@ -183,3 +183,27 @@ def test_run_warnings_are_kept_apart_between_threads():
     for t in threads:
         t.join()
     assert got == {"a": ["from a"], "b": ["from b"]}
+
+
+def test_samples_that_all_agree_do_not_make_a_verdict_certain():
+    """After every trajectory has decayed the sampled rate is 0 with a standard error of exactly 0 while the
+    exact rate is small but positive: the zero-width interval [−1, −1] must not read "fails" (a sample that
+    shows no event bounds its probability only to ~3/S: the "rule of three", J. A. Hanley, A. Lippman-Hand,
+    JAMA 249, 1743 (1983), from memory). Where the samples agree with the baseline (t = 0 from a product
+    state) the zero-width interval stands; a deterministic level's explicit zero error is not affected."""
+    levels = ["dicke", "jumps", "meanfield"]
+    P = np.array([[[1.0, 0.0044]], [[1.0, 0.0]], [[1.0, 0.0040]]])  # (level, realization, time)
+    ds = xr.Dataset(
+        {"emission_rate": (("level", "realization", "time"), P),
+         "emission_rate_stderr": (("level", "realization", "time"), np.zeros_like(P))},
+        coords={"level": levels, "realization": [0], "time": [0.0, 3.0]})
+    # jumps reports sampling errors elsewhere (a third time point, mid-burst: 2 ± 2 %, holds within 10 %)
+    mid = ds.isel(time=[0]).assign_coords(time=[1.0])
+    mid["emission_rate"][:] = [[[0.5]], [[0.51]], [[0.53]]]
+    mid["emission_rate_stderr"][:] = [[[0.0]], [[0.01]], [[0.0]]]
+    ds = xr.concat([ds.isel(time=[0]), mid, ds.isel(time=[1])], dim="time")
+    s = summarize(ds, baseline="dicke", tolerance=0.1, observables=["emission_rate"])
+    v = s["emission_rate_verdict"]
+    assert list(v.sel(level="jumps").values) == ["holds", "holds", "undecided"]
+    # meanfield: deterministic, 9 % off at t = 3 with no error of its own: "holds" as before
+    assert list(v.sel(level="meanfield").values) == ["holds", "holds", "holds"]

@@ -43,3 +43,8 @@ def test_density_of_a_cubic_block_and_a_gaussian_cloud():
     g = geometry.gaussian_cloud(4000, 1.0, seed=2)
     expected = 4000 / (4 * np.pi) ** 1.5
     assert geometry.density(g, neighbours=20)["mean"] == pytest.approx(expected, rel=0.15)
+
+
+def test_wrong_number_of_widths_is_explained():
+    with pytest.raises(ValueError, match=r"widths must be one length or three"):
+        geometry.gaussian_cloud(5, widths=(1, 2), seed=1)

@@ -18,6 +18,10 @@ import beyondmf as bm
         ({"positions": [[0, 0, 0]], "detuning": "large"}, "detuning must be a real number"),
         ({"positions": [[0, 0, 0]], "coupling": "dyadic"}, "unknown coupling"),
         ({"positions": [[0, 0, 0]], "envelope": [(2, 1)]}, "t_on < t_off"),
+        ({"positions": [[0, 0, 0]], "rabi": [1, 2]}, "rabi must be a .complex. number"),
+        ({"positions": [[0, 0, 0]], "detuning": "0"}, "detuning must be a real number"),
+        ({"positions": [[0, 0, 1j]]}, "positions must be real"),
+        ({"positions": [["a", 0, 0]]}, r"\(N, 3\) array of numbers"),
     ],
 )
 def test_bad_model_input_is_refused(kwargs, match):
@@ -29,6 +33,13 @@ def test_coincident_emitters_are_named_with_their_distance():
     pos = [[0, 0, 0], [1, 0, 0], [1, 0, 1e-4]]
     with pytest.raises(ValueError, match=r"emitters 1 and 2 are 0.0001 λ0 apart"):
         bm.Model(pos)
+
+
+def test_exactly_coincident_emitters_are_named_as_two_different_ones():
+    # the k-d tree returns either point first when two coincide; the message must name both
+    for pos in (np.zeros((2, 3)), [[1, 0, 0], [0, 0, 0], [0, 0, 0], [2, 0, 0]]):
+        with pytest.raises(ValueError, match=r"emitters (\d+) and (?!\1)\d+ are 0 λ0 apart"):
+            bm.Model(pos)
 
 
 def test_coincident_emitters_allowed_for_all_to_all():
@@ -98,5 +109,35 @@ def test_memory_need_is_refused_before_allocating(monkeypatch):
     from beyondmf import memory
 
     monkeypatch.setattr(memory, "available_bytes", lambda: 10**6)
-    with pytest.raises(MemoryError, match="needs about .* GiB"):
+    with pytest.raises(MemoryError, match="about .* GiB needed"):
         bm.Model(bm.geometry.box_cloud(1000, 10, seed=0))
+
+
+@pytest.mark.parametrize(
+    "level, options, match",
+    [
+        ("meanfield", {"rtol": -1}, "rtol must be a positive number"),
+        ("meanfield", {"max_steps": -1}, "max_steps must be a positive integer"),
+        ("exact", {"atol": "tiny"}, "atol must be a positive number"),
+        ("cumulant2", {"solver": "rk4"}, "unknown solver 'rk4'"),
+        ("twa", {"samples": -10}, "samples must be an integer ≥ 2"),
+        ("twa", {"max_failed": "0.1"}, r"max_failed must be a fraction in \[0, 1\)"),
+        ("twa", {"window": 0}, "window > 0"),
+        ("jumps", {"chunk": 0}, "chunk must be a positive integer"),
+        ("jumps", {"settle_time": -1}, "settle_time must be a positive time"),
+    ],
+)
+def test_bad_option_values_are_refused_before_anything_runs(level, options, match):
+    with pytest.raises(ValueError, match=match):
+        bm.evolve(bm.Model([[0, 0, 0]], rabi=1.0), level, [0, 1], **options)
+    lvl = bm.levels.get_level(level)  # the same check, without a model (study files use it up front)
+    with pytest.raises(ValueError, match=match):
+        lvl.validate_options({**lvl.options, **options})
+
+
+def test_times_and_seed_mistakes_are_explained():
+    m = bm.Model([[0, 0, 0]], rabi=1.0)
+    with pytest.raises(ValueError, match=r"1-D sequence.*linspace\(0, 5"):
+        bm.evolve(m, "meanfield", 5.0)
+    with pytest.raises(ValueError, match="seed must be a non-negative integer, got 'a'"):
+        bm.evolve(m, "twa", [0, 1], seed="a", samples=4)

@@ -90,6 +90,17 @@ class Moments:
         )
 
 
+def is_real_number(v) -> bool:
+    """A finite real number (not a bool, not a string): for option checks."""
+    real = isinstance(v, int | float | np.integer | np.floating) and not isinstance(v, bool)
+    return real and bool(np.isfinite(v))
+
+
+def is_count(v, least: int) -> bool:
+    """An integer (not a bool) ≥ ``least``: for option checks."""
+    return isinstance(v, int | np.integer) and not isinstance(v, bool) and v >= least
+
+
 class Level(ABC):
     """One level of description. Subclasses set the class attributes and implement two methods.
 
@@ -104,6 +115,14 @@ class Level(ABC):
 
     def check(self, model: Model) -> None:  # noqa: B027 - optional hook
         """Refuse, with a ValueError that says why, a model this level cannot treat."""
+
+    def validate_options(self, options: dict[str, Any]) -> None:
+        """Refuse, with a ValueError naming the option, a value this level cannot use (no model needed,
+        nothing computed: study files call it before a run starts). The default checks the options of the
+        adaptive ODE solver, where the level has them; levels with options of their own extend it."""
+        from ..integrate import check_ode_options  # levels.base is imported by integrate's users
+
+        check_ode_options({k: v for k, v in options.items() if k in self.options}, self.options)
 
     @abstractmethod
     def evolve(

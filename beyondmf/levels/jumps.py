@@ -33,7 +33,7 @@ from ..memory import available_bytes, require
 from ..model import Envelope, Model
 from . import _qubits as q
 from ._sampling import amplitude_sums, coherent_statistics
-from .base import Level, Moments, Probes, register
+from .base import Level, Moments, Probes, is_count, is_real_number, register
 
 __all__ = ["Jumps", "jump_channels"]
 
@@ -168,11 +168,21 @@ class Jumps(Level):
     options = {"samples": 1000, "dt": "auto", "chunk": "auto", "settle_time": 40.0}
     stochastic = True
 
+    def validate_options(self, options) -> None:
+        if not is_count(options["samples"], 2):
+            raise ValueError(f"samples must be an integer ≥ 2, got {options['samples']!r}")
+        chunk = options["chunk"]
+        if chunk != "auto" and not is_count(chunk, 1):
+            raise ValueError(f"chunk must be a positive integer or 'auto', got {chunk!r}")
+        dt = options["dt"]
+        if dt != "auto" and not (is_real_number(dt) and dt > 0):
+            raise ValueError(f"dt must be positive or 'auto', got {dt!r}")
+        if not (is_real_number(options["settle_time"]) and options["settle_time"] > 0):
+            raise ValueError(f"settle_time must be a positive time (1/Γ0), got {options['settle_time']!r}")
+
     def _setup(self, model: Model, probes: Probes, options):
         n, d = model.n, 2**model.n
         samples = int(options["samples"])
-        if samples < 2 or samples != options["samples"]:
-            raise ValueError(f"samples must be an integer ≥ 2, got {options['samples']!r}")
         rates, v = jump_channels(model.Gamma)
         per_traj = 16 * d * (8 + 3 * n + len(rates) * n + 2 * len(probes.names))
         require(per_traj + 16 * d * n, f"quantum-jump trajectories of {model.n} emitters")
@@ -180,12 +190,8 @@ class Jumps(Level):
         if chunk == "auto":
             budget = min(CHUNK_BYTES, 0.25 * available_bytes())
             chunk = int(max(1, min(samples, budget // per_traj, 256)))
-        elif int(chunk) != chunk or chunk < 1:
-            raise ValueError(f"chunk must be a positive integer or 'auto', got {chunk!r}")
         c = model.J - model.detuning * np.eye(n) - 0.5j * model.Gamma
-        dt = _auto_dt(model, c) if options["dt"] == "auto" else float(options["dt"])
-        if not dt > 0:
-            raise ValueError(f"dt must be positive or 'auto', got {options['dt']!r}")
+        dt = _auto_dt(model, c) if options["dt"] == "auto" else float(options["dt"])  # validate_options
         args = {
             "C": jnp.asarray(c),
             "omega": jnp.asarray(model.rabi_sites.astype(complex)),

@@ -41,7 +41,7 @@ from ..integrate import SolveError
 from ..memory import require
 from ..model import Envelope, Model
 from ._sampling import amplitude_sums, coherent_statistics
-from .base import Level, Moments, Probes, register
+from .base import Level, Moments, Probes, is_count, is_real_number, register
 
 __all__ = ["TruncatedWigner", "auto_dt", "noise_factor", "sample_initial", "twa_args", "twa_drift"]
 
@@ -404,22 +404,34 @@ class TruncatedWigner(Level):
 
     @staticmethod
     def _step(model: Model, options: dict[str, Any]) -> float:
-        dt = auto_dt(model) if options["dt"] == "auto" else options["dt"]
-        try:
-            dt = float(dt)
-        except (TypeError, ValueError):
-            dt = float("nan")
-        if not (np.isfinite(dt) and dt > 0):
-            raise ValueError(f"dt must be a positive time step (1/Γ0) or 'auto', got {options['dt']!r}")
-        return dt
+        return float(auto_dt(model) if options["dt"] == "auto" else options["dt"])  # validate_options
+
+    def validate_options(self, options: dict[str, Any]) -> None:
+        samples = options["samples"]
+        if not is_count(samples, 2):
+            raise ValueError(f"samples must be an integer ≥ 2, got {samples!r}")
+        frac = options["max_failed"]
+        if not (is_real_number(frac) and 0 <= frac < 1):
+            raise ValueError(f"max_failed must be a fraction in [0, 1), got {frac!r}")
+        dt = options["dt"]
+        if dt != "auto" and not (is_real_number(dt) and np.isfinite(dt) and dt > 0):
+            raise ValueError(f"dt must be a positive time step (1/Γ0) or 'auto', got {dt!r}")
+        chunk = options["chunk"]
+        if chunk != "auto" and not is_count(chunk, 1):
+            raise ValueError(f"chunk must be 'auto' or a positive number of samples, got {chunk!r}")
+        vac = options["vacuum_check"]
+        if not (is_count(vac, 0) and vac != 1):
+            raise ValueError(
+                f"vacuum_check must be 0 (off) or a number of control samples ≥ 2, got {vac!r}"
+            )
+        t_settle, window, points = options["settle_time"], options["window"], options["window_points"]
+        if not (is_real_number(t_settle) and t_settle >= 0 and is_real_number(window) and window > 0
+                and is_count(points, 1)):
+            raise ValueError("steady needs settle_time ≥ 0, window > 0 and an integer window_points ≥ 1, got "
+                             f"{t_settle!r}, {window!r}, {points!r}")
 
     def _setup(self, model: Model, probes: Probes, options: dict[str, Any]):
-        samples = options["samples"]
-        if not (isinstance(samples, int | np.integer) and samples >= 2):
-            raise ValueError(f"samples must be an integer ≥ 2, got {samples!r}")
-        frac = float(options["max_failed"])
-        if not 0 <= frac < 1:
-            raise ValueError(f"max_failed must be a fraction in [0, 1), got {options['max_failed']!r}")
+        samples, frac = options["samples"], float(options["max_failed"])
         dt = self._step(model, options)
         n = model.n
         args = twa_args(model)
@@ -429,13 +441,6 @@ class TruncatedWigner(Level):
         chunk = options["chunk"]
         if chunk == "auto":
             chunk = int(max(1, min(samples, CHUNK_BYTES // per_sample)))
-        elif not (isinstance(chunk, int | np.integer) and chunk >= 1):
-            raise ValueError(f"chunk must be 'auto' or a positive number of samples, got {chunk!r}")
-        vac = options["vacuum_check"]
-        if not (isinstance(vac, int | np.integer) and not isinstance(vac, bool) and (vac == 0 or vac >= 2)):
-            raise ValueError(
-                f"vacuum_check must be 0 (off) or a number of control samples ≥ 2, got {vac!r}"
-            )
         return samples, frac, dt, int(chunk), args, obs_args
 
     def _run(self, model, t_obs, n_sub, initial, seed, options, probes, steady: bool):
@@ -521,9 +526,7 @@ class TruncatedWigner(Level):
         [settle_time, settle_time + window], starting from the ground state at t = 0."""
         dt = self._step(model, options)
         t_settle, window = float(options["settle_time"]), float(options["window"])
-        points = options["window_points"]
-        if not (t_settle >= 0 and window > 0 and isinstance(points, int) and points >= 1):
-            raise ValueError("steady needs settle_time ≥ 0, window > 0 and an integer window_points ≥ 1")
+        points = int(options["window_points"])
         t_obs = np.concatenate([[0.0], t_settle + window * np.arange(1, points + 1) / points])
         n_sub = _substeps(t_obs, dt)
         ground = np.tile([0.0, 0.0, -1.0], (model.n, 1))
