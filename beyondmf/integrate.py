@@ -82,9 +82,12 @@ def check_ode_options(options: dict[str, Any], defaults: dict[str, Any]) -> None
         v = options.get("max_steps")
         if not (isinstance(v, int | np.integer) and not isinstance(v, bool) and v >= 1):
             raise ValueError(f"max_steps must be a positive integer, got {v!r}")
+    progress = options.get("progress")
+    if "progress" in defaults and not (isinstance(progress, bool) or progress == "auto"):
+        raise ValueError(f"progress must be 'auto', true or false, got {options.get('progress')!r}")
     if "solver" in defaults and options.get("solver") != "auto" and options.get("solver") not in SOLVERS:
-        raise ValueError(
-            f"unknown solver {options.get('solver')!r}; choose 'auto' or one of {', '.join(SOLVERS)}")
+        known = ", ".join(SOLVERS)
+        raise ValueError(f"solver must be 'auto' or one of {known}, got {options.get('solver')!r}")
 
 
 def pick_solver(name: str, size: int, stiffness: float) -> str:

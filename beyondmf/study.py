@@ -7,6 +7,9 @@ level it lists and returns one Dataset with a ``level`` dimension.
 
 Each top-level table is parsed by one function registered with `section`; a new section (a parameter
 sweep, a comparison) is one more registered function, and its parsed value lands in ``Study.extra``.
+Checks that need several sections at once (a comparison's baseline must be one of the levels) are
+registered with `study_check` and run on the parsed study, so that they too stop a run before anything
+is computed.
 """
 
 from __future__ import annotations
@@ -35,6 +38,7 @@ __all__ = [
     "parse_table",
     "run_study",
     "section",
+    "study_check",
     "detector_direction",
 ]
 
@@ -222,8 +226,9 @@ def _parse_drive(table: dict, where: str) -> Drive:
 def detector_direction(laser, angle_deg: float, azimuth_deg: float = 0.0) -> np.ndarray:
     """The unit vector at ``angle_deg`` from the laser direction, turned ``azimuth_deg`` about it.
 
-    Azimuth 0 lies in the plane of the laser and the x axis (the y axis when the laser is along x);
-    azimuth 90° is turned towards l̂ × that axis.
+    Azimuth 0 lies in the plane of the laser and the reference axis x̂ (ŷ when |l̂_x| ≥ 0.9, a laser
+    along or near x); with ê1 that axis made perpendicular to l̂, azimuth 90° points along l̂ × ê1
+    (ŷ for a laser along z, ẑ for a laser along x, −ẑ for a laser along y).
     """
     l_hat = np.asarray(laser, dtype=float)
     l_hat = l_hat / np.linalg.norm(l_hat)
@@ -316,16 +321,30 @@ def _parse_run(table: dict, where: str) -> Run:
 
 
 def _option_check(default) -> tuple[Callable[[Any], bool], str]:
-    """What an option value must be, judged from the type of its default."""
+    """What an option value must be, judged from the type of its default; the ranges are the level's own
+    `validate_options` (`_check_level_options`), which runs next."""
     if isinstance(default, bool):
         return (lambda v: isinstance(v, bool)), "true or false"
     if isinstance(default, int):
         return (lambda v: isinstance(v, int) and not isinstance(v, bool)), "an integer"
     if isinstance(default, float):
         return _is_number, "a number"
-    if isinstance(default, str):  # e.g. solver = "auto", progress = "auto" | true | false
-        return (lambda v: isinstance(v, str | bool)), "a string"
+    if isinstance(default, str):  # "auto" often stands for a number chosen by the level (dt, chunk)
+        return (lambda v: isinstance(v, str | bool) or _is_number(v)), "a string, true, false or a number"
     return (lambda v: True), "a value"
+
+
+def _check_level_options(level, opts: dict[str, Any], key: str) -> None:
+    """The level's own model-free check of its options, if it has one; its ValueError names the option."""
+    validate = getattr(level, "validate_options", None)
+    if not callable(validate):
+        return
+    try:
+        validate({**level.options, **opts})
+    except (ValueError, TypeError) as err:
+        msg = " ".join(str(err).split())
+        opt = next((o for o in sorted(opts, key=len, reverse=True) if msg.startswith(o)), None)
+        raise StudyError(f"{key}.{opt}: {msg}" if opt else f"{key}: {msg}") from None
 
 
 def _parse_levels(value, where: str) -> dict[str, dict[str, Any]]:
@@ -344,7 +363,8 @@ def _parse_levels(value, where: str) -> dict[str, dict[str, Any]]:
         if name not in known:
             raise StudyError(f"{key}: unknown level; known levels: {', '.join(known)}")
         opts = _table(opts, key)
-        defaults = get_level(name).options
+        level = get_level(name)
+        defaults = level.options
         for opt, v in opts.items():
             if opt not in defaults:
                 allowed = ", ".join(defaults) or "none"
@@ -352,6 +372,7 @@ def _parse_levels(value, where: str) -> dict[str, dict[str, Any]]:
             ok, what = _option_check(defaults[opt])
             if not ok(v):
                 raise _fail(f"{key}.{opt}", what, v)
+        _check_level_options(level, opts, key)
         out[name] = dict(opts)
     return out
 
@@ -378,6 +399,18 @@ def section(name: str, required: bool = False, field: str | None = None):
         return fn
 
     return deco
+
+
+_CHECKS: list[Callable[[Any, dict[str, Any]], None]] = []
+
+
+def study_check(fn):
+    """Register ``fn(study, raw)``, run on every parsed `Study` with its decoded table ``raw``.
+
+    It raises StudyError naming the key at fault when sections do not fit together.
+    """
+    _CHECKS.append(fn)
+    return fn
 
 
 section("geometry", required=True, field="geometry")(lambda v, w: _parse_geometry(_table(v, w), w))
@@ -465,7 +498,10 @@ def parse_table(raw: dict[str, Any], text: str = "", path: Path | None = None) -
             fields[sec.field] = parsed
     if fields["run"].calculation == "steady" and fields["drive"].windows is not None:
         raise StudyError("drive.windows: a steady state needs a constant drive; remove the windows")
-    return Study(**fields, source=text, path=path, extra=extra)
+    study = Study(**fields, source=text, path=path, extra=extra)
+    for check in _CHECKS:
+        check(study, raw)
+    return study
 
 
 def read_study(path: str | Path) -> Study:
@@ -505,8 +541,9 @@ def run_study(
     """Run ``study`` at each of its levels; one Dataset with a ``level`` dimension.
 
     ``on_level(name, "start" | "done", seconds)`` is called around each level (for progress lines).
-    Attributes that differ between levels (options, solver statistics) are kept per level in the
-    attribute ``levels`` (level name → its attributes); the study file's text is kept in ``study``.
+    The top-level attributes are those every level has with the same value (the model parameters, the
+    calculation); all of each level's attributes (options, solver statistics, sample counts) are kept per
+    level in the attribute ``levels`` (level name → its attributes); the study file's text is in ``study``.
     """
     model = study.build_model()
     detectors = study.detector_directions()
@@ -533,7 +570,9 @@ def run_study(
         compat="override",
         combine_attrs="drop_conflicts",
     )
-    combined.attrs.pop("level", None)
+    # drop_conflicts keeps an attribute that only some levels have (twa's samples, dt): it is not shared
+    combined.attrs = {k: v for k, v in combined.attrs.items()
+                      if k != "level" and all(k in ds.attrs for ds in results)}
     combined.attrs.update(
         levels=per_level,
         study=study.source,

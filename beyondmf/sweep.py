@@ -5,6 +5,7 @@ Study-file sections added here (docs/user-guide.md, "Writing a study"):
     [sweep]
     realizations = 8            # K position draws (and sampling seeds) per grid point
     seed = 0                    # base seed: draw k uses SeedSequence([seed, k]) at every grid point
+                                # (geometry.seed and run.seed are refused in a study with [sweep]/[compare])
     keep = "all"                # or "last_time": keep only the late-time value of a dynamics run
     [sweep.grid]                # each key: a dotted path into the study, each value: a list
     "geometry.n" = [4, 8]
@@ -28,6 +29,11 @@ Study-file sections added here (docs/user-guide.md, "Writing a study"):
 
 Every (grid point, level, realization) is one task (`beyondmf.tasks`): a pure function of its parameters,
 written to DIR/tasks/<hash>.nc when it finishes, so running the same command again resumes.
+
+`read_study` validates all of it before anything runs: each section, how the sections fit together
+(`_check_sections`: the baseline and the convergence level are levels of the study, the convergence
+dimension is a grid dimension, the observables exist for this calculation, grid paths name the study's
+levels), every grid point's study, and the study with its [quick] overrides (errors name ``quick.KEY``).
 """
 
 from __future__ import annotations
@@ -44,7 +50,7 @@ import numpy as np
 import xarray as xr
 
 from .levels.base import available_levels, get_level
-from .study import Study, StudyError, parse_table, section
+from .study import Study, StudyError, parse_table, section, study_check
 from .tasks import SCALAR_VARIABLES, task_key
 
 __all__ = [
@@ -373,6 +379,89 @@ section("convergence")(_parse_convergence)
 section("compare")(_parse_compare)
 section("quick")(_parse_quick)
 
+# Sections that make a study run as tasks; a grid point's study is validated without them.
+_TASK_SECTIONS = ("sweep", "compare", "convergence", "quick")
+# Observables computed from the time axis of a dynamics run (`_burst_observables`).
+TIME_OBSERVABLES = ("emission_rate_peak", "peak_time", "emitted")
+
+
+def _grid_points(spec: SweepSpec):
+    """(indices, {path: value}) of every grid point, in the order of `study_tasks`."""
+    paths = list(spec.grid)
+    for idx in itertools.product(*(range(len(spec.grid[p])) for p in paths)):
+        yield idx, {p: spec.grid[p][i] for p, i in zip(paths, idx, strict=True)}
+
+
+@study_check
+def _check_sections(study: Study, raw: Mapping[str, Any]) -> None:
+    """[sweep], [compare] and [convergence] against the rest of the study, before anything is computed."""
+    spec: SweepSpec | None = study.extra.get("sweep")
+    cmp: CompareSpec | None = study.extra.get("compare")
+    conv: ConvergenceSpec | None = study.extra.get("convergence")
+    levels = list(study.levels)
+    steady = study.run.calculation == "steady"
+    last_time = spec is not None and spec.keep == "last_time"
+    if last_time and steady:
+        raise StudyError("sweep.keep: 'last_time' keeps the late-time value of a dynamics run, and a steady "
+                         "study has no time axis; remove it")
+    if spec is not None or cmp is not None:
+        # tasks draw their positions and sampling seeds from sweep.seed (realization_seeds); a seed of the
+        # study itself would be silently ignored
+        if "seed" in (raw.get("geometry") or {}):
+            raise StudyError("geometry.seed: not used in a study with [sweep] or [compare]: realization k "
+                             "draws its positions from SeedSequence([sweep.seed, k]); remove it, and set "
+                             "seed in [sweep] to draw other clouds")
+        if study.run.seed is not None:
+            raise StudyError("run.seed: not used in a study with [sweep] or [compare]: realization k samples "
+                             "with the seed SeedSequence([sweep.seed, k, 1]); remove it, and set seed in "
+                             "[sweep] to draw other samples")
+    if spec is not None:
+        for path in spec.grid:
+            key, parts = f"sweep.grid.{path}", path.split(".")
+            if path in ("geometry.seed", "run.seed"):
+                raise StudyError(f"{key}: seeds cannot be swept (realization k uses SeedSequence("
+                                 "[sweep.seed, k])); remove it and raise sweep.realizations for more draws")
+            if parts[0] == "levels" and len(parts) != 3:
+                raise StudyError(f"{key}: a level option's path is levels.LEVEL.OPTION, e.g. "
+                                 "\"levels.twa.samples\"")
+            if parts[0] == "levels" and parts[1] not in study.levels:
+                raise StudyError(f"{key}: level {parts[1]!r} is not in the study ({', '.join(levels)}); add "
+                                 f"[levels.{parts[1]}] to run it, or correct the level's name")
+        for _, point in _grid_points(spec):
+            _point_study(raw, point)  # every grid point's study is valid (StudyError naming the point)
+    if cmp is not None:
+        if cmp.baseline not in levels:
+            given = "" if "baseline" in (raw.get("compare") or {}) else " (the default)"
+            raise StudyError(f"compare.baseline: {cmp.baseline!r}{given} is not among the study's levels "
+                             f"({', '.join(levels)}); set baseline to one of them, or add "
+                             f"[levels.{cmp.baseline}]")
+        timed = [o for o in cmp.observables if o in TIME_OBSERVABLES]
+        if timed and (steady or last_time):
+            why = ("this study is steady (run.calculation = 'steady')" if steady else
+                   "sweep.keep = 'last_time' keeps only the late-time value")
+            raise StudyError(f"compare.observables: {', '.join(timed)} need the time axis of a dynamics run, "
+                             f"but {why}; remove them" + ("" if steady else " or set keep = 'all'"))
+    if conv is not None:
+        dims = [name for name, _ in spec.dims()] if spec is not None else []
+        if conv.dim not in dims:
+            where = (f"name one of its dimensions: {', '.join(dims)}" if dims else
+                     "the study has no [sweep.grid]; add the refined parameter there")
+            raise StudyError(f"convergence.dimension: {conv.dim!r} is not a grid dimension of the sweep; "
+                             f"{where}")
+        if conv.level not in levels:
+            raise StudyError(f"convergence.level: {conv.level!r} is not among the study's levels "
+                             f"({', '.join(levels)}); name one of them")
+        if cmp is not None:
+            known = list(cmp.observables)
+            hint = " (with [compare], those of compare.observables)"
+        else:
+            known = [*SCALAR_VARIABLES, "excited_mean", *([] if steady or last_time else TIME_OBSERVABLES)]
+            hint = ""
+        missing = [o for o in conv.observables if o not in known]
+        if missing:
+            raise StudyError(f"convergence.observables: {', '.join(missing)} not in the results of this "
+                             f"study; choose from {', '.join(known)}{hint}")
+
 
 def _merge(base: dict, over: Mapping) -> dict:
     out = copy.deepcopy(base)
@@ -382,8 +471,43 @@ def _merge(base: dict, over: Mapping) -> dict:
     return out
 
 
+def _with_quick(raw: dict) -> dict:
+    """The study table with its [quick] overrides applied (and the [quick] table removed)."""
+    over = raw["quick"]
+    _parse_quick(over, "quick")
+    if "levels" in over:
+        levels = over["levels"]
+        if not isinstance(levels, dict):
+            raise _fail("quick.levels", "a table level → options overrides, e.g. { twa = { samples = 300 } }",
+                        levels)
+        have = raw.get("levels") if isinstance(raw.get("levels"), dict) else {}
+        for name in levels:
+            if name not in have:
+                raise StudyError(f"quick.levels.{name}: not a level of the study ({', '.join(have)}); "
+                                 "[quick] changes the options of the study's levels, it cannot add one: "
+                                 f"add [levels.{name}] to the study or correct the name")
+    merged = _merge(raw, over)
+    merged.pop("quick")
+    return merged
+
+
+def _quick_error(err: StudyError, over: Mapping) -> StudyError:
+    """An error of the study with its [quick] overrides, naming the [quick] key that caused it."""
+    msg = str(err)
+    key, sep, rest = msg.partition(": ")
+    paths = _flatten(over, "")
+    for path in (key, f"sweep.grid.{key}"):
+        if sep and any(p == path or p.startswith(path + ".") for p in paths):
+            return StudyError(f"quick.{path}: {rest}")
+    return StudyError(f"quick: with the [quick] overrides applied, {msg}")
+
+
 def read_study(path: str | Path, quick: bool = False) -> Study:
-    """Read and validate a study file; ``quick`` applies its [quick] overrides (a warning if it has none)."""
+    """Read and validate a study file; ``quick`` applies its [quick] overrides (a warning if it has none).
+
+    A [quick] table is validated whether or not ``quick`` is set (its errors name ``quick.KEY``), so that
+    a broken CI-sized version of a study is found by the study's own runs.
+    """
     p = Path(path)
     if not p.is_file():
         raise StudyError(f"{p}: no such study file")
@@ -394,11 +518,18 @@ def read_study(path: str | Path, quick: bool = False) -> Study:
         raise StudyError(f"not valid TOML: {err}") from None
     if quick and "quick" not in raw:
         warnings.warn(f"{p}: no [quick] table; --quick runs the study unchanged", stacklevel=2)
-    elif quick:
-        _parse_quick(raw["quick"], "quick")
-        raw = _merge(raw, raw["quick"])
-        raw.pop("quick")
+    levels = raw.get("levels")
+    if isinstance(levels, list) and all(isinstance(v, str) for v in levels):
+        raw["levels"] = {name: {} for name in levels}  # the table form, which [quick] can override
     study = parse_table(raw, text, p)
+    if "quick" in raw:
+        merged = _with_quick(raw)
+        try:
+            quick_study = parse_table(merged, text, p)
+        except StudyError as err:
+            raise _quick_error(err, raw["quick"]) from None
+        if quick:
+            study, raw = quick_study, merged
     study.extra["raw"] = raw
     study.extra["quick"] = quick
     return study
@@ -428,7 +559,7 @@ def _set(raw: dict, path: str, value) -> None:
 def _point_study(raw: dict, point: Mapping[str, Any]) -> Study:
     """The study at one grid point: overrides applied, derived parameters resolved, then validated."""
     raw = copy.deepcopy(raw)
-    for sec in ("sweep", "compare", "quick"):
+    for sec in _TASK_SECTIONS:
         raw.pop(sec, None)
     for path, v in point.items():
         if path not in _DERIVED:
@@ -474,10 +605,12 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
     if raw is None:
         raw = tomllib.loads(study.source)
     dims = spec.dims()
-    paths = list(spec.grid)
+    # A study without [sweep] and [compare] (a plain study run as tasks, e.g. with --workers) is one
+    # realization of its own cloud and seed, as `run_study` would run it; a sweep draws realization k
+    # from sweep.seed (`realization_seeds`) and refuses geometry.seed and run.seed.
+    own = "sweep" not in study.extra and "compare" not in study.extra
     index, labels, params = {}, None, {}
-    for idx in itertools.product(*(range(len(spec.grid[p])) for p in paths)):
-        point = {p: spec.grid[p][i] for p, i in zip(paths, idx, strict=True)}
+    for idx, point in _grid_points(spec):
         st = _point_study(raw, point)
         table = level_table(st.levels)
         labels = labels or list(table)
@@ -493,14 +626,17 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
         params[idx] = {"rabi": st.drive.rabi, "N": int(st.geometry.params.get("n", 0))}
         for r in range(spec.realizations):
             geo = st.geometry
-            if geo.kind in _RANDOM:
+            if geo.kind in _RANDOM and not own:
                 geo = type(geo)(geo.kind, {**geo.params, "seed": realization_seeds(spec.seed, r)[0]})
             try:
                 pos = geo.positions()
             except ValueError as err:
                 raise StudyError(f"geometry: {err} (grid point {point})") from None
             for label, lv in table.items():
-                index[(*idx, label, r)] = build_task(pos, model, run, dets, lv, spec.seed, r)
+                task = build_task(pos, model, run, dets, lv, spec.seed, r)
+                if own and "seed" in task and st.run.seed is not None:
+                    task["seed"] = st.run.seed
+                index[(*idx, label, r)] = task
     return index, labels, spec.realizations, dims, params
 
 

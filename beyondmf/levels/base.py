@@ -101,6 +101,18 @@ def is_count(v, least: int) -> bool:
     return isinstance(v, int | np.integer) and not isinstance(v, bool) and v >= least
 
 
+def check_sampling_options(options: dict[str, Any]) -> None:
+    """The options every sampling level shares: ``samples``, ``dt`` and ``chunk`` ("auto" or a value)."""
+    if not is_count(options["samples"], 2):
+        raise ValueError(f"samples must be an integer ≥ 2, got {options['samples']!r}")
+    dt = options["dt"]
+    if dt != "auto" and not (is_real_number(dt) and dt > 0):
+        raise ValueError(f"dt must be 'auto' or a positive time step (1/Γ0), got {dt!r}")
+    chunk = options["chunk"]
+    if chunk != "auto" and not is_count(chunk, 1):
+        raise ValueError(f"chunk must be 'auto' or an integer ≥ 1 (samples at once), got {chunk!r}")
+
+
 class Level(ABC):
     """One level of description. Subclasses set the class attributes and implement two methods.
 

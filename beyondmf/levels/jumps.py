@@ -33,7 +33,7 @@ from ..memory import available_bytes, require
 from ..model import Envelope, Model
 from . import _qubits as q
 from ._sampling import amplitude_sums, coherent_statistics
-from .base import Level, Moments, Probes, is_count, is_real_number, register
+from .base import Level, Moments, Probes, check_sampling_options, is_real_number, register
 
 __all__ = ["Jumps", "jump_channels"]
 
@@ -169,14 +169,7 @@ class Jumps(Level):
     stochastic = True
 
     def validate_options(self, options) -> None:
-        if not is_count(options["samples"], 2):
-            raise ValueError(f"samples must be an integer ≥ 2, got {options['samples']!r}")
-        chunk = options["chunk"]
-        if chunk != "auto" and not is_count(chunk, 1):
-            raise ValueError(f"chunk must be a positive integer or 'auto', got {chunk!r}")
-        dt = options["dt"]
-        if dt != "auto" and not (is_real_number(dt) and dt > 0):
-            raise ValueError(f"dt must be positive or 'auto', got {dt!r}")
+        check_sampling_options(options)
         if not (is_real_number(options["settle_time"]) and options["settle_time"] > 0):
             raise ValueError(f"settle_time must be a positive time (1/Γ0), got {options['settle_time']!r}")
 

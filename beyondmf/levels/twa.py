@@ -41,7 +41,7 @@ from ..integrate import SolveError
 from ..memory import require
 from ..model import Envelope, Model
 from ._sampling import amplitude_sums, coherent_statistics
-from .base import Level, Moments, Probes, is_count, is_real_number, register
+from .base import Level, Moments, Probes, check_sampling_options, is_count, is_real_number, register
 
 __all__ = ["TruncatedWigner", "auto_dt", "noise_factor", "sample_initial", "twa_args", "twa_drift"]
 
@@ -407,28 +407,21 @@ class TruncatedWigner(Level):
         return float(auto_dt(model) if options["dt"] == "auto" else options["dt"])  # validate_options
 
     def validate_options(self, options: dict[str, Any]) -> None:
-        samples = options["samples"]
-        if not is_count(samples, 2):
-            raise ValueError(f"samples must be an integer ≥ 2, got {samples!r}")
+        check_sampling_options(options)
         frac = options["max_failed"]
         if not (is_real_number(frac) and 0 <= frac < 1):
             raise ValueError(f"max_failed must be a fraction in [0, 1), got {frac!r}")
-        dt = options["dt"]
-        if dt != "auto" and not (is_real_number(dt) and np.isfinite(dt) and dt > 0):
-            raise ValueError(f"dt must be a positive time step (1/Γ0) or 'auto', got {dt!r}")
-        chunk = options["chunk"]
-        if chunk != "auto" and not is_count(chunk, 1):
-            raise ValueError(f"chunk must be 'auto' or a positive number of samples, got {chunk!r}")
         vac = options["vacuum_check"]
         if not (is_count(vac, 0) and vac != 1):
             raise ValueError(
                 f"vacuum_check must be 0 (off) or a number of control samples ≥ 2, got {vac!r}"
             )
-        t_settle, window, points = options["settle_time"], options["window"], options["window_points"]
-        if not (is_real_number(t_settle) and t_settle >= 0 and is_real_number(window) and window > 0
-                and is_count(points, 1)):
-            raise ValueError("steady needs settle_time ≥ 0, window > 0 and an integer window_points ≥ 1, got "
-                             f"{t_settle!r}, {window!r}, {points!r}")
+        if not (is_real_number(options["settle_time"]) and options["settle_time"] >= 0):
+            raise ValueError(f"settle_time must be a time ≥ 0 (1/Γ0), got {options['settle_time']!r}")
+        if not (is_real_number(options["window"]) and options["window"] > 0):
+            raise ValueError(f"window must be a positive time (1/Γ0), got {options['window']!r}")
+        if not is_count(options["window_points"], 1):
+            raise ValueError(f"window_points must be an integer ≥ 1, got {options['window_points']!r}")
 
     def _setup(self, model: Model, probes: Probes, options: dict[str, Any]):
         samples, frac = options["samples"], float(options["max_failed"])
