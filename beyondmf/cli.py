@@ -1,19 +1,25 @@
 """The `beyondmf` command: run a study file, list the levels, run the benchmarks.
 
     beyondmf run STUDY.toml --out DIR [--quick] [--workers N | --scheduler ADDRESS]
-                                          results.nc and PNG figures in DIR
+                                          results.nc and PNG figures in DIR (tasks/ for a sweep)
     beyondmf levels                       the registered levels and their options
     beyondmf bench [--full] [--suite NAME ...] [--out FILE]
 
 Errors a user can fix (a bad study file, an unknown suite, a model a level refuses, too little memory)
-end the command with a one-line message and a non-zero exit status, never a traceback.
+end the command with a one-line message and a non-zero exit status, never a traceback. Ctrl-C ends it
+with status 130 and a line saying what was kept; a closed output pipe (`beyondmf levels | head`) ends
+it quietly.
 """
 
 from __future__ import annotations
 
 import argparse
+import difflib
 import json
+import os
+import shutil
 import sys
+import tempfile
 import time
 from collections.abc import Sequence
 from pathlib import Path
@@ -22,6 +28,8 @@ __all__ = ["main", "build_parser"]
 
 EXIT_USAGE = 2  # bad input: study file, arguments
 EXIT_FAILED = 1  # the calculation itself failed (solver, memory)
+EXIT_INTERRUPTED = 130  # Ctrl-C (128 + SIGINT), as shells report it
+EXIT_PIPE = 141  # the reader of our output went away (128 + SIGPIPE), as `yes | head` reports it
 
 
 class _Parser(argparse.ArgumentParser):
@@ -31,24 +39,61 @@ class _Parser(argparse.ArgumentParser):
         self.exit(EXIT_USAGE, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
 
 
+class _SubParser(_Parser):
+    """A command's parser: it reports options it does not know itself, against its own name, first.
+
+    argparse otherwise hands them back to the top-level parser, whose error names `beyondmf` and points
+    at `beyondmf --help` (which does not list the command's options), and only after complaining about
+    a missing required argument. A close known option is suggested (``--quik``: did you mean --quick?).
+    """
+
+    def parse_known_args(self, args=None, namespace=None):
+        args = list(sys.argv[1:] if args is None else args)
+        known = [o for o in self._option_string_actions if o.startswith("--")]
+        unknown = []
+        for arg in args:
+            if arg == "--":
+                break  # the rest is positional
+            name = arg.split("=", 1)[0]
+            # argparse also accepts a unique abbreviation (--qui for --quick)
+            if name.startswith("--") and not any(o.startswith(name) for o in known):
+                unknown.append(name)
+        if unknown:
+            named = []
+            for name in unknown:
+                close = difflib.get_close_matches(name, known, n=1, cutoff=0.75)
+                named.append(f"{name} (did you mean {close[0]}?)" if close else name)
+            self.error(f"unrecognized option{'s' if len(named) > 1 else ''} {', '.join(named)}")
+        namespace, extras = super().parse_known_args(args, namespace)
+        if extras:
+            self.error(f"unrecognized arguments: {' '.join(extras)}")
+        return namespace, extras
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(
         prog="beyondmf",
         description="Light emitted by dense, laser-driven clouds of two-level emitters, at successive levels "
         "of correlation. Units: lengths in λ0, rates in Γ0, times in 1/Γ0.",
     )
-    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND", parser_class=_Parser)
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND", parser_class=_SubParser)
 
     r = sub.add_parser(
         "run",
         help="run a study file at the levels it lists",
-        description="Run the model of a study file (docs/study-files.md) at each level it lists and write "
-        "DIR/results.nc (NetCDF, one 'level' dimension; read with beyondmf.load) and PNG figures: "
-        "emission.png, intensity.png, geometry.png.",
+        description="Run a study file (docs/study-files.md) and write into DIR. A study of one model runs "
+        "at each level it lists and writes DIR/results.nc (NetCDF, one 'level' dimension; read with "
+        "beyondmf.load) and the figures emission.png, intensity.png and geometry.png. A study with "
+        "[sweep] or [compare], or any study run with --workers or --scheduler, runs as tasks: each "
+        "finished task is kept in DIR/tasks/ (running the same command again resumes), then it writes "
+        "the merged DIR/results.nc and the figures values.png and, with several levels, corrections.png "
+        "(correction_map.png for a 2-D grid); with [convergence] also DIR/convergence.nc and "
+        "convergence_<observable>.png. Ctrl-C stops with exit status 130.",
     )
     r.add_argument("study", metavar="STUDY.toml", help="the study file")
     r.add_argument("--out", required=True, metavar="DIR", help="directory for results.nc and the figures")
-    r.add_argument("--no-plots", action="store_true", help="write results.nc only")
+    r.add_argument("--no-plots", action="store_true",
+                   help="write no figures (only results.nc, and tasks/ and convergence.nc where they apply)")
     r.add_argument("--quick", action="store_true",
                    help="apply the study's [quick] overrides (a CI-sized run)")
     ex = r.add_mutually_exclusive_group()
@@ -82,6 +127,82 @@ def _say(msg: str) -> None:
     print(msg, file=sys.stderr, flush=True)
 
 
+class _Stopped(KeyboardInterrupt):
+    """Ctrl-C, with a note of what the interrupted command had kept on disk."""
+
+    def __init__(self, note: str) -> None:
+        super().__init__(note)
+        self.note = note
+
+
+_FIGURES_TMP = ".figures-"
+
+
+def _prepare_out(out: Path) -> list[Path]:
+    """Make sure ``out`` is a directory we can write into, before any computing; return the directories
+    this made (so that a run that ends with nothing written can remove them again).
+
+    Writes and removes a probe file: only that shows that files can really be created there (a
+    read-only mount, /proc, a full quota...).
+    """
+    from .results import STALE_AFTER_S, remove_stale_parts
+
+    if out.exists() and not out.is_dir():
+        raise _UsageError(f"--out: {out} exists and is not a directory; give a directory (it is created "
+                          "if missing)")
+    created = [d for d in [out, *out.parents] if not d.exists()][::-1]
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        with tempfile.NamedTemporaryFile(dir=out, prefix=".beyondmf-write-test-") as probe:
+            probe.write(b"beyondmf can write here\n")
+            probe.flush()
+    except OSError as err:
+        _remove_empty(created)
+        why = err.strerror or type(err).__name__
+        if isinstance(err, NotADirectoryError | FileExistsError):
+            why += " (a part of that path is a file)"
+        raise _UsageError(f"--out: cannot create and write files in {out}: {why}; give a directory you can "
+                          "write to") from None
+    for name in ("results.nc", "convergence.nc"):  # temporaries of a killed run; DIR may hold other files
+        remove_stale_parts(out, name)
+    now = time.time()
+    for old in out.glob(_FIGURES_TMP + "*"):  # figure temporaries of a killed run
+        try:
+            if old.is_dir() and now - old.stat().st_mtime > STALE_AFTER_S:
+                shutil.rmtree(old, ignore_errors=True)
+        except OSError:
+            pass
+    return created
+
+
+def _remove_empty(dirs: list[Path]) -> None:
+    """Remove those of ``dirs`` (made by this command) that are still empty, innermost first."""
+    for d in reversed(dirs):
+        try:
+            d.rmdir()
+        except FileNotFoundError:
+            continue  # never made (tasks/ before the scheduler answered)
+        except OSError:
+            return  # not empty: something was written
+
+
+def _write_figures(make, out: Path) -> list[Path]:
+    """Call ``make(directory)`` (it writes figures there and returns their paths) on a temporary directory
+    inside ``out``, then move each figure into ``out``: a figure appears whole or not at all, even if the
+    command is stopped while drawing it."""
+    tmp = Path(tempfile.mkdtemp(prefix=_FIGURES_TMP, dir=out))
+    try:
+        written = []
+        for path in make(tmp):
+            dest = out / Path(path).name
+            os.replace(path, dest)
+            written.append(dest)
+            _say(f"wrote {dest}")
+        return written
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
 def _cmd_run(args) -> int:
     from .plotting import plot_all
     from .results import save
@@ -92,37 +213,71 @@ def _cmd_run(args) -> int:
         raise _UsageError(f"--workers: expected a positive number of workers, got {args.workers}")
     study = read_study(args.study, quick=args.quick)
     out = Path(args.out)
-    if out.exists() and not out.is_dir():
-        raise _UsageError(f"--out: {out} exists and is not a directory")
+    created = _prepare_out(out)
+    tasks_existed = (out / "tasks").exists()
     t0 = time.perf_counter()
-    if is_sweep(study) or args.workers is not None or args.scheduler is not None:
-        return _run_tasks(study, out, args, t0)
+    try:
+        if is_sweep(study) or args.workers is not None or args.scheduler is not None:
+            return _run_tasks(study, out, args, t0)
 
-    def on_level(name: str, stage: str, seconds: float | None) -> None:
-        if stage == "start":
-            _say(f"level {name}: started ({study.run.calculation})")
-        else:
-            _say(f"level {name}: finished in {seconds:.1f} s")
+        def on_level(name: str, stage: str, seconds: float | None) -> None:
+            if stage == "start":
+                _say(f"level {name}: started ({study.run.calculation})")
+            else:
+                _say(f"level {name}: finished in {seconds:.1f} s")
 
-    ds = run_study(study, on_level=on_level)
-    path = save(ds, out / "results.nc")
-    _say(f"wrote {path}")
-    if not args.no_plots:
-        for fig in plot_all(ds, out):
-            _say(f"wrote {fig}")
-    _say(f"done in {time.perf_counter() - t0:.1f} s")
-    return 0
+        try:
+            ds = run_study(study, on_level=on_level)
+            path = save(ds, out / "results.nc")
+        except KeyboardInterrupt:
+            raise _Stopped("nothing was written (a study of one model keeps no partial results: results.nc "
+                           "is written once every level has finished); run the same command again to start "
+                           "over") from None
+        _say(f"wrote {path}")
+        if not args.no_plots:
+            try:
+                _write_figures(lambda d: plot_all(ds, d), out)
+            except KeyboardInterrupt:
+                raise _Stopped(f"{path} is complete, the figures are not all written") from None
+        _say(f"done in {time.perf_counter() - t0:.1f} s")
+        return 0
+    except BaseException:
+        # leave no empty directory behind a run that wrote nothing (a scheduler that did not answer...)
+        _remove_empty(created if tasks_existed else [*created, out / "tasks"])
+        raise
 
 
 def _run_tasks(study, out: Path, args, t0: float) -> int:
     """A sweep or comparison study (or any study with --workers/--scheduler): resumable tasks."""
-    from .correction_plots import plot_sweep
-    from .executors import make_executor
+    from .executors import Interrupted, make_executor
     from .sweep import run_sweep
 
     executor = make_executor(args.workers, args.scheduler)
-    _say(f"running tasks on {executor.name}; finished tasks in {out / 'tasks'} are reused")
-    ds = run_sweep(study, out, executor=executor, progress=True)
+    _say(f"running tasks {executor.where}; finished tasks in {out / 'tasks'} are reused")
+    try:
+        ds = run_sweep(study, out, executor=executor, progress=True)
+    except Interrupted as stop:
+        if not stop.kept:
+            raise _Stopped(f"none of the {stop.total} tasks had finished; run the same command again to "
+                           "start") from None
+        raise _Stopped(f"{stop.kept} of {stop.total} tasks finished and are kept in "
+                       f"{stop.directory / 'tasks'}; run the same command again to resume (finished tasks "
+                       "are not recomputed)") from None
+    except KeyboardInterrupt:
+        raise _Stopped(f"{out / 'results.nc'} was not written, finished tasks are kept in {out / 'tasks'}; "
+                       "run the same command again to resume") from None
+    try:
+        _report_tasks(study, ds, out, args, t0)
+    except KeyboardInterrupt:
+        raise _Stopped(f"all {ds.attrs['tasks']} tasks and {out / 'results.nc'} are written, the figures and "
+                       "reports are not all; running the same command again recomputes no task") from None
+    return 0
+
+
+def _report_tasks(study, ds, out: Path, args, t0: float) -> None:
+    """After a task run: what was written, failures, warnings, figures, convergence, verdicts."""
+    from .correction_plots import plot_sweep
+
     _say(f"wrote {out / 'results.nc'} ({ds.attrs['tasks']} tasks)")
     for failure in ds.attrs.get("failures", []):
         _say(f"task failed: {failure}")
@@ -131,8 +286,7 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
         _say(f"{len(said)} warning(s) from the levels about their own runs (all in results.nc, attribute "
              "'warnings'); the first: " + said[0])
     if not args.no_plots:
-        for fig in plot_sweep(ds, out):
-            _say(f"wrote {fig}")
+        _write_figures(lambda d: plot_sweep(ds, d), out)
     if "convergence" in study.extra:
         _report_convergence(study, ds, out, not args.no_plots)
     if "baseline" in ds.attrs:
@@ -145,7 +299,6 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
             note = f"  [{k} of its runs warned about themselves: treat these verdicts with care]" if k else ""
             _say(f"  {level}: " + ", ".join(f"{k} {v}" for k, v in row.items()) + note)
     _say(f"done in {time.perf_counter() - t0:.1f} s")
-    return 0
 
 
 def _report_convergence(study, ds, out: Path, plots: bool) -> None:
@@ -166,10 +319,12 @@ def _report_convergence(study, ds, out: Path, plots: bool) -> None:
         _say(f"convergence of {obs} in {table.attrs['parameter']}: {state} "
              f"(last bound {table.attrs['last_bound']:.3g}, tolerance {table.attrs['tolerance']:g})")
         if plots:
-            path = out / f"convergence_{obs}.png"
-            fig = figure(table, obs)
-            fig.savefig(path, dpi=90)
-            _say(f"wrote {path}")
+            def draw(d: Path, table=table, obs=obs) -> list[Path]:
+                path = d / f"convergence_{obs}.png"
+                figure(table, obs).savefig(path, dpi=90)
+                return [path]
+
+            _write_figures(draw, out)
 
 
 def _cmd_levels(args) -> int:
@@ -209,7 +364,12 @@ def _cmd_bench(args) -> int:
     if args.out:
         out = Path(args.out)
         out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(json.dumps([r.as_dict() for r in rows], indent=2))
+        tmp = out.with_name(f".{out.name}.{os.getpid()}.part")
+        try:
+            tmp.write_text(json.dumps([r.as_dict() for r in rows], indent=2))
+            os.replace(tmp, out)  # whole or not at all
+        finally:
+            tmp.unlink(missing_ok=True)
         _say(f"wrote {out}")
     return 0
 
@@ -221,24 +381,103 @@ class _UsageError(Exception):
 _COMMANDS = {"run": _cmd_run, "levels": _cmd_levels, "bench": _cmd_bench}
 
 
+def _quiet_stdout() -> None:
+    """Point stdout at /dev/null, so that the interpreter's last flush to a closed pipe says nothing."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):  # stdout is not a file (captured, in tests)
+        sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - lives until the process ends
+
+
+def _hard_exit(code: int) -> None:
+    """End the process now, without the interpreter's shutdown.
+
+    After Ctrl-C, JAX/XLA threads may still be running, and tearing the interpreter down under them has
+    crashed it (a segmentation fault instead of status 130). Nothing is lost by skipping the shutdown:
+    every file is written whole or not at all (`results.save` and the task files: temporary file +
+    rename, removed on interruption; figures: drawn in a temporary directory, then renamed), the dask
+    cluster was closed by its `with` block, and the output streams are flushed here.
+    """
+    import multiprocessing
+
+    for child in multiprocessing.active_children():  # a worker that outlived its cluster: do not orphan it
+        child.terminate()
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):
+            pass
+    os._exit(code)
+
+
+def _redeliver_interrupt(previous):
+    """An `sys.unraisablehook` that gives a swallowed Ctrl-C back to the main thread.
+
+    Python raises KeyboardInterrupt wherever the main thread is when SIGINT arrives; inside a garbage
+    collector callback (JAX registers one) or a ``__del__`` the exception cannot propagate and is only
+    printed, and the run would go on as if Ctrl-C had not been pressed. Raise it again in the main thread
+    instead; other unraisable exceptions go to the previous hook.
+    """
+    import _thread
+    import threading
+
+    def hook(unraisable) -> None:
+        if issubclass(unraisable.exc_type, KeyboardInterrupt):
+            # from another thread, a moment later: raised here, inside the hook, it would be lost again
+            again = threading.Timer(0.05, _thread.interrupt_main)
+            again.daemon = True
+            again.start()
+        else:
+            previous(unraisable)
+
+    return hook
+
+
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of the `beyondmf` command; returns the exit status."""
+    """Entry point of the `beyondmf` command; returns the exit status.
+
+    ``argv`` None means the real command line (the `beyondmf` script, ``python -m beyondmf``): then a
+    Ctrl-C ends the process at once with status 130 (`_hard_exit`); with ``argv`` given (a caller in
+    Python, the tests) it returns 130 instead.
+    """
     args = build_parser().parse_args(argv)
+    previous_hook = sys.unraisablehook
+    sys.unraisablehook = _redeliver_interrupt(previous_hook)
+    try:
+        return _main(args, hard_exit=argv is None)
+    finally:
+        sys.unraisablehook = previous_hook
+
+
+def _main(args, hard_exit: bool) -> int:
     from .integrate import SolveError
     from .study import StudyError
 
     try:
-        return _COMMANDS[args.command](args)
+        code = _COMMANDS[args.command](args)
+        sys.stdout.flush()  # a reader that went away shows up here at the latest, not at shutdown
+        return code
+    except BrokenPipeError:
+        # `beyondmf levels --json | head -1`: the reader has what it wanted; stop quietly, as CLI tools do
+        _quiet_stdout()
+        return EXIT_PIPE
     except (StudyError, _UsageError) as err:
         _say(f"beyondmf {args.command}: error: {err}")
         return EXIT_USAGE
     except (ValueError, SolveError, MemoryError, ConnectionError) as err:
-        # a level refusing the model, a failed solve, a run too big for this machine
+        # a level refusing the model, a failed solve, a run too big for this machine, no scheduler
         _say(f"beyondmf {args.command}: failed: {' '.join(str(err).split())}")
         return EXIT_FAILED
-    except KeyboardInterrupt:
-        _say(f"beyondmf {args.command}: interrupted")
-        return 130
+    except KeyboardInterrupt as err:
+        note = f"; {err.note}" if isinstance(err, _Stopped) else ""
+        try:
+            _say(f"beyondmf {args.command}: interrupted{note}")
+        except (OSError, ValueError):
+            pass
+        if hard_exit:
+            _hard_exit(EXIT_INTERRUPTED)
+        return EXIT_INTERRUPTED
 
 
 if __name__ == "__main__":

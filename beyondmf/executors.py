@@ -7,6 +7,7 @@ loses only the tasks in flight, and the numbers do not depend on which executor 
 
 from __future__ import annotations
 
+import threading
 import warnings
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
@@ -14,15 +15,31 @@ from typing import Any
 
 import xarray as xr
 
+from .results import remove_stale_parts
 from .tasks import TaskFileError, compute, read_task, run_task, task_key, task_path
 
-__all__ = ["InProcess", "Dask", "make_executor", "execute"]
+__all__ = ["InProcess", "Dask", "make_executor", "execute", "Interrupted", "CONNECT_TIMEOUT_S"]
+
+# How long `Dask` waits for a scheduler to answer before giving up (seconds). dask's own ``timeout`` does
+# not bound everything: a service that accepts the connection but never answers like a scheduler (a web
+# server, say) can keep the handshake waiting forever, so the connection runs in a thread with this
+# hard deadline.
+CONNECT_TIMEOUT_S = 25.0
+
+
+class Interrupted(KeyboardInterrupt):
+    """Ctrl-C during `execute`: how many of the run's tasks have complete files on disk."""
+
+    def __init__(self, kept: int, total: int, directory: Path) -> None:
+        super().__init__(f"{kept} of {total} tasks kept")
+        self.kept, self.total, self.directory = kept, total, directory
 
 
 class InProcess:
     """Run tasks one after the other in this process."""
 
     name = "in-process"
+    where = "in this process"
 
     def __enter__(self) -> InProcess:
         return self
@@ -49,37 +66,55 @@ class Dask:
         if workers is not None and (int(workers) != workers or workers < 1):
             raise ValueError(f"workers must be a positive integer, got {workers!r}")
         self.workers, self.scheduler = workers, scheduler
-        self.name = f"dask local cluster ({workers} workers)" if workers else f"dask scheduler {scheduler}"
+        if workers is not None:
+            n = int(workers)
+            self.name = f"dask local cluster ({n} worker{'s' if n != 1 else ''})"
+            self.where = f"on a local dask cluster of {n} worker process{'es' if n != 1 else ''}"
+        else:
+            self.name = f"dask scheduler {scheduler}"
+            self.where = f"on the dask scheduler at {scheduler}"
         self._cluster = self._client = None
 
     def __enter__(self) -> Dask:
         from dask.distributed import Client, LocalCluster
 
-        if self.workers is not None:
-            self._cluster = LocalCluster(
-                n_workers=int(self.workers),
-                threads_per_worker=1,
-                processes=True,
-                host="127.0.0.1",
-                dashboard_address=None,
-            )
-            self._client = Client(self._cluster)
-        else:
-            try:
-                self._client = Client(self.scheduler, timeout="20s")
-            except OSError as err:
-                raise ConnectionError(
-                    f"could not reach the dask scheduler at {self.scheduler!r}: {err}; check the address "
-                    "(tcp://HOST:PORT) and that the scheduler is running"
-                ) from err
+        try:
+            if self.workers is not None:
+                self._cluster = LocalCluster(
+                    n_workers=int(self.workers),
+                    threads_per_worker=1,
+                    processes=True,
+                    host="127.0.0.1",
+                    dashboard_address=None,
+                )
+                self._client = Client(self._cluster)
+            else:
+                self._client = _connect(self.scheduler, CONNECT_TIMEOUT_S)
+        except BaseException:
+            self.__exit__()  # a half-started cluster must not outlive us (e.g. Ctrl-C while starting)
+            raise
         return self
 
     def __exit__(self, *exc) -> None:
-        if self._client is not None:
-            self._client.close()
-        if self._cluster is not None:
-            self._cluster.close()
+        import logging
+
+        client, cluster = self._client, self._cluster
         self._client = self._cluster = None
+        log = logging.getLogger("distributed")
+        level = log.level
+        if exc and isinstance(exc[1], KeyboardInterrupt):
+            # Ctrl-C: stopping the workers mid-task is what was asked for; keep the nannies' reports of
+            # it ("still alive, killing", CancelledError tracebacks) off the terminal
+            log.setLevel(logging.CRITICAL)
+        try:
+            if client is not None:
+                client.close()
+        finally:
+            try:
+                if cluster is not None:
+                    cluster.close()
+            finally:
+                log.setLevel(level)
 
     def map_unordered(self, fn: Callable, items: Iterable, *args) -> Iterator:
         from dask.distributed import as_completed
@@ -89,6 +124,71 @@ class Dask:
         futures = [self._client.submit(fn, item, *args, pure=False) for item in items]
         for fut in as_completed(futures):
             yield fut.result()
+
+
+async def _identify(address: str, deadline: float, connection_args: dict) -> Any:
+    """The reply of whatever listens at ``address`` to dask's "identity" request."""
+    from distributed.comm import connect
+    from distributed.core import send_recv
+
+    comm = await connect(address, timeout=deadline, **connection_args)
+    try:
+        return await send_recv(comm, op="identity")
+    finally:
+        comm.abort()
+
+
+def _connect(address: str, deadline: float):
+    """A dask `Client` of the scheduler at ``address``, or ConnectionError within about ``deadline`` s.
+
+    First ask whatever listens there who it is, in a helper thread with its own event loop and a hard
+    deadline: dask's own timeout does not cover a peer that accepts the connection but never answers
+    (an HTTP server), and a peer that answers something else can make dask misread a message length
+    and raise anything (a MemoryError asking for exbibytes has been seen). Only a peer that says it is
+    a dask scheduler gets a `Client`. Every failure becomes one ConnectionError naming the address.
+    """
+    import asyncio
+
+    from dask.distributed import Client
+    from distributed.security import Security
+
+    hint = (f"check that {address!r} is the address of a running dask scheduler (tcp://HOST:PORT, as "
+            "printed by `dask scheduler`; not a worker's or another service's port) and that this machine "
+            "can reach it")
+    connection_args = Security().get_connection_args("client")
+    box: dict[str, Any] = {}
+
+    def attempt() -> None:
+        try:
+            box["reply"] = asyncio.run(
+                asyncio.wait_for(_identify(address, deadline, connection_args), deadline))
+        except BaseException as err:  # noqa: BLE001 - handed to the waiting thread
+            box["error"] = err
+
+    thread = threading.Thread(target=attempt, name="beyondmf-dask-probe", daemon=True)
+    thread.start()
+    thread.join(deadline + 5)
+    if thread.is_alive() or isinstance(box.get("error"), asyncio.TimeoutError):
+        raise ConnectionError(f"no answer from a dask scheduler at {address!r} within {deadline:g} s; {hint}")
+    if "error" in box:
+        err = box["error"]
+        if isinstance(err, KeyboardInterrupt | SystemExit):
+            raise err
+        detail = " ".join(str(err).split()) or "no message"
+        if isinstance(err, MemoryError):  # a length prefix read from some other protocol's bytes
+            detail = f"it answered, but not in dask's protocol: {detail}"
+        raise ConnectionError(f"could not connect to a dask scheduler at {address!r} "
+                              f"({type(err).__name__}: {detail}); {hint}") from err
+    reply = box.get("reply")
+    kind = reply.get("type") if isinstance(reply, dict) else None
+    if kind != "Scheduler":
+        what = f"a dask {kind}" if isinstance(kind, str) else "something that is not a dask scheduler"
+        raise ConnectionError(f"{address!r} answered as {what}, not as a dask scheduler; {hint}")
+    try:
+        return Client(address, timeout=f"{deadline:g}s")
+    except OSError as err:
+        raise ConnectionError(
+            f"could not connect to the dask scheduler at {address!r}: {err}; {hint}") from err
 
 
 def make_executor(workers: int | None = None, scheduler: str | None = None) -> InProcess | Dask:
@@ -132,7 +232,6 @@ def execute(
         return out
 
     directory = Path(directory)
-    (directory / "tasks").mkdir(parents=True, exist_ok=True)
     pending = []
     for key, task in unique.items():
         path = task_path(directory, key)
@@ -147,11 +246,23 @@ def execute(
             pending.append(task)
     executor = executor or InProcess()
     failed = 0
-    with executor, _progress_bar(len(unique), len(unique) - len(pending), progress) as bar:
-        for key, status, _seconds in executor.map_unordered(run_task, pending, str(directory)):
-            failed += status == "failed"
-            bar.update()
-            bar.set_postfix(failed=failed, refresh=False)
-            if on_done:
-                on_done(key, status)
+    try:
+        # the tasks directory is made only once the executor is up (a scheduler answered)
+        with executor:
+            (directory / "tasks").mkdir(parents=True, exist_ok=True)
+            remove_stale_parts(directory / "tasks", "*.nc")  # of task files a killed run left
+            with _progress_bar(len(unique), len(unique) - len(pending), progress) as bar:
+                for key, status, _seconds in executor.map_unordered(run_task, pending, str(directory)):
+                    failed += status == "failed"
+                    bar.update()
+                    bar.set_postfix(failed=failed, refresh=False)
+                    if on_done:
+                        on_done(key, status)
+    except KeyboardInterrupt as err:
+        if isinstance(err, Interrupted):
+            raise
+        # task files are written whole or not at all (temporary file + rename), so every file there is
+        # a finished task that the next run of the same tasks reuses
+        kept = sum(task_path(directory, key).exists() for key in unique)
+        raise Interrupted(kept, len(unique), directory) from err
     return {key: read_task(task_path(directory, key), task) for key, task in unique.items()}

@@ -8,16 +8,20 @@ Dataset survives the round trip unchanged.
 
 from __future__ import annotations
 
+import functools
+import hashlib
 import json
 import os
-import tempfile
+import re
+import socket
+import time
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
-__all__ = ["save", "load", "provenance"]
+__all__ = ["save", "load", "provenance", "remove_stale_parts"]
 
 _RE, _IM = "__real", "__imag"
 
@@ -75,9 +79,99 @@ def _decode_attrs(attrs: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
+@functools.cache
+def _writer_id() -> str:
+    """Who is writing, as 8 hex digits: this host and (on Linux) this process-id namespace.
+
+    A temporary file's name carries this and the writer's process id, so that `remove_stale_parts` can
+    tell a file abandoned by a dead process on this host from one being written right now elsewhere.
+    """
+    try:
+        ns = os.readlink("/proc/self/ns/pid")
+    except OSError:
+        ns = ""
+    return hashlib.sha256(f"{socket.gethostname()}|{ns}".encode()).hexdigest()[:8]
+
+
+_PART = re.compile(r"^\..+\.([0-9a-f]{8})-([0-9]+)-[0-9a-f]+\.part$")
+# A temporary file nobody has modified for this long is abandoned whoever wrote it: `save` writes its
+# temporary file in one go (seconds even for large task files on a network file system).
+STALE_AFTER_S = 15 * 60
+
+
+def _create_part(path: Path) -> Path:
+    """Create a new, empty temporary file beside ``path``, with the normal mode (0666 less the umask).
+
+    ``os.open`` with mode 0o666 lets the system apply the umask, as `open` does; ``tempfile.mkstemp``
+    would give 0600, which colleagues cannot read.
+    """
+    while True:
+        tmp = path.parent / f".{path.name}.{_writer_id()}-{os.getpid()}-{os.urandom(4).hex()}.part"
+        try:
+            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
+        except FileExistsError:
+            continue
+        os.close(fd)
+        return tmp
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # someone else's process
+        return True
+    return True
+
+
+def remove_stale_parts(directory: str | os.PathLike, name: str = "*") -> list[Path]:
+    """Remove the temporary files of `save` in ``directory`` that were clearly abandoned.
+
+    Only temporaries of files called ``name`` (a glob: ``.NAME.*.part``) are considered; give the names
+    beyondmf writes when ``directory`` may also hold other people's files.
+
+    Other processes (dask workers on this and other hosts) may be writing into the same directory right
+    now, so a temporary file is removed only if
+    - it was written on this host, in this process-id namespace, by a process that no longer exists
+      (its name carries the writer's host hash and process id), or
+    - nobody has modified it for ``STALE_AFTER_S`` (15 minutes): `save` writes its temporary file in one
+      go, so no live writer leaves one untouched that long. This also covers files of writers on other
+      hosts, and temporary files of older versions, whose names carry no process id.
+    Returns the paths removed; files that vanish or cannot be removed meanwhile are skipped.
+    """
+    directory = Path(directory)
+    if not directory.is_dir():
+        return []
+    me, now, removed = _writer_id(), time.time(), []
+    for tmp in directory.glob(f".{name}.*.part"):
+        try:
+            age = now - tmp.lstat().st_mtime
+            if not tmp.is_file():
+                continue
+            m = _PART.match(tmp.name)
+            dead = m is not None and m.group(1) == me and not _alive(int(m.group(2)))
+            if dead or age > STALE_AFTER_S:
+                tmp.unlink()
+                removed.append(tmp)
+        except OSError:
+            continue
+    return removed
+
+
 def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
-    """Write ``ds`` to ``path`` as NetCDF-4. The file appears whole or not at all."""
+    """Write ``ds`` to ``path`` as NetCDF-4. The file appears whole or not at all.
+
+    It is written to a temporary file beside ``path`` (``.NAME.*.part``) and renamed into place; it gets
+    the normal mode of a new file (0666 less the umask).
+    """
+    if not isinstance(ds, xr.Dataset):
+        raise TypeError(f"save: expected an xarray.Dataset (as returned by beyondmf.evolve or steady), "
+                        f"got {type(ds).__name__}")
     path = Path(path)
+    if path.is_dir():
+        raise IsADirectoryError(f"save: {path} is a directory; give the path of the file to write, "
+                                f"e.g. {path / 'results.nc'}")
     path.parent.mkdir(parents=True, exist_ok=True)
     out = xr.Dataset(coords={k: v for k, v in ds.coords.items()})
     for name, var in ds.data_vars.items():
@@ -90,8 +184,7 @@ def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
     for name in out.variables:
         out[name].attrs = _encode_attrs(dict(out[name].attrs))
     out.attrs = _encode_attrs(dict(ds.attrs))
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
-    os.close(fd)
+    tmp = _create_part(path)
     try:
         out.to_netcdf(tmp, engine="h5netcdf")
         with open(tmp, "rb+") as fh:
@@ -106,10 +199,20 @@ def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
 def load(path: str | os.PathLike) -> xr.Dataset:
     """Read a file written by `save` into memory, with complex variables and attributes restored."""
     path = Path(path)
+    if path.is_dir():
+        raise IsADirectoryError(f"load: {path} is a directory; expected a results file written by "
+                                f"beyondmf.save, e.g. {path / 'results.nc'}")
     if not path.is_file():
         raise FileNotFoundError(f"no results file at {path}")
-    with xr.open_dataset(path, engine="h5netcdf") as f:
-        raw = f.load()
+    try:
+        with xr.open_dataset(path, engine="h5netcdf") as f:
+            raw = f.load()
+    except (OSError, ValueError) as err:  # h5py: "file signature not found", "truncated file", ...
+        raise ValueError(
+            f"load: {path} is not a readable results file: expected NetCDF-4 as written by beyondmf.save "
+            f"(h5netcdf said: {' '.join(str(err).split())}); a truncated file means its writer was stopped "
+            "or a copy is incomplete: write or copy it again"
+        ) from err
     ds = xr.Dataset(coords={k: v for k, v in raw.coords.items()})
     for name in list(raw.data_vars):
         var = raw[name]

@@ -233,3 +233,191 @@ def test_python_dash_m_entry_point_exit_status(tmp_path):
     assert proc.returncode == 2
     assert proc.stderr.strip() == "beyondmf run: error: geometry.n: expected a positive integer, got -3"
     assert "Traceback" not in proc.stderr
+
+
+def _started_python_m(args, **kw):
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    return subprocess.Popen([sys.executable, "-m", "beyondmf", *map(str, args)], env=env, text=True, **kw)
+
+
+def test_ctrl_c_ends_a_single_model_run_with_status_130_and_says_what_was_kept(tmp_path):
+    """As a shell sees it: SIGINT mid-solve gives status 130 (not a crash at shutdown, 139), one line
+    saying nothing was kept and how to start again, and no directory left behind."""
+    import signal
+    import time
+
+    out = tmp_path / "new" / "out"
+    proc = _started_python_m(["run", QUICKSTART, "--out", out], stderr=subprocess.PIPE)
+    try:
+        lines = []
+        for line in proc.stderr:
+            lines.append(line)
+            if "level meanfield: started" in line:
+                break
+        time.sleep(1.0)  # inside the solve (it takes several seconds)
+        proc.send_signal(signal.SIGINT)
+        _, rest = proc.communicate(timeout=60)
+    finally:
+        proc.kill()
+    err = "".join(lines) + rest
+    assert proc.returncode == cli.EXIT_INTERRUPTED, err
+    assert "beyondmf run: interrupted; nothing was written" in err
+    assert "run the same command again to start over" in err
+    assert "Traceback" not in err and "Exception ignored" not in err
+    assert not (tmp_path / "new").exists()  # made by the run, empty, removed again
+
+
+def test_an_interrupt_swallowed_by_a_garbage_collector_callback_is_raised_again():
+    """SIGINT landing in a gc callback (JAX has one) is only printed by Python; the command's hook gives
+    it back to the main thread, so Ctrl-C is never lost."""
+    import gc
+    import sys as _sys
+    import time
+
+    seen = []
+    once = []
+
+    def callback(phase, info):
+        if not once:
+            once.append(1)
+            raise KeyboardInterrupt
+
+    previous = _sys.unraisablehook
+    _sys.unraisablehook = cli._redeliver_interrupt(lambda u: seen.append(u.exc_type))
+    gc.callbacks.append(callback)
+    try:
+        with pytest.raises(KeyboardInterrupt):
+            gc.collect()
+            for _ in range(100):
+                time.sleep(0.01)
+    finally:
+        gc.callbacks.remove(callback)
+        _sys.unraisablehook = previous
+    assert once and seen == []  # re-raised, not passed on to be printed
+
+
+@pytest.fixture
+def not_a_scheduler():
+    """Two local TCP services that are not dask schedulers: one never answers, one answers HTTP."""
+    import socket
+    import threading
+
+    servers, conns = [], []
+
+    def serve(sock, reply):
+        while True:
+            try:
+                conn, _ = sock.accept()
+            except OSError:
+                return
+            conns.append(conn)
+            if reply:
+                conn.sendall(b"HTTP/1.0 400 Bad request\r\nContent-Type: text/html\r\n\r\n<p>bad</p>\r\n")
+
+    ports = {}
+    for name, reply in (("silent", False), ("http", True)):
+        sock = socket.socket()
+        sock.bind(("127.0.0.1", 0))
+        sock.listen(8)
+        servers.append(sock)
+        threading.Thread(target=serve, args=(sock, reply), daemon=True).start()
+        ports[name] = sock.getsockname()[1]
+    yield ports
+    for s in servers + conns:
+        s.close()
+
+
+@pytest.mark.parametrize("service", ["silent", "http"])
+def test_scheduler_address_of_something_else_fails_in_bounded_time(service, not_a_scheduler, tmp_path,
+                                                                    capsys, monkeypatch):
+    import time
+
+    import beyondmf.executors as ex
+
+    monkeypatch.setattr(ex, "CONNECT_TIMEOUT_S", 3.0)
+    study_file = tmp_path / "small.toml"
+    study_file.write_text(SMALL)
+    address = f"tcp://127.0.0.1:{not_a_scheduler[service]}"
+    start = time.monotonic()
+    code, err = _run(["run", study_file, "--out", tmp_path / "out", "--scheduler", address], capsys)
+    assert time.monotonic() - start < 3.0 + 10
+    assert code == cli.EXIT_FAILED
+    last = err.strip().splitlines()[-1]
+    assert last.startswith("beyondmf run: failed: ") and f"'{address}'" in last
+    assert "check that" in last and "running dask scheduler" in last
+    assert not (tmp_path / "out").exists()  # neither DIR nor DIR/tasks before a scheduler answered
+
+
+def test_out_that_cannot_be_written_is_refused_before_computing(tmp_path, capsys, monkeypatch):
+    import beyondmf.study
+
+    def no_computing(*a, **k):
+        raise AssertionError("computed before checking --out")
+
+    monkeypatch.setattr(beyondmf.study, "run_study", no_computing)
+    study_file = tmp_path / "small.toml"
+    study_file.write_text(SMALL)
+    (tmp_path / "file.nc").write_text("a file")
+    code, err = _run(["run", study_file, "--out", tmp_path / "file.nc" / "sub"], capsys)
+    assert code == cli.EXIT_USAGE
+    assert err.strip() == (f"beyondmf run: error: --out: cannot create and write files in "
+                           f"{tmp_path / 'file.nc' / 'sub'}: Not a directory (a part of that path is a "
+                           "file); give a directory you can write to")
+
+    def read_only(*a, **k):
+        raise PermissionError(13, "Permission denied")
+
+    monkeypatch.setattr(cli.tempfile, "NamedTemporaryFile", read_only)  # as on a read-only mount
+    code, err = _run(["run", study_file, "--out", tmp_path / "ro" / "out"], capsys)
+    assert code == cli.EXIT_USAGE and len(err.strip().splitlines()) == 1
+    assert "cannot create and write files in" in err and "Permission denied" in err
+    assert not (tmp_path / "ro").exists()  # the directories it made for nothing are gone
+
+
+def test_run_help_names_the_files_that_are_written(capsys):
+    with pytest.raises(SystemExit):
+        cli.main(["run", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    for name in (*FIGURES, "results.nc", "DIR/tasks/", "values.png", "corrections.png",
+                 "correction_map.png", "convergence.nc", "convergence_<observable>.png"):
+        assert name in text, name
+    # and those are the names the plotting code uses
+    import inspect
+
+    from beyondmf import correction_plots, plotting
+
+    for module, names in ((plotting, FIGURES), (correction_plots, ("values.png", "corrections.png",
+                                                                    "correction_map.png"))):
+        for name in names:
+            assert f'"{name}"' in inspect.getsource(module), name
+    assert 'f"convergence_{obs}.png"' in inspect.getsource(cli)
+
+
+def test_an_unknown_option_is_reported_against_its_command(capsys):
+    with pytest.raises(SystemExit) as info:
+        cli.main(["run", "x.toml", "--quik"])
+    assert info.value.code == cli.EXIT_USAGE
+    err = capsys.readouterr().err
+    assert err.strip() == ("beyondmf run: error: unrecognized option --quik (did you mean --quick?) "
+                           "(see beyondmf run --help)")
+    assert cli.main(["levels", "--js"]) == 0  # abbreviations argparse accepts still work
+    assert capsys.readouterr().out.lstrip().startswith("{")
+
+
+def test_the_run_says_where_its_tasks_run(tmp_path, capsys):
+    study_file = tmp_path / "small.toml"
+    study_file.write_text(_replace(_replace(SMALL, "n = 12", "n = 3"), "seed = 3\n", "")
+                          + "[sweep]\nrealizations = 1\n")
+    code, err = _run(["run", study_file, "--out", tmp_path / "out", "--no-plots"], capsys)
+    assert code == 0, err
+    assert "running tasks in this process; finished tasks in" in err
+
+
+def test_a_closed_output_pipe_ends_quietly(tmp_path):
+    """`beyondmf levels --json | head -1`: the reader leaves early; no message, status 141 (SIGPIPE)."""
+    proc = _started_python_m(["levels", "--json"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    proc.stdout.close()  # before the command has written anything (it is still starting up)
+    err = proc.stderr.read()
+    proc.wait(timeout=120)
+    assert proc.returncode == cli.EXIT_PIPE
+    assert err == ""

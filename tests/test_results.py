@@ -44,3 +44,81 @@ def test_steady_result_has_no_time_axis():
 def test_load_missing_file_is_clear(tmp_path):
     with pytest.raises(FileNotFoundError, match="no results file"):
         bm.load(tmp_path / "nothing.nc")
+
+
+def test_written_files_get_the_normal_mode_not_0600(dataset, tmp_path):
+    """A new file's mode is 0666 less the umask (as `open` gives), so colleagues can read results."""
+    import os
+
+    old = os.umask(0o027)
+    try:
+        path = bm.save(dataset, tmp_path / "r.nc")
+        assert path.stat().st_mode & 0o777 == 0o640
+        os.umask(0o022)
+        bm.save(dataset, path)  # overwriting goes through a new temporary file as well
+        assert path.stat().st_mode & 0o777 == 0o644
+    finally:
+        os.umask(old)
+    assert [p.name for p in tmp_path.iterdir()] == ["r.nc"]  # no temporary file left beside it
+
+
+def test_load_says_what_it_expected_of_a_file_that_is_not_ours(dataset, tmp_path):
+    text = tmp_path / "notes.nc"
+    text.write_text("hello, I am not netcdf\n")
+    with pytest.raises(ValueError, match=r"notes\.nc is not a readable results file: expected NetCDF-4"):
+        bm.load(text)
+    whole = bm.save(dataset, tmp_path / "whole.nc")
+    cut = tmp_path / "cut.nc"
+    cut.write_bytes(whole.read_bytes()[:3000])  # a copy that stopped half-way
+    with pytest.raises(ValueError, match=r"cut\.nc is not a readable results file.*truncated"):
+        bm.load(cut)
+    with pytest.raises(IsADirectoryError, match=r"is a directory; expected a results file"):
+        bm.load(tmp_path)
+
+
+def test_save_refuses_what_it_cannot_write_with_a_clear_error(dataset, tmp_path):
+    with pytest.raises(TypeError, match="expected an xarray.Dataset .* got dict"):
+        bm.save({"a": 1}, tmp_path / "x.nc")
+    (tmp_path / "existing").mkdir()
+    with pytest.raises(IsADirectoryError, match=r"existing is a directory; give the path of the file"):
+        bm.save(dataset, tmp_path / "existing")
+    assert sorted(p.name for p in tmp_path.rglob("*")) == ["existing"]  # nothing half-written
+
+
+def test_only_clearly_abandoned_temporary_files_are_removed(tmp_path):
+    """`remove_stale_parts`: dead writer on this host, or untouched for STALE_AFTER_S; nothing else."""
+    import os
+    import subprocess
+    import sys
+    import time
+
+    from beyondmf.results import STALE_AFTER_S, _writer_id, remove_stale_parts
+
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
+                          text=True, check=True)
+    dead_pid = int(dead.stdout)
+    me = _writer_id()
+    other = "0123abcd" if me != "0123abcd" else "fedc4321"
+    files = {
+        "dead_here": f".a.nc.{me}-{dead_pid}-00ff.part",  # its writer is gone: stale at once
+        "live_here": f".b.nc.{me}-{os.getpid()}-00ff.part",  # being written by a live process
+        "other_host": f".c.nc.{other}-{dead_pid}-00ff.part",  # can't see that pid: wait for the age
+        "old_unnamed": ".d.nc.k2j4h_x1.part",  # a name of older versions, long untouched
+        "new_unnamed": ".e.nc.k2j4h_x1.part",  # same, but recent
+        "old_result": "f.nc",  # not a temporary file, however old
+    }
+    for name in files.values():
+        (tmp_path / name).write_bytes(b"x")
+    long_ago = time.time() - STALE_AFTER_S - 60
+    for key in ("old_unnamed", "old_result"):
+        os.utime(tmp_path / files[key], (long_ago, long_ago))
+    # with a name, only temporaries of that file are candidates (DIR may hold other people's files)
+    assert [p.name for p in remove_stale_parts(tmp_path, "d.nc")] == [files["old_unnamed"]]
+    (tmp_path / files["old_unnamed"]).write_bytes(b"x")
+    os.utime(tmp_path / files["old_unnamed"], (long_ago, long_ago))
+    assert remove_stale_parts(tmp_path, "results.nc") == []
+    removed = {p.name for p in remove_stale_parts(tmp_path)}
+    assert removed == {files["dead_here"], files["old_unnamed"]}
+    left = {p.name for p in tmp_path.iterdir()}
+    assert left == {files[k] for k in ("live_here", "other_host", "new_unnamed", "old_result")}
+    assert remove_stale_parts(tmp_path / "missing") == []

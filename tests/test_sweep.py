@@ -207,3 +207,105 @@ def test_a_level_that_refuses_the_model_gives_nan_and_a_failure_note(tmp_path):
     assert np.isnan(ds["emission_rate"].sel(level="dicke")).all()
     assert len(ds.attrs["failures"]) == 4
     assert all("dicke" in f or "all-to-all" in f for f in ds.attrs["failures"])
+
+
+def test_ctrl_c_in_a_sweep_keeps_finished_tasks_and_the_rerun_resumes(tmp_path, capsys, monkeypatch):
+    """Ctrl-C (KeyboardInterrupt) during the third task: the command exits 130, says how many tasks it
+    kept and that the same command resumes; the rerun computes only the rest."""
+    import beyondmf.executors as ex
+    from beyondmf.cli import EXIT_INTERRUPTED, main
+
+    path = tmp_path / "study.toml"
+    path.write_text(STUDY)
+    args = ["run", str(path), "--out", str(tmp_path / "out"), "--no-plots"]
+    real, calls = ex.run_task, []
+
+    def interrupted_at_the_third(task, directory):
+        calls.append(task_key(task))
+        if len(calls) == 3:
+            raise KeyboardInterrupt
+        return real(task, directory)
+
+    monkeypatch.setattr(ex, "run_task", interrupted_at_the_third)
+    assert main(args) == EXIT_INTERRUPTED
+    err = capsys.readouterr().err
+    assert ("beyondmf run: interrupted; 2 of 8 tasks finished and are kept in "
+            f"{tmp_path / 'out' / 'tasks'}; run the same command again to resume") in err
+    tasks = tmp_path / "out" / "tasks"
+    assert sorted(p.name for p in tasks.iterdir()) == sorted(f"{k}.nc" for k in calls[:2])  # no .part
+    assert not (tmp_path / "out" / "results.nc").exists()
+    monkeypatch.setattr(ex, "run_task", lambda task, directory: (calls.append(task_key(task)),
+                                                                 real(task, directory))[1])
+    assert main(args) == 0
+    assert len(calls) == 3 + 6 and not set(calls[3:]) & set(calls[:2])  # the two kept ones are reused
+
+
+def test_task_files_are_readable_by_others_and_stale_temporaries_go(tmp_path):
+    import os
+
+    from beyondmf.results import _writer_id
+
+    study = _study(tmp_path, STUDY.replace('"drive.saturation" = [0.5, 4.0]', '"drive.saturation" = [0.5]'))
+    tasks = tmp_path / "out" / "tasks"
+    tasks.mkdir(parents=True)
+    gone = _ended_pid()
+    stale = tasks / f".0123.nc.{_writer_id()}-{gone}-ab.part"  # left by a killed worker on this host
+    stale.write_bytes(b"half")
+    old = os.umask(0o022)
+    try:
+        run_sweep(study, tmp_path / "out", progress=False)
+    finally:
+        os.umask(old)
+    files = list(tasks.iterdir())
+    assert len(files) == 4 and all(p.suffix == ".nc" for p in files)
+    assert {p.stat().st_mode & 0o777 for p in [*files, tmp_path / "out" / "results.nc"]} == {0o644}
+
+
+def _ended_pid() -> int:
+    """The process id of a process that has already ended."""
+    import subprocess
+    import sys
+
+    done = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
+                          text=True, check=True)
+    return int(done.stdout)
+
+
+def test_tasks_directory_is_made_only_once_the_executor_has_started(tmp_path):
+    from beyondmf.executors import InProcess
+
+    class NoScheduler(InProcess):
+        def __enter__(self):
+            raise ConnectionError("no answer from a dask scheduler at 'tcp://x:1'")
+
+    study = _study(tmp_path)
+    with pytest.raises(ConnectionError, match="no answer"):
+        run_sweep(study, tmp_path / "out", executor=NoScheduler(), progress=False)
+    assert not (tmp_path / "out" / "tasks").exists()
+
+
+def test_a_running_scheduler_is_reached_by_its_address(tmp_path):
+    """--scheduler ADDRESS: the probe accepts a real scheduler, and its workers give the same numbers."""
+    from dask.distributed import LocalCluster
+
+    study = _study(tmp_path, STUDY.replace('"drive.saturation" = [0.5, 4.0]', '"drive.saturation" = [0.5]')
+                   .replace("realizations = 2", "realizations = 1"))
+    plain = run_sweep(study, tmp_path / "plain", progress=False)
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as cluster:
+        remote = run_sweep(study, tmp_path / "remote", executor=Dask(scheduler=cluster.scheduler_address),
+                           progress=False)
+        worker = next(iter(cluster.workers.values())).address
+        with pytest.raises(ConnectionError, match="answered as a dask Worker, not as a dask scheduler"):
+            with Dask(scheduler=worker):
+                pass
+    _same(plain, remote)
+
+
+def test_executors_describe_themselves_in_plain_english():
+    from beyondmf.executors import InProcess
+
+    assert InProcess().where == "in this process"
+    assert Dask(workers=1).where == "on a local dask cluster of 1 worker process"
+    assert Dask(workers=1).name == "dask local cluster (1 worker)"
+    assert Dask(workers=3).where == "on a local dask cluster of 3 worker processes"
+    assert Dask(scheduler="tcp://10.0.0.5:8786").where == "on the dask scheduler at tcp://10.0.0.5:8786"
