@@ -21,6 +21,7 @@ import shutil
 import sys
 import tempfile
 import time
+import warnings
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -445,9 +446,19 @@ def main(argv: Sequence[str] | None = None) -> int:
     previous_hook = sys.unraisablehook
     sys.unraisablehook = _redeliver_interrupt(previous_hook)
     try:
-        return _main(args, hard_exit=argv is None)
+        with warnings.catch_warnings():
+            # a command prints warnings as one line for its user, not as Python source locations
+            warnings.showwarning = _show_warning(args.command)
+            return _main(args, hard_exit=argv is None)
     finally:
         sys.unraisablehook = previous_hook
+
+
+def _show_warning(command: str):
+    def show(message, category, filename, lineno, file=None, line=None):
+        print(f"beyondmf {command}: warning: {' '.join(str(message).split())}", file=file or sys.stderr)
+
+    return show
 
 
 def _main(args, hard_exit: bool) -> int:

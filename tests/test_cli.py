@@ -421,3 +421,14 @@ def test_a_closed_output_pipe_ends_quietly(tmp_path):
     proc.wait(timeout=120)
     assert proc.returncode == cli.EXIT_PIPE
     assert err == ""
+
+
+def test_warnings_are_printed_as_one_line_for_the_user(tmp_path, capsys):
+    """A study warning (here: --quick without a [quick] table) reads as a line of the command, without
+    the Python source location it was raised at."""
+    path = tmp_path / "s.toml"
+    path.write_text(QUICKSTART.read_text().replace("n = 200", "n = 4"))
+    assert cli.main(["run", str(path), "--out", str(tmp_path / "o"), "--quick", "--no-plots"]) == 0
+    err = capsys.readouterr().err
+    assert "beyondmf run: warning: " in err and "no [quick] table" in err
+    assert "UserWarning" not in err and ".py:" not in err
