@@ -365,7 +365,9 @@ def _cmd_bench(args) -> int:
     if args.out:
         out = Path(args.out)
         out.parent.mkdir(parents=True, exist_ok=True)
-        tmp = out.with_name(f".{out.name}.{os.getpid()}.part")
+        from .results import _create_part
+
+        tmp = _create_part(out)  # the temporary name `save` uses, so remove_stale_parts knows it
         try:
             tmp.write_text(json.dumps([r.as_dict() for r in rows], indent=2))
             os.replace(tmp, out)  # whole or not at all
