@@ -224,24 +224,31 @@ def _cmd_run(args) -> int:
         def on_level(name: str, stage: str, seconds: float | None) -> None:
             if stage == "start":
                 _say(f"level {name}: started ({study.run.calculation})")
-            else:
+            elif stage == "done":
                 _say(f"level {name}: finished in {seconds:.1f} s")
+            else:
+                _say(f"level {name}: failed after {seconds:.1f} s (why: at the end); the other levels go on")
 
         try:
-            ds = run_study(study, on_level=on_level)
+            # a level that cannot do this model does not cost the others their results
+            ds = run_study(study, on_level=on_level, keep_going=True)
             path = save(ds, out / "results.nc")
         except KeyboardInterrupt:
             raise _Stopped("nothing was written (a study of one model keeps no partial results: results.nc "
                            "is written once every level has finished); run the same command again to start "
                            "over") from None
-        _say(f"wrote {path}")
+        failures = ds.attrs["failures"]
+        for failure in failures:
+            _say(f"level {failure.replace(': ', ': failed: ', 1)}")
+        kept = f" (levels {', '.join(map(str, ds['level'].values))}; see above for the failed ones)"
+        _say(f"wrote {path}" + (kept if failures else ""))
         if not args.no_plots:
             try:
                 _write_figures(lambda d: plot_all(ds, d), out)
             except KeyboardInterrupt:
                 raise _Stopped(f"{path} is complete, the figures are not all written") from None
         _say(f"done in {time.perf_counter() - t0:.1f} s")
-        return 0
+        return EXIT_FAILED if failures else 0
     except BaseException:
         # leave no empty directory behind a run that wrote nothing (a scheduler that did not answer...)
         _remove_empty(created if tasks_existed else [*created, out / "tasks"])

@@ -27,6 +27,7 @@ import xarray as xr
 from . import geometry as geo
 from .api import evolve, steady
 from .couplings import KINDS as COUPLING_KINDS
+from .integrate import SolveError
 from .levels.base import available_levels, get_level
 from .model import Model
 
@@ -534,37 +535,61 @@ def _fill_missing(datasets: list[xr.Dataset]) -> list[xr.Dataset]:
     return out
 
 
+# What a level's run may raise when it cannot do this model (refusal, failed solve, too big): with
+# ``keep_going`` these are recorded and the other levels still run; anything else is a bug and propagates.
+_LEVEL_FAILURES = (ValueError, SolveError, MemoryError)
+
+
 def run_study(
     study: Study,
     on_level: Callable[[str, str, float | None], None] | None = None,
+    keep_going: bool = False,
 ) -> xr.Dataset:
     """Run ``study`` at each of its levels; one Dataset with a ``level`` dimension.
 
-    ``on_level(name, "start" | "done", seconds)`` is called around each level (for progress lines).
-    The top-level attributes are those every level has with the same value (the model parameters, the
-    calculation); all of each level's attributes (options, solver statistics, sample counts) are kept per
-    level in the attribute ``levels`` (level name → its attributes); the study file's text is in ``study``.
+    ``on_level(name, "start" | "done" | "failed", seconds)`` is called around each level (for progress
+    lines). The top-level attributes are those every level has with the same value (the model parameters,
+    the calculation); all of each level's attributes (options, solver statistics, sample counts) are kept
+    per level in the attribute ``levels`` (level name → its attributes); the study file's text is in
+    ``study``.
+
+    A level that cannot do the model (it refuses it, its solve fails, it does not fit in memory) raises,
+    and nothing is returned. With ``keep_going`` the other levels still run instead: the result has the
+    levels that finished, in the study's order, and ``attrs["failures"]`` holds one line
+    ``"<level>: <message>"`` per level that did not; if no level finished, the first failure is raised.
     """
     model = study.build_model()
     detectors = study.detector_directions()
-    results = []
+    results, names, failures, first_error = [], [], [], None
     for name, options in study.levels.items():
         if on_level:
             on_level(name, "start", None)
         t0 = time.perf_counter()
-        if study.run.calculation == "steady":
-            ds = steady(model, name, detectors=detectors, seed=study.run.seed, **options)
-        else:
-            ds = evolve(model, name, study.run.times(), initial=study.run.initial, detectors=detectors,
-                        seed=study.run.seed, **options)
+        try:
+            if study.run.calculation == "steady":
+                ds = steady(model, name, detectors=detectors, seed=study.run.seed, **options)
+            else:
+                ds = evolve(model, name, study.run.times(), initial=study.run.initial, detectors=detectors,
+                            seed=study.run.seed, **options)
+        except _LEVEL_FAILURES as err:
+            if not keep_going:
+                raise
+            first_error = first_error or err
+            failures.append(f"{name}: {' '.join(str(err).split())}")
+            if on_level:
+                on_level(name, "failed", time.perf_counter() - t0)
+            continue
         ds.attrs["wall_time_s"] = time.perf_counter() - t0
         if on_level:
             on_level(name, "done", ds.attrs["wall_time_s"])
         results.append(ds)
-    per_level = {ds.attrs["level"]: dict(ds.attrs) for ds in results}
+        names.append(name)
+    if not results:
+        raise first_error
+    per_level = {name: dict(ds.attrs) for name, ds in zip(names, results, strict=True)}
     combined = xr.concat(
         _fill_missing(results),
-        dim=xr.DataArray(list(study.levels), dims="level", name="level"),
+        dim=xr.DataArray(names, dims="level", name="level"),
         data_vars="all",
         coords="minimal",
         compat="override",
@@ -579,5 +604,6 @@ def run_study(
         title=study.title,
         geometry=study.geometry.kind,
         geometry_parameters=study.geometry.params,
+        failures=failures,
     )
     return combined

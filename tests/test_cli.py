@@ -240,6 +240,33 @@ def _started_python_m(args, **kw):
     return subprocess.Popen([sys.executable, "-m", "beyondmf", *map(str, args)], env=env, text=True, **kw)
 
 
+def test_a_level_that_fails_costs_the_others_nothing(tmp_path, capsys):
+    """One model, two levels, the second refuses the cloud (dicke needs all-to-all couplings): the first
+    level's results are written, the refusal is printed and recorded, and the exit status says so."""
+    from beyondmf.results import load
+
+    study_file = tmp_path / "two.toml"
+    study_file.write_text(SMALL + "[levels.dicke]\n")
+    code, err = _run(["run", study_file, "--out", tmp_path / "out", "--no-plots"], capsys)
+    assert code == cli.EXIT_FAILED
+    assert "level meanfield: finished" in err and "level dicke: failed after" in err
+    ds = load(tmp_path / "out" / "results.nc")
+    assert list(ds["level"].values) == ["meanfield"]
+    assert len(ds.attrs["failures"]) == 1 and ds.attrs["failures"][0].startswith("dicke: ")
+    assert f"level {ds.attrs['failures'][0].replace(': ', ': failed: ', 1)}" in err
+    direct = beyondmf.evolve(read_study(study_file).build_model(), "meanfield",
+                             read_study(study_file).run.times(), rtol=1e-7)
+    np.testing.assert_allclose(ds["emission_rate"].sel(level="meanfield"), direct["emission_rate"],
+                               rtol=1e-12)
+
+    # with only the failing level nothing is written and the message is the command's last line
+    study_file.write_text(_replace(SMALL, "[levels.meanfield]\nrtol = 1e-7\n", "[levels.dicke]\n"))
+    code, err = _run(["run", study_file, "--out", tmp_path / "none"], capsys)
+    assert code == cli.EXIT_FAILED
+    assert err.strip().splitlines()[-1].startswith("beyondmf run: failed: ")
+    assert not (tmp_path / "none").exists()
+
+
 def test_ctrl_c_ends_a_single_model_run_with_status_130_and_says_what_was_kept(tmp_path):
     """As a shell sees it: SIGINT mid-solve gives status 130 (not a crash at shutdown, 139), one line
     saying nothing was kept and how to start again, and no directory left behind."""
