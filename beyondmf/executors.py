@@ -138,6 +138,36 @@ async def _identify(address: str, deadline: float, connection_args: dict) -> Any
         comm.abort()
 
 
+def _reachable(address: str, deadline: float, hint: str) -> None:
+    """Fail at once where nothing can listen at a TCP/TLS ``address``; other schemes pass unchecked.
+
+    dask's `connect` retries a refused connection until its whole timeout has passed; a plain socket
+    says "refused" (nobody listens on that port) or "unknown host" immediately. A host that does not
+    answer at all still costs the deadline, here or in the probe that follows.
+    """
+    import socket
+
+    from distributed.comm.addressing import parse_address, parse_host_port
+
+    try:
+        scheme, location = parse_address(address)
+        if scheme not in ("tcp", "tls"):
+            return
+        host, port = parse_host_port(location)
+    except ValueError as err:
+        raise ConnectionError(f"{address!r} is not a scheduler address ({err}); {hint}") from None
+    try:
+        socket.create_connection((host, port), timeout=deadline).close()
+    except ConnectionRefusedError:
+        raise ConnectionError(f"nothing listens at {address!r} (connection refused); {hint}") from None
+    except socket.gaierror as err:
+        raise ConnectionError(f"the host of {address!r} is not known ({err.strerror}); {hint}") from None
+    except TimeoutError:
+        raise ConnectionError(f"no answer from {address!r} within {deadline:g} s; {hint}") from None
+    except OSError as err:
+        raise ConnectionError(f"could not reach {address!r} ({err.strerror or err}); {hint}") from None
+
+
 def _connect(address: str, deadline: float):
     """A dask `Client` of the scheduler at ``address``, or ConnectionError within about ``deadline`` s.
 
@@ -155,6 +185,7 @@ def _connect(address: str, deadline: float):
     hint = (f"check that {address!r} is the address of a running dask scheduler (tcp://HOST:PORT, as "
             "printed by `dask scheduler`; not a worker's or another service's port) and that this machine "
             "can reach it")
+    _reachable(address, deadline, hint)
     connection_args = Security().get_connection_args("client")
     box: dict[str, Any] = {}
 

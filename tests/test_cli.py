@@ -375,6 +375,29 @@ def test_scheduler_address_of_something_else_fails_in_bounded_time(service, not_
     assert not (tmp_path / "out").exists()  # neither DIR nor DIR/tasks before a scheduler answered
 
 
+def test_scheduler_address_where_nothing_listens_fails_at_once(tmp_path, capsys):
+    """A refused connection or an unknown host is known at once; dask's own connect would retry it for
+    the whole timeout (25 s here before)."""
+    import socket
+    import time
+
+    with socket.socket() as probe:  # a port that was free a moment ago: nothing listens there now
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    study_file = tmp_path / "small.toml"
+    study_file.write_text(SMALL)
+    for address, says in ((f"tcp://127.0.0.1:{port}", "nothing listens at"),
+                          ("tcp://no-such-host.invalid:8786", "is not known"),
+                          ("tcp://127.0.0.1", "missing port number")):
+        start = time.monotonic()
+        code, err = _run(["run", study_file, "--out", tmp_path / "out", "--scheduler", address], capsys)
+        assert time.monotonic() - start < 5.0, address
+        assert code == cli.EXIT_FAILED
+        last = err.strip().splitlines()[-1]
+        assert last.startswith("beyondmf run: failed: ") and says in last and "running dask scheduler" in last
+        assert not (tmp_path / "out").exists()
+
+
 def test_out_that_cannot_be_written_is_refused_before_computing(tmp_path, capsys, monkeypatch):
     import beyondmf.study
 
