@@ -27,6 +27,30 @@ __all__ = ["InProcess", "Dask", "make_executor", "execute", "Interrupted", "CONN
 CONNECT_TIMEOUT_S = 25.0
 
 
+def _not_a_cancellation(record) -> bool:
+    """A logging filter: drop the worker's note that a task it was running was cancelled."""
+    return "ended with CancelledError" not in record.getMessage()
+
+
+def _leave_ctrl_c_to_the_command() -> None:
+    """Run on each worker process of a local cluster, which shares the user's terminal.
+
+    Ctrl-C at a terminal reaches the whole process group. The command itself stops the cluster and
+    says what was kept; a worker that took the interrupt as well printed its own traceback, so workers
+    ignore SIGINT. The tasks in flight are then cancelled, as asked, and the worker's warning about each
+    of them is dropped. (A Ctrl-C in the seconds while the workers start can still reach one of them.)
+    """
+    import logging
+    import signal
+    import threading
+
+    if threading.current_thread() is threading.main_thread():  # where the worker's event loop runs
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
+    logger = logging.getLogger("distributed.worker.state_machine")
+    if _not_a_cancellation not in logger.filters:
+        logger.addFilter(_not_a_cancellation)
+
+
 class Interrupted(KeyboardInterrupt):
     """Ctrl-C during `execute`: how many of the run's tasks have complete files on disk."""
 
@@ -88,6 +112,7 @@ class Dask:
                     dashboard_address=None,
                 )
                 self._client = Client(self._cluster)
+                self._client.run(_leave_ctrl_c_to_the_command)
             else:
                 self._client = _connect(self.scheduler, CONNECT_TIMEOUT_S)
         except BaseException:

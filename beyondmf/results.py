@@ -18,6 +18,7 @@ import time
 from pathlib import Path
 from typing import Any
 
+import dask
 import numpy as np
 import xarray as xr
 
@@ -186,7 +187,11 @@ def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
     out.attrs = _encode_attrs(dict(ds.attrs))
     tmp = _create_part(path)
     try:
-        out.to_netcdf(tmp, engine="h5netcdf")
+        # The data are in memory and every file has one writer. Without this, xarray takes a dask
+        # distributed lock per file wherever a dask client is active (on a worker: a client of its own
+        # and two round trips to the scheduler for every task file, and errors at shutdown).
+        with dask.config.set(scheduler="synchronous"):
+            out.to_netcdf(tmp, engine="h5netcdf")
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, path)

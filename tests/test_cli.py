@@ -294,6 +294,34 @@ def test_ctrl_c_ends_a_single_model_run_with_status_130_and_says_what_was_kept(t
     assert not (tmp_path / "new").exists()  # made by the run, empty, removed again
 
 
+def test_ctrl_c_on_a_local_cluster_stops_quietly_and_keeps_the_finished_tasks(tmp_path):
+    """Ctrl-C at a terminal reaches the whole process group, workers included: status 130, the line
+    with the kept count, and none of the workers' reports of the cancelled tasks (they printed a
+    CancelledError warning per task in flight before)."""
+    import signal
+    import time
+
+    study_file = tmp_path / "sweep.toml"
+    study_file.write_text(_replace(SMALL, "seed = 3\n", "") + "[sweep]\nrealizations = 12\n")
+    out = tmp_path / "out"
+    proc = _started_python_m(["run", study_file, "--out", out, "--workers", "2", "--no-plots"],
+                             stderr=subprocess.PIPE, start_new_session=True)
+    try:
+        deadline = time.monotonic() + 120
+        while not list((out / "tasks").glob("*.nc")) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert proc.poll() is None, "the sweep ended before it could be interrupted"
+        os.killpg(proc.pid, signal.SIGINT)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        proc.kill()
+    assert proc.returncode == cli.EXIT_INTERRUPTED, err
+    last = err.replace("\r", "\n").strip().splitlines()[-1]
+    assert last.startswith("beyondmf run: interrupted; ") and "of 12 tasks finished and are kept" in last
+    for noise in ("CancelledError", "Traceback", "WARNING", "Exception ignored"):
+        assert noise not in err, err
+
+
 def test_an_interrupt_swallowed_by_a_garbage_collector_callback_is_raised_again():
     """SIGINT landing in a gc callback (JAX has one) is only printed by Python; the command's hook gives
     it back to the main thread, so Ctrl-C is never lost."""
