@@ -68,26 +68,28 @@ _ADVICE = {
 
 
 def check_ode_options(options: dict[str, Any], defaults: dict[str, Any]) -> None:
-    """ValueError naming the first ODE option (those in ``defaults``) with a value the solver cannot use."""
+    """`OptionError` naming the first ODE option (of those in ``defaults``) with a value the solver cannot
+    use."""
+    from .levels.base import OptionError  # not at the top: the levels import this module
 
     def positive(name):
         v = options.get(name)
         if name in defaults and not (isinstance(v, int | float) and not isinstance(v, bool)
                                      and np.isfinite(v) and v > 0):
-            raise ValueError(f"{name} must be a positive number, got {v!r}")
+            raise OptionError(name, f"must be a positive number, got {v!r}")
 
     for name in ("rtol", "atol", "dtmin"):
         positive(name)
     if "max_steps" in defaults:
         v = options.get("max_steps")
         if not (isinstance(v, int | np.integer) and not isinstance(v, bool) and v >= 1):
-            raise ValueError(f"max_steps must be a positive integer, got {v!r}")
+            raise OptionError("max_steps", f"must be a positive integer, got {v!r}")
     progress = options.get("progress")
     if "progress" in defaults and not (isinstance(progress, bool) or progress == "auto"):
-        raise ValueError(f"progress must be 'auto', true or false, got {options.get('progress')!r}")
+        raise OptionError("progress", f"must be 'auto', true or false, got {options.get('progress')!r}")
     if "solver" in defaults and options.get("solver") != "auto" and options.get("solver") not in SOLVERS:
         known = ", ".join(SOLVERS)
-        raise ValueError(f"solver must be 'auto' or one of {known}, got {options.get('solver')!r}")
+        raise OptionError("solver", f"must be 'auto' or one of {known}, got {options.get('solver')!r}")
 
 
 def pick_solver(name: str, size: int, stiffness: float) -> str:

@@ -336,7 +336,8 @@ def _option_check(default) -> tuple[Callable[[Any], bool], str]:
 
 
 def _check_level_options(level, opts: dict[str, Any], key: str) -> None:
-    """The level's own model-free check of its options, if it has one; its ValueError names the option."""
+    """The level's own model-free check of its options, if it has one; an `OptionError` names the option
+    (its key in the study file), any other refusal is reported against the level's table."""
     validate = getattr(level, "validate_options", None)
     if not callable(validate):
         return
@@ -344,7 +345,7 @@ def _check_level_options(level, opts: dict[str, Any], key: str) -> None:
         validate({**level.options, **opts})
     except (ValueError, TypeError) as err:
         msg = " ".join(str(err).split())
-        opt = next((o for o in sorted(opts, key=len, reverse=True) if msg.startswith(o)), None)
+        opt = getattr(err, "option", None)
         raise StudyError(f"{key}.{opt}: {msg}" if opt else f"{key}: {msg}") from None
 
 

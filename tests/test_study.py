@@ -182,17 +182,25 @@ def test_grid_values_of_a_level_option_are_checked_when_read(tmp_path):
 
 
 def test_the_levels_own_option_check_is_called_and_named(tmp_path, monkeypatch):
-    """A level's model-free `validate_options`, where it has one, runs when the file is read."""
+    """A level's model-free `validate_options`, where it has one, runs when the file is read; an
+    `OptionError` is reported at the option's key, any other refusal at the level's table."""
+    from beyondmf.levels.base import OptionError
     from beyondmf.levels.meanfield import MeanField
 
     def validate(self, options):
         if options["max_steps"] == 7:
-            raise ValueError("max_steps must not be 7 for this test; use any other number")
+            raise OptionError("max_steps", "must not be 7 for this test; use any other number")
+        if options["max_steps"] == 9:
+            raise ValueError("nine steps and this rtol do not go together")
 
     monkeypatch.setattr(MeanField, "validate_options", validate, raising=False)
     msg = _refused(tmp_path, BASE.replace("[levels.meanfield]\n", "[levels.meanfield]\nmax_steps = 7\n"),
                    "levels.meanfield.max_steps")
-    assert "must not be 7" in msg
+    assert msg.endswith("levels.meanfield.max_steps: max_steps must not be 7 for this test; use any other "
+                        "number")
+    msg = _refused(tmp_path, BASE.replace("[levels.meanfield]\n", "[levels.meanfield]\nmax_steps = 9\n"),
+                   "levels.meanfield")
+    assert msg.endswith("levels.meanfield: nine steps and this rtol do not go together")
     _read(tmp_path, BASE.replace("[levels.meanfield]\n", "[levels.meanfield]\nmax_steps = 8\n"))
 
 

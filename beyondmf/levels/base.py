@@ -15,7 +15,15 @@ import numpy as np
 
 from ..model import Model
 
-__all__ = ["Level", "Moments", "Probes", "register", "get_level", "available_levels"]
+__all__ = ["Level", "Moments", "Probes", "OptionError", "register", "get_level", "available_levels"]
+
+
+class OptionError(ValueError):
+    """A level option with a value the level cannot use; ``option`` names it, the message starts with it."""
+
+    def __init__(self, option: str, problem: str) -> None:
+        super().__init__(f"{option} {problem}")
+        self.option = option
 
 
 @dataclass(frozen=True)
@@ -104,13 +112,13 @@ def is_count(v, least: int) -> bool:
 def check_sampling_options(options: dict[str, Any]) -> None:
     """The options every sampling level shares: ``samples``, ``dt`` and ``chunk`` ("auto" or a value)."""
     if not is_count(options["samples"], 2):
-        raise ValueError(f"samples must be an integer ≥ 2, got {options['samples']!r}")
+        raise OptionError("samples", f"must be an integer ≥ 2, got {options['samples']!r}")
     dt = options["dt"]
     if dt != "auto" and not (is_real_number(dt) and dt > 0):
-        raise ValueError(f"dt must be 'auto' or a positive time step (1/Γ0), got {dt!r}")
+        raise OptionError("dt", f"must be 'auto' or a positive time step (1/Γ0), got {dt!r}")
     chunk = options["chunk"]
     if chunk != "auto" and not is_count(chunk, 1):
-        raise ValueError(f"chunk must be 'auto' or an integer ≥ 1 (samples at once), got {chunk!r}")
+        raise OptionError("chunk", f"must be 'auto' or an integer ≥ 1 (samples at once), got {chunk!r}")
 
 
 class Level(ABC):

@@ -33,7 +33,7 @@ from ..memory import available_bytes, require
 from ..model import Envelope, Model
 from . import _qubits as q
 from ._sampling import amplitude_sums, coherent_statistics
-from .base import Level, Moments, Probes, check_sampling_options, is_real_number, register
+from .base import Level, Moments, OptionError, Probes, check_sampling_options, is_real_number, register
 
 __all__ = ["Jumps", "jump_channels"]
 
@@ -171,7 +171,8 @@ class Jumps(Level):
     def validate_options(self, options) -> None:
         check_sampling_options(options)
         if not (is_real_number(options["settle_time"]) and options["settle_time"] > 0):
-            raise ValueError(f"settle_time must be a positive time (1/Γ0), got {options['settle_time']!r}")
+            raise OptionError("settle_time",
+                              f"must be a positive time (1/Γ0), got {options['settle_time']!r}")
 
     def _setup(self, model: Model, probes: Probes, options):
         n, d = model.n, 2**model.n

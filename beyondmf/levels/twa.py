@@ -41,7 +41,16 @@ from ..integrate import SolveError
 from ..memory import require
 from ..model import Envelope, Model
 from ._sampling import amplitude_sums, coherent_statistics
-from .base import Level, Moments, Probes, check_sampling_options, is_count, is_real_number, register
+from .base import (
+    Level,
+    Moments,
+    OptionError,
+    Probes,
+    check_sampling_options,
+    is_count,
+    is_real_number,
+    register,
+)
 
 __all__ = ["TruncatedWigner", "auto_dt", "noise_factor", "sample_initial", "twa_args", "twa_drift"]
 
@@ -410,18 +419,17 @@ class TruncatedWigner(Level):
         check_sampling_options(options)
         frac = options["max_failed"]
         if not (is_real_number(frac) and 0 <= frac < 1):
-            raise ValueError(f"max_failed must be a fraction in [0, 1), got {frac!r}")
+            raise OptionError("max_failed", f"must be a fraction in [0, 1), got {frac!r}")
         vac = options["vacuum_check"]
         if not (is_count(vac, 0) and vac != 1):
-            raise ValueError(
-                f"vacuum_check must be 0 (off) or a number of control samples ≥ 2, got {vac!r}"
-            )
+            raise OptionError("vacuum_check",
+                              f"must be 0 (off) or a number of control samples ≥ 2, got {vac!r}")
         if not (is_real_number(options["settle_time"]) and options["settle_time"] >= 0):
-            raise ValueError(f"settle_time must be a time ≥ 0 (1/Γ0), got {options['settle_time']!r}")
+            raise OptionError("settle_time", f"must be a time ≥ 0 (1/Γ0), got {options['settle_time']!r}")
         if not (is_real_number(options["window"]) and options["window"] > 0):
-            raise ValueError(f"window must be a positive time (1/Γ0), got {options['window']!r}")
+            raise OptionError("window", f"must be a positive time (1/Γ0), got {options['window']!r}")
         if not is_count(options["window_points"], 1):
-            raise ValueError(f"window_points must be an integer ≥ 1, got {options['window_points']!r}")
+            raise OptionError("window_points", f"must be an integer ≥ 1, got {options['window_points']!r}")
 
     def _setup(self, model: Model, probes: Probes, options: dict[str, Any]):
         samples, frac = options["samples"], float(options["max_failed"])
