@@ -10,7 +10,7 @@ from __future__ import annotations
 import functools
 import sys
 from collections.abc import Callable
-from typing import Any
+from typing import Any, NamedTuple
 
 import diffrax
 import jax
@@ -242,11 +242,11 @@ def settle(
     dynamics does not settle by ``max_time`` (a limit cycle or a slow mode). Records a warning (through
     ``beyondmf._notes``) when the polish cannot bring r below 1e-8.
     """
-    P = project if project is not None else (lambda y: y)
-    f = jax.jit(lambda y: rhs(0.0, P(y), args))
+    fns = _settle_fns(rhs, project)
+    P = fns.project
 
     def residual(y):
-        return float(jnp.max(jnp.abs(f(y)))) / max(1.0, float(jnp.max(jnp.abs(y))))
+        return float(fns.rate(y, args)) / max(1.0, float(jnp.max(jnp.abs(y))))
 
     y, t, steps, stalled = P(y0), 0.0, 0, 0
     ts = np.array([0.0, chunk])
@@ -265,8 +265,7 @@ def settle(
             "have a limit cycle or bistability. Use evolve() to look at the dynamics"
         )
     res_before = res
-    F = (lambda y: f(y) + (y - P(y))) if project is not None else f
-    y = P(_newton(F, y, tol))
+    y = P(_newton(fns, y, args, tol))
     res = residual(y)
     if res > res_before:
         raise SolveError(f"{what}: the Newton polish moved away from the settled state (residual {res:.2g})")
@@ -289,31 +288,69 @@ def hermitian_unit_trace(y):
     return jnp.stack([re, im])
 
 
-def _newton(f, y, tol: float, iterations: int = 20):
-    """Newton's method on f(y) = 0, with GMRES on the Jacobian-vector product (matrix-free).
+class _SettleFns(NamedTuple):
+    project: Callable
+    rate: Callable  # (y, args) → max |dy/dt| at P(y)
+    newton_step: Callable  # (y, args) → (y after one Newton–GMRES step, max |F| there)
+    size: Callable  # (y, args) → max |F(y)|
+
+
+_SETTLE_COMPILED: dict[tuple, _SettleFns] = {}
+
+
+def _settle_fns(rhs: Callable, project: Callable | None) -> _SettleFns:
+    """The compiled pieces of `settle` for one right-hand side, made once per (rhs, project).
+
+    The model enters only through ``args``, an argument of every function (as in `solve`), so that one
+    compilation serves every model of the same shape; closing over ``args`` recompiled them, several
+    seconds per `steady` call, on every new cloud.
+    """
+    key = (rhs, project)
+    if key in _SETTLE_COMPILED:
+        return _SETTLE_COMPILED[key]
+    P = project if project is not None else (lambda y: y)
+
+    def F(y, args):
+        # with a projection, f(P(y)) + (y − P(y)): regular where the physical steady state is unique
+        r = rhs(0.0, P(y), args)
+        return r + (y - P(y)) if project is not None else r
+
+    @jax.jit
+    def rate(y, args):
+        return jnp.max(jnp.abs(rhs(0.0, P(y), args)))
+
+    @jax.jit
+    def size(y, args):
+        return jnp.max(jnp.abs(F(y, args)))
+
+    @jax.jit
+    def newton_step(y, args):
+        shape = y.shape
+        fv = lambda v: F(v.reshape(shape), args).reshape(-1)  # noqa: E731
+        v = y.reshape(-1)
+        jvp = lambda d: jax.jvp(fv, (v,), (d,))[1]  # noqa: E731
+        d, _ = jax.scipy.sparse.linalg.gmres(jvp, -fv(v), tol=1e-12, restart=60, maxiter=20)
+        new = v + d
+        return new.reshape(shape), jnp.max(jnp.abs(fv(new)))
+
+    fns = _SettleFns(jax.jit(P) if project is not None else P, rate, newton_step, size)
+    _SETTLE_COMPILED[key] = fns
+    return fns
+
+
+def _newton(fns: _SettleFns, y, args, tol: float, iterations: int = 20):
+    """Newton's method on F(y) = 0, with GMRES on the Jacobian-vector product (matrix-free).
 
     Stops at residual ``tol``, after ``iterations`` steps, or at the first step that does not lower the
     residual (or is not finite, e.g. GMRES breaking down on a singular Jacobian); returns the best point.
     """
-    shape = y.shape
-    flat = lambda v: v.reshape(-1)  # noqa: E731
-    fv = jax.jit(lambda v: flat(f(v.reshape(shape))))
-
-    @jax.jit
-    def step(v):
-        r = fv(v)
-        jvp = lambda d: jax.jvp(fv, (v,), (d,))[1]  # noqa: E731
-        d, _ = jax.scipy.sparse.linalg.gmres(jvp, -r, tol=1e-12, restart=60, maxiter=20)
-        return v + d
-
-    v = flat(y)
-    best, best_res = v, float(jnp.max(jnp.abs(fv(v))))
+    best, best_res = y, float(fns.size(y, args))
     for _ in range(iterations):
         if best_res < tol:
             break
-        v = step(v)
-        r = float(jnp.max(jnp.abs(fv(v))))
+        y, r = fns.newton_step(best, args)
+        r = float(r)
         if not np.isfinite(r) or r >= best_res:
             break
-        best, best_res = v, r
-    return best.reshape(shape)
+        best, best_res = y, r
+    return best
