@@ -78,15 +78,45 @@ def _plain(value: Any) -> Any:
             raise ValueError(f"task parameters must be finite numbers, got {v}")
         return int(v) if v.is_integer() and abs(v) < 2**53 else v
     if isinstance(value, complex | np.complexfloating):
+        if value.imag == 0:  # a real number written as complex (a study file's dipole) names the same task
+            return _plain(value.real)
         return {"re": _plain(value.real), "im": _plain(value.imag)}
     if value is None or isinstance(value, str | int):
         return value
     raise TypeError(f"a task parameter must be a number, string, list or table, got {type(value).__name__}")
 
 
+def model_defaults() -> dict[str, Any]:
+    """The default of every optional argument of `beyondmf.Model`."""
+    import dataclasses
+
+    from .model import Model
+
+    return {f.name: f.default for f in dataclasses.fields(Model)
+            if f.init and f.default is not dataclasses.MISSING}
+
+
+def _without_defaults(task: Mapping[str, Any]) -> dict[str, Any]:
+    """``task`` with the model arguments and level options that equal their defaults left out, so that a
+    value written out and the same value left implicit name the same task (the study reader writes every
+    model argument, `compare_levels` only those given)."""
+    from .levels.base import get_level
+
+    out = dict(task)
+    defaults = model_defaults()
+    if out.get("model") is not None:
+        out["model"] = {k: v for k, v in out["model"].items()
+                        if not (k in defaults and _plain(v) == _plain(defaults[k]))}
+    if out.get("options") is not None and "level" in out:
+        level_defaults = get_level(out["level"]).options
+        out["options"] = {k: v for k, v in out["options"].items()
+                          if not (k in level_defaults and _plain(v) == _plain(level_defaults[k]))}
+    return out
+
+
 def canonical(task: Mapping[str, Any]) -> str:
-    """The task's canonical JSON text: sorted keys, no spaces, plain numbers."""
-    return json.dumps(_plain(task), sort_keys=True, separators=(",", ":"))
+    """The task's canonical JSON text: sorted keys, no spaces, plain numbers, defaults left out."""
+    return json.dumps(_plain(_without_defaults(task)), sort_keys=True, separators=(",", ":"))
 
 
 def task_key(task: Mapping[str, Any]) -> str:

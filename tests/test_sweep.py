@@ -100,6 +100,26 @@ def test_task_keys_are_stable_across_number_spellings(tmp_path):
     assert keys[0] == keys[1]
 
 
+def test_a_task_from_a_study_file_and_the_same_task_from_python_share_their_key(tmp_path):
+    """The study reader writes every model argument (complex dipole, default coupling and detuning); the
+    Python API only those given. Values equal to their defaults and real numbers written as complex
+    do not change the task, so the two resume each other's files."""
+    from beyondmf.levels.base import get_level
+    from beyondmf.sweep import build_task, level_table
+
+    text = STUDY.split("[sweep]")[0].replace("[levels.meanfield]\n", "[levels.meanfield]\nrtol = "
+                                              f"{get_level('meanfield').options['rtol']!r}\n")
+    study = _study(tmp_path, text.replace('kind = "ellipsoid"', 'kind = "ellipsoid"\nseed = 4'))
+    (label, r), from_file = next(iter(study_tasks(study)[0].items()))
+    from_python = build_task(from_file["positions"], {"rabi": 1.0}, from_file["run"], from_file["detectors"],
+                             level_table(["meanfield"])["meanfield"], 0, r)
+    assert from_file["model"] != from_python["model"]  # written differently ...
+    assert task_key(from_file) == task_key(from_python)  # ... the same task
+    changed = build_task(from_file["positions"], {"rabi": 1.0, "detuning": 0.5}, from_file["run"],
+                         from_file["detectors"], level_table(["meanfield"])["meanfield"], 0, r)
+    assert task_key(changed) != task_key(from_python)
+
+
 def test_two_dask_workers_on_loopback_give_the_in_process_result(tmp_path):
     study = _study(tmp_path, STUDY.replace('"drive.saturation" = [0.5, 4.0]', '"drive.saturation" = [0.5]'))
     plain = run_sweep(study, tmp_path / "plain", progress=False)
