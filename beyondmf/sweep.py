@@ -192,6 +192,32 @@ def stack(
         out = out.assign(_burst_observables(out))
     out.attrs["failures"] = failures
     out.attrs["warnings"] = said
+    out.attrs.update(shared_parameters(index, labels))
+    return out
+
+
+def shared_parameters(index: Mapping[tuple, Mapping[str, Any]], labels: Sequence[str]) -> dict[str, Any]:
+    """What the tasks of a merged result have in common, for its attributes: the package versions, the
+    level and options behind each label, and the model arguments, run and detectors where every task has
+    the same (a grid over one of them leaves it out; the study text, where there is one, has it)."""
+    from .results import provenance
+    from .tasks import _plain, model_defaults
+
+    tasks = list(index.values())
+    out: dict[str, Any] = dict(provenance())
+    by_label: dict[str, Any] = {}
+    for key_tuple, task in index.items():
+        by_label.setdefault(key_tuple[-2], {"level": task["level"], "options": _plain(task["options"])})
+    out["level_options"] = {label: by_label[label] for label in labels if label in by_label}
+    for part in ("model", "run", "detectors"):
+        values = {repr(_plain(t.get(part))) for t in tasks}
+        if len(values) == 1 and tasks[0].get(part) is not None:
+            out[part] = _plain(tasks[0][part])
+    if "model" in out:  # every argument of Model, the defaults written out
+        out["model"] = {**_plain(model_defaults()), **out["model"]}
+    sizes = {len(t["positions"]) for t in tasks}
+    if len(sizes) == 1:
+        out["N"] = sizes.pop()
     return out
 
 

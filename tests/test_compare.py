@@ -123,6 +123,20 @@ def test_compare_levels_uses_the_same_draws_at_every_level(tmp_path):
     assert set(verdict[1:]) == {"holds"} and verdict_table(s)["meanfield_tight"]["emission_rate"] == "holds"
     assert len(list((tmp_path / "tasks").glob("*.nc"))) == 6
 
+    # the saved comparison alone says what was run (conventions.md, "data contract"): positions of every
+    # realization, every model argument, the run, each label's level and options, seed, N, versions
+    bm.save(s, tmp_path / "comparison.nc")
+    back = bm.load(tmp_path / "comparison.nc")
+    np.testing.assert_array_equal(back["positions"].sel(realization=2),
+                                  disc(bm.sweep.realization_seeds(2, 2)[0]))
+    assert back.attrs["model"] == {"dipole": [1, 0, 0], "coupling": "vector", "rabi": 1, "detuning": 0,
+                                   "laser": [0, 0, 1], "envelope": None}
+    assert back.attrs["run"]["calculation"] == "evolve" and back.attrs["run"]["times"][-1] == 2
+    assert back.attrs["level_options"]["meanfield_tight"] == {"level": "meanfield",
+                                                              "options": {"rtol": 1e-10, "atol": 1e-12}}
+    assert back.attrs["seed"] == 2 and back.attrs["N"] == 4
+    assert back.attrs["beyondmf_version"] == bm.__version__
+
 
 def test_a_levels_own_warnings_reach_the_comparison(tmp_path):
     # twa's vacuum control warns for this dense cloud (n·λ0³ ≈ 38; docs/twa.md §7, and the twa tests);
