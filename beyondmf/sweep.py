@@ -41,7 +41,6 @@ from __future__ import annotations
 import copy
 import itertools
 import tomllib
-import warnings
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -529,7 +528,7 @@ def _quick_error(err: StudyError, over: Mapping) -> StudyError:
 
 
 def read_study(path: str | Path, quick: bool = False) -> Study:
-    """Read and validate a study file; ``quick`` applies its [quick] overrides (a warning if it has none).
+    """Read and validate a study file; ``quick`` applies its [quick] overrides (an error if it has none).
 
     A [quick] table is validated whether or not ``quick`` is set (its errors name ``quick.KEY``), so that
     a broken CI-sized version of a study is found by the study's own runs.
@@ -543,7 +542,9 @@ def read_study(path: str | Path, quick: bool = False) -> Study:
     except tomllib.TOMLDecodeError as err:
         raise StudyError(f"not valid TOML: {err}") from None
     if quick and "quick" not in raw:
-        warnings.warn(f"{p}: no [quick] table; --quick runs the study unchanged", stacklevel=2)
+        # running the full study instead could take hours where minutes were asked for
+        raise StudyError("--quick: this study has no [quick] table; run it without --quick, or add one "
+                         "(an empty [quick] says the study is quick as it stands; docs/study-files.md)")
     levels = raw.get("levels")
     if isinstance(levels, list) and all(isinstance(v, str) for v in levels):
         raw["levels"] = {name: {} for name in levels}  # the table form, which [quick] can override

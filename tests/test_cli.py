@@ -502,11 +502,13 @@ def test_a_closed_output_pipe_ends_quietly(tmp_path):
 
 
 def test_warnings_are_printed_as_one_line_for_the_user(tmp_path, capsys):
-    """A study warning (here: --quick without a [quick] table) reads as a line of the command, without
-    the Python source location it was raised at."""
+    """A level's warning (here: an explicit solver on the stiff equations of two emitters 0.02 λ0 apart)
+    reads as a line of the command, without the Python source location it was raised at."""
     path = tmp_path / "s.toml"
-    path.write_text(QUICKSTART.read_text().replace("n = 200", "n = 4"))
-    assert cli.main(["run", str(path), "--out", str(tmp_path / "o"), "--quick", "--no-plots"]) == 0
+    path.write_text('title = "two very close emitters"\n[geometry]\nkind = "line"\nn = 2\nspacing = 0.02\n'
+                    '[drive]\nrabi = 1.0\n[run]\nt_end = 1.0\npoints = 3\n[levels.meanfield]\n'
+                    'solver = "tsit5"\n')
+    assert cli.main(["run", str(path), "--out", str(tmp_path / "o"), "--no-plots"]) == 0
     err = capsys.readouterr().err
-    assert "beyondmf run: warning: " in err and "no [quick] table" in err
+    assert "beyondmf run: warning: stiff equations: coupling rates up to" in err
     assert "UserWarning" not in err and ".py:" not in err

@@ -176,9 +176,10 @@ def test_density_grid_on_a_lattice_is_refused(tmp_path):
         study_tasks(_study(tmp_path, text))
 
 
-def test_quick_without_a_quick_table_runs_the_study_unchanged(tmp_path):
-    with pytest.warns(UserWarning, match="no \\[quick\\] table"):
-        study = _study(tmp_path, quick=True)
+def test_quick_without_a_quick_table_is_refused_and_an_empty_one_runs_the_study_as_it_stands(tmp_path):
+    with pytest.raises(StudyError, match="--quick: this study has no \\[quick\\] table"):
+        _study(tmp_path, quick=True)
+    study = _study(tmp_path, STUDY + "[quick]\n", quick=True)
     assert study_tasks(study)[2] == 2
 
 
