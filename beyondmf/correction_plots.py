@@ -25,6 +25,31 @@ _LABEL = {"emission_rate": "emission rate P (Γ0)", "g2_total": "g2 of all light
           "intensity": "intensity (Γ0/sr)", "emission_rate_peak": "peak rate (Γ0)",
           "peak_time": "time of the peak (1/Γ0)", "emitted": "photons emitted"}
 _CLIP = 1.5  # relative corrections are drawn within ±150 %: beyond that the baseline has plainly failed
+_AXIS = {"geometry.density": "density n·λ0³", "drive.saturation": "saturation s", "drive.rabi": "Ω (Γ0)",
+         "drive.detuning": "Δ (Γ0)", "geometry.spacing": "spacing (λ0)", "geometry.n": "N emitters"}
+_COLUMNS = 3  # panels per row
+
+
+def _axis_label(s: xr.Dataset, dim: str) -> str:
+    """A grid dimension's axis label: the quantity with its unit where known, else the study path."""
+    path = s[dim].attrs.get("parameter", dim)
+    return _AXIS.get(path, path)
+
+
+def _log_axis(x: np.ndarray) -> bool:
+    """A positive grid spanning a decade or more is drawn on a logarithmic axis."""
+    return bool(np.all(x > 0) and x.max() / x.min() >= 10)
+
+
+def _subplots(n: int):
+    """``n`` panels in rows of at most `_COLUMNS`; the axes in reading order, surplus ones hidden."""
+    cols = min(n, _COLUMNS)
+    rows = -(-n // cols)
+    fig, axes = plt.subplots(rows, cols, figsize=(3.6 * cols, 3.2 * rows), squeeze=False)
+    flat = list(axes.flat)
+    for ax in flat[n:]:
+        ax.set_visible(False)
+    return fig, flat[:n]
 
 
 def _summary(ds: xr.Dataset) -> xr.Dataset:
@@ -94,8 +119,8 @@ def _slices(s: xr.Dataset, dims: list[str]) -> list[tuple[dict, str]]:
 def _values_figure(s: xr.Dataset, path: Path) -> Path:
     panels = _panels(s)
     grid = _grid_dims(s)
-    fig, axes = plt.subplots(1, len(panels), figsize=(3.6 * len(panels), 3.2), squeeze=False)
-    for ax, (name, det) in zip(axes[0], panels, strict=True):
+    fig, axes = _subplots(len(panels))
+    for ax, (name, det) in zip(axes, panels, strict=True):
         for k, lv in enumerate(s["level"].values):
             v, u = _pick(s, name, det, lv)
             if "time" in v.dims:
@@ -112,8 +137,8 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
                     ax.errorbar(x, v.sel(sel).transpose(grid[0]), yerr=u.sel(sel).transpose(grid[0]),
                                 marker="o", capsize=3, label=f"{_name(s, lv)}{tag}",
                                 color=_color(s, lv) if not tag else None)
-                ax.set_xlabel(s[grid[0]].attrs.get("parameter", grid[0]))
-                if np.all(x > 0) and x.max() / x.min() > 20:
+                ax.set_xlabel(_axis_label(s, grid[0]))
+                if _log_axis(x):
                     ax.set_xscale("log")
             else:
                 ax.bar(k, float(v), yerr=float(u), capsize=4, label=_name(s, lv), color=_color(s, lv))
@@ -122,7 +147,7 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
         vals = np.abs(s[name].values[np.isfinite(s[name].values)])
         if name.startswith("g2") and vals.size and vals.min() > 0 and vals.max() / vals.min() > 100:
             ax.set_yscale("log")
-    axes[0][0].legend(fontsize=8, title="level", title_fontsize=8)
+    axes[0].legend(fontsize=8, title="level", title_fontsize=8)
     fig.suptitle(s.attrs.get("title", "") + (" (quick mode)" if s.attrs.get("quick") else ""), fontsize=10)
     return _save(fig, path)
 
@@ -132,8 +157,9 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
     grid = _grid_dims(s)
     tol, base = s.attrs["tolerance"], s.attrs["baseline"]
     others = [lv for lv in s["level"].values if str(lv) != base]
-    fig, axes = plt.subplots(1, len(panels), figsize=(3.6 * len(panels), 3.2), squeeze=False)
-    for ax, (name, det) in zip(axes[0], panels, strict=True):
+    fig, axes = _subplots(len(panels))
+    for ax, (name, det) in zip(axes, panels, strict=True):
+        top = tol  # the y-range: the drawn corrections and intervals, at least the tolerance, at most ±_CLIP
         for k, lv in enumerate(others):
             sel = {"level": lv} | ({"detector": det} if det else {})
             c = s[f"{name}_correction"].sel(sel)
@@ -148,8 +174,8 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
                     c, lo, hi = (a.isel({grid[0]: 0}) for a in (c, lo, hi))
             elif grid:
                 x = s[grid[0]].values
-                ax.set_xlabel(s[grid[0]].attrs.get("parameter", grid[0]))
-                if np.all(x > 0) and x.max() / x.min() > 20:
+                ax.set_xlabel(_axis_label(s, grid[0]))
+                if _log_axis(x):
                     ax.set_xscale("log")
             else:
                 x = np.array([k])
@@ -157,15 +183,18 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
             col = _color(s, lv)
             ax.plot(x, np.clip(np.atleast_1d(c), -_CLIP, _CLIP), marker="o", label=_name(s, lv), color=col)
             lo_c, hi_c = (np.clip(np.atleast_1d(a), -_CLIP, _CLIP) for a in (lo, hi))
-            ax.fill_between(x, lo_c, hi_c,
-                            alpha=0.25, color=col)
+            ax.fill_between(x, lo_c, hi_c, alpha=0.25, color=col)
+            drawn = np.abs(np.concatenate([np.atleast_1d(a).ravel() for a in (c, lo, hi)]))
+            drawn = drawn[np.isfinite(drawn)]
+            top = max(top, float(drawn.max()) if drawn.size else 0.0)
         for y in (-tol, tol):
             ax.axhline(y, color="k", ls=":", lw=1)
         ax.axhline(0, color="k", lw=0.5)
-        ax.set_ylim(-_CLIP * 1.05, _CLIP * 1.05)
+        lim = min(top, _CLIP) * 1.1
+        ax.set_ylim(-lim, lim)
         ax.set_title(f"correction of {_title(name, det)}", fontsize=9)
     if others:
-        axes[0][0].legend(fontsize=8, title=f"vs {base}", title_fontsize=8)
+        axes[0].legend(fontsize=8, title=f"vs {base}", title_fontsize=8)
     fig.suptitle(f"relative corrections (X − X_{base})/X_{base}, {s.attrs['confidence']:.0%} intervals, "
                  f"tolerance ±{tol:g} (dotted), drawn within ±{_CLIP:g}",
                  fontsize=10)
@@ -199,8 +228,8 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
                 ax.text(xi, yi, mark, ha="center", va="center", fontsize=11)
             ax.set_xticks(range(s.sizes[gx]), [f"{v:g}" for v in s[gx].values], fontsize=7)
             ax.set_yticks(range(s.sizes[gy]), [f"{v:g}" for v in s[gy].values], fontsize=7)
-            ax.set_xlabel(s[gx].attrs.get("parameter", gx))
-            ax.set_ylabel(s[gy].attrs.get("parameter", gy))
+            ax.set_xlabel(_axis_label(s, gx))
+            ax.set_ylabel(_axis_label(s, gy))
             at = " at the last time" if "time" in rest else ""
             ax.set_title(f"{_name(s, lv)}: correction of {_title(name, det)}{at}", fontsize=8)
             fig.colorbar(im, ax=ax, shrink=0.8)

@@ -221,3 +221,32 @@ def test_samples_that_all_agree_do_not_make_a_verdict_certain():
     assert list(v.sel(level="jumps").values) == ["holds", "holds", "undecided"]
     # meanfield: deterministic, 9 % off at t = 3 with no error of its own: "holds" as before
     assert list(v.sel(level="meanfield").values) == ["holds", "holds", "holds"]
+
+
+def test_correction_figure_fits_small_corrections_and_labels_the_grid(tmp_path, monkeypatch):
+    """Corrections of a few % fill the panel (they were drawn on a fixed ±1.5 scale), a grid spanning a
+    decade is logarithmic, and a density axis says n·λ0³."""
+    from beyondmf import correction_plots
+
+    density = np.array([0.1, 0.5, 2.0])
+    rng = np.random.default_rng(0)
+    base = 1.0 + rng.normal(0, 0.001, (3, 4))
+    other = base * (1 + 0.03 * density[:, None] / 2.0)
+    per = xr.Dataset(
+        {"emission_rate": (("density", "level", "realization"), np.stack([base, other], axis=1))},
+        coords={"density": density, "level": ["exact", "meanfield"], "realization": np.arange(4)})
+    per["density"].attrs["parameter"] = "geometry.density"
+    s = summarize(per, baseline="exact", tolerance=0.1, observables=["emission_rate"])
+    figures = {}
+
+    def keep(fig, path):
+        figures[path.name] = fig
+        return path
+
+    monkeypatch.setattr(correction_plots, "_save", keep)
+    correction_plots.plot_sweep(s, tmp_path)
+    ax = figures["corrections.png"].axes[0]
+    low, high = ax.get_ylim()
+    assert 0.1 < high < 0.12 and low == -high  # the tolerance lines and a 3 % correction, not ±1.5
+    assert ax.get_xscale() == "log" and ax.get_xlabel() == "density n·λ0³"
+    assert figures["values.png"].axes[0].get_xlabel() == "density n·λ0³"
