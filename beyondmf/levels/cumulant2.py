@@ -40,13 +40,12 @@ from __future__ import annotations
 
 from typing import Any
 
-import jax
 import jax.numpy as jnp
 import numpy as np
 
 from .._notes import warn as _note
 from ..estimators_pair import pair_field_moments, pair_rate_moments
-from ..integrate import ODE_OPTIONS, per_envelope, pick_solver, settle, solve
+from ..integrate import ODE_OPTIONS, observe_once, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
@@ -259,5 +258,5 @@ class Cumulant2(Level):
             cumulant2_rhs(model.envelope), _observe, y0, args, obs_args, options, solver,
             what="cumulant2 steady state",
         )
-        obs = jax.tree.map(lambda a: a[None], _observe(y, obs_args))
+        obs = observe_once(_observe, y, obs_args)
         return _moments(obs, {"solver": solver, **info})

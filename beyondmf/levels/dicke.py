@@ -40,6 +40,7 @@ from ..integrate import (
     ODE_OPTIONS,
     STIFF_RATIO,
     hermitian_unit_trace,
+    observe_once,
     per_envelope,
     pick_solver,
     settle,
@@ -267,6 +268,6 @@ class Dicke(Level):
         rhs = dicke_rhs(model.envelope)
         y, info = settle(rhs, _observe, jnp.asarray(y0), args, obs_args, options, solver,
                          project=hermitian_unit_trace, what="Dicke-space steady state")
-        obs = jax.tree.map(lambda v: v[None], _observe(y, obs_args))
+        obs = observe_once(_observe, y, obs_args)
         return Moments(**obs, attrs={"solver": solver, **info})
 

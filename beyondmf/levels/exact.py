@@ -37,6 +37,7 @@ from ..integrate import (
     ODE_OPTIONS,
     SolveError,
     hermitian_unit_trace,
+    observe_once,
     per_envelope,
     pick_solver,
     settle,
@@ -205,7 +206,7 @@ class Exact(Level):
             y, info = _dense_steady(rhs, args, model.n)
         else:
             y, info = self._settled_steady(model, rhs, args, obs_args, options, solver)
-        obs = jax.tree.map(lambda a: a[None], _observe(y, obs_args))
+        obs = observe_once(_observe, y, obs_args)
         return Moments(**obs, attrs={"solver": solver, **info})
 
     def _settled_steady(self, model, rhs, args, obs_args, options, solver):

@@ -17,12 +17,11 @@ from __future__ import annotations
 
 from typing import Any
 
-import jax
 import jax.numpy as jnp
 import numpy as np
 
 from ..estimators import product_field_moments, product_rate_moments
-from ..integrate import ODE_OPTIONS, per_envelope, pick_solver, settle, solve
+from ..integrate import ODE_OPTIONS, observe_once, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
@@ -117,5 +116,5 @@ class MeanField(Level):
         rhs = meanfield_rhs(model.envelope)
         y0 = bloch_to_state(np.tile([0.0, 0.0, -1.0], (model.n, 1)))
         y, info = settle(rhs, _observe, y0, args, obs_args, options, solver, what="mean-field steady state")
-        obs = jax.tree.map(lambda a: a[None], _observe(y, obs_args))
+        obs = observe_once(_observe, y, obs_args)
         return Moments(**obs, attrs={"solver": solver, **info})
