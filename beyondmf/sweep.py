@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import copy
 import itertools
+import json
 import tomllib
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
@@ -56,6 +57,8 @@ __all__ = [
     "SweepSpec",
     "CompareSpec",
     "read_study",
+    "study_from_table",
+    "to_toml",
     "is_sweep",
     "study_tasks",
     "run_sweep",
@@ -541,6 +544,24 @@ def read_study(path: str | Path, quick: bool = False) -> Study:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
         raise StudyError(f"not valid TOML: {err}") from None
+    return _study(raw, text, p, quick)
+
+
+def study_from_table(table: Mapping[str, Any], quick: bool = False) -> Study:
+    """A study built in Python: ``table`` has the layout of a study file (docs/study-files.md), e.g.
+    ``{"geometry": {...}, "drive": {...}, "levels": {...}, "sweep": {"grid": {"geometry.density": [...]}}}``.
+
+    It is validated exactly as a file is, and its text (``Study.source``, kept in results.nc as the
+    attribute ``study``) is the same table written as TOML, so ``beyondmf run`` can run it again.
+    Run it with `run_sweep` (a sweep or comparison) or `beyondmf.study.run_study` (one model).
+    """
+    if not isinstance(table, Mapping):
+        raise StudyError(f"expected a table (dict) in the layout of a study file, got {type(table).__name__}")
+    text = to_toml(table)
+    return _study(tomllib.loads(text), text, None, quick)
+
+
+def _study(raw: dict, text: str, path: Path | None, quick: bool) -> Study:
     if quick and "quick" not in raw:
         # running the full study instead could take hours where minutes were asked for
         raise StudyError("--quick: this study has no [quick] table; run it without --quick, or add one "
@@ -548,11 +569,11 @@ def read_study(path: str | Path, quick: bool = False) -> Study:
     levels = raw.get("levels")
     if isinstance(levels, list) and all(isinstance(v, str) for v in levels):
         raw["levels"] = {name: {} for name in levels}  # the table form, which [quick] can override
-    study = parse_table(raw, text, p)
+    study = parse_table(raw, text, path)
     if "quick" in raw:
         merged = _with_quick(raw)
         try:
-            quick_study = parse_table(merged, text, p)
+            quick_study = parse_table(merged, text, path)
         except StudyError as err:
             raise _quick_error(err, raw["quick"]) from None
         if quick:
@@ -560,6 +581,51 @@ def read_study(path: str | Path, quick: bool = False) -> Study:
     study.extra["raw"] = raw
     study.extra["quick"] = quick
     return study
+
+
+def _toml_key(key: str) -> str:
+    return key if key and all(c.isalnum() or c in "_-" for c in key) and key.isascii() else json.dumps(key)
+
+
+def _toml_value(value: Any, where: str) -> str:
+    if isinstance(value, bool | np.bool_):
+        return "true" if value else "false"
+    if isinstance(value, int | np.integer):
+        return str(int(value))
+    if isinstance(value, float | np.floating):
+        if not np.isfinite(value):
+            raise StudyError(f"{where}: expected a finite number, got {value}")
+        return repr(float(value))
+    if isinstance(value, str):
+        return json.dumps(value, ensure_ascii=False)  # JSON's escapes are TOML's
+    if isinstance(value, list | tuple | np.ndarray):
+        items = value.tolist() if isinstance(value, np.ndarray) else value
+        return "[" + ", ".join(_toml_value(v, f"{where}[{i}]") for i, v in enumerate(items)) + "]"
+    if isinstance(value, Mapping):
+        return "{" + ", ".join(f"{_toml_key(str(k))} = {_toml_value(v, f'{where}.{k}')}"
+                               for k, v in value.items()) + "}"
+    raise StudyError(f"{where}: a study takes numbers, strings, true/false, lists and tables, "
+                     f"got {type(value).__name__}")
+
+
+def to_toml(table: Mapping[str, Any]) -> str:
+    """``table`` as the text of a study file (TOML): plain values first, then one [section] per table."""
+    lines: list[str] = []
+
+    def emit(tab: Mapping[str, Any], prefix: str) -> None:
+        plain = {k: v for k, v in tab.items() if not isinstance(v, Mapping)}
+        nested = {k: v for k, v in tab.items() if isinstance(v, Mapping)}
+        if prefix and (plain or not nested):
+            lines.append(f"[{prefix}]")
+        for k, v in plain.items():
+            lines.append(f"{_toml_key(str(k))} = {_toml_value(v, f'{prefix}.{k}' if prefix else str(k))}")
+        for k, v in nested.items():
+            if lines and lines[-1] != "":
+                lines.append("")
+            emit(v, f"{prefix}.{_toml_key(str(k))}" if prefix else _toml_key(str(k)))
+
+    emit(table, "")
+    return "\n".join(lines) + "\n"
 
 
 def is_sweep(study: Study) -> bool:

@@ -120,6 +120,26 @@ def test_a_task_from_a_study_file_and_the_same_task_from_python_share_their_key(
     assert task_key(changed) != task_key(from_python)
 
 
+def test_a_study_built_in_python_is_the_study_file_with_the_same_layout(tmp_path):
+    """`study_from_table`: the same tasks as the file, validated the same way, and a text that reads
+    back (tomllib, Python's own TOML reader) as the same table, so `beyondmf run` can rerun it."""
+    import tomllib
+
+    from beyondmf.sweep import study_from_table, to_toml
+
+    table = tomllib.loads(STUDY)
+    study = study_from_table(table)
+    assert tomllib.loads(study.source) == table and tomllib.loads(to_toml(table)) == table
+    from_file = _study(tmp_path)
+    assert ([task_key(t) for t in study_tasks(study)[0].values()]
+            == [task_key(t) for t in study_tasks(from_file)[0].values()])
+    table["sweep"]["grid"]["geometry.density"] = [0.2, -1.0]
+    with pytest.raises(StudyError, match="sweep.grid.geometry.density"):
+        study_from_table(table)
+    with pytest.raises(StudyError, match="lists and tables, got set"):
+        study_from_table({**table, "title": {"a", "b"}})
+
+
 def test_two_dask_workers_on_loopback_give_the_in_process_result(tmp_path):
     study = _study(tmp_path, STUDY.replace('"drive.saturation" = [0.5, 4.0]', '"drive.saturation" = [0.5]'))
     plain = run_sweep(study, tmp_path / "plain", progress=False)
