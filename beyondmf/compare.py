@@ -233,7 +233,8 @@ def compare_levels(
     model : the other arguments of `beyondmf.Model` (coupling, dipole, rabi, detuning, laser, envelope).
     times : None for the steady state, else the times of `beyondmf.evolve` from ``initial``.
     detectors : name → direction (default: "forward", along the laser).
-    out : a directory to keep each task's file in (resumable); None keeps everything in memory.
+    out : a directory; each task's file is kept in ``out/tasks/`` (resumable: a call with the same
+        tasks reuses them); None keeps everything in memory.
     executor : an executor of `beyondmf.executors` (default: in this process).
 
     Returns
