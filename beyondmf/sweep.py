@@ -114,6 +114,10 @@ def build_task(
 ) -> dict[str, Any]:
     """The task dictionary of one level on one draw; deterministic levels carry no seed, so equal
     positions at a deterministic level are one task whatever the realization number."""
+    from .api import _options
+
+    # refused here, before it becomes a task: a failed task's file is reused by the next run with its key
+    _options(get_level(level["level"]), dict(level["options"]))
     task = {
         "positions": np.asarray(positions, dtype=float),
         "model": dict(model),
@@ -207,10 +211,22 @@ def shared_parameters(index: Mapping[tuple, Mapping[str, Any]], labels: Sequence
 
     tasks = list(index.values())
     out: dict[str, Any] = dict(provenance())
-    by_label: dict[str, Any] = {}
+    by_label: dict[str, list] = {}
     for key_tuple, task in index.items():
-        by_label.setdefault(key_tuple[-2], {"level": task["level"], "options": _plain(task["options"])})
-    out["level_options"] = {label: by_label[label] for label in labels if label in by_label}
+        by_label.setdefault(key_tuple[-2], []).append(task)
+    out["level_options"] = {}
+    for label in labels:
+        group = by_label.get(label, [])
+        if not group:
+            continue
+        options = [_plain(t["options"]) for t in group]
+        names = sorted({k for o in options for k in o})
+        same = {k: options[0][k] for k in names if all(k in o and o[k] == options[0][k] for o in options)}
+        entry = {"level": group[0]["level"], "options": same}
+        varied = [k for k in names if k not in same]
+        if varied:  # a grid over these options: their values are in the grid coordinates
+            entry["varied"] = varied
+        out["level_options"][label] = entry
     for part in ("model", "run", "detectors"):
         values = {repr(_plain(t.get(part))) for t in tasks}
         if len(values) == 1 and tasks[0].get(part) is not None:
@@ -558,7 +574,11 @@ def study_from_table(table: Mapping[str, Any], quick: bool = False) -> Study:
     if not isinstance(table, Mapping):
         raise StudyError(f"expected a table (dict) in the layout of a study file, got {type(table).__name__}")
     text = to_toml(table)
-    return _study(tomllib.loads(text), text, None, quick)
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as err:  # a value to_toml writes and TOML cannot hold
+        raise StudyError(f"the table cannot be written as a study file: {err}") from None
+    return _study(raw, text, None, quick)
 
 
 def _study(raw: dict, text: str, path: Path | None, quick: bool) -> Study:
@@ -583,8 +603,14 @@ def _study(raw: dict, text: str, path: Path | None, quick: bool) -> Study:
     return study
 
 
+def _toml_string(text: str) -> str:
+    """A TOML basic string: JSON's escapes are TOML's; DEL and characters outside the basic plane are
+    written as TOML allows (JSON would give DEL raw and the others as surrogate pairs)."""
+    return json.dumps(text, ensure_ascii=False).replace("\x7f", "\\u007f")
+
+
 def _toml_key(key: str) -> str:
-    return key if key and all(c.isalnum() or c in "_-" for c in key) and key.isascii() else json.dumps(key)
+    return key if key and all(c.isalnum() or c in "_-" for c in key) and key.isascii() else _toml_string(key)
 
 
 def _toml_value(value: Any, where: str) -> str:
@@ -597,7 +623,7 @@ def _toml_value(value: Any, where: str) -> str:
             raise StudyError(f"{where}: expected a finite number, got {value}")
         return repr(float(value))
     if isinstance(value, str):
-        return json.dumps(value, ensure_ascii=False)  # JSON's escapes are TOML's
+        return _toml_string(value)
     if isinstance(value, list | tuple | np.ndarray):
         items = value.tolist() if isinstance(value, np.ndarray) else value
         return "[" + ", ".join(_toml_value(v, f"{where}[{i}]") for i, v in enumerate(items)) + "]"

@@ -16,6 +16,10 @@ detectors : name → direction.
 level, options : the level's name and its options.
 seed : the sampling seed of a stochastic level (absent for deterministic levels, so that realizations
     with the same positions are one task).
+
+The key hashes the task with model arguments and options equal to their defaults left out and the
+defaults listed once (`canonical`), so spelling a default out or leaving it implicit is one task, and a
+default changed between versions is another.
 """
 
 from __future__ import annotations
@@ -97,25 +101,34 @@ def model_defaults() -> dict[str, Any]:
 
 
 def _without_defaults(task: Mapping[str, Any]) -> dict[str, Any]:
-    """``task`` with the model arguments and level options that equal their defaults left out, so that a
-    value written out and the same value left implicit name the same task (the study reader writes every
-    model argument, `compare_levels` only those given)."""
+    """``task`` with the model arguments and level options that equal their defaults left out, and no
+    detectors written as the default detector, so that a value written out and the same value left
+    implicit name the same task (the study reader writes every model argument and the detectors,
+    `compare_levels` only what it is given). The defaults themselves are added under ``defaults``: a
+    default changed in another version of the package makes other tasks."""
     from .levels.base import get_level
 
     out = dict(task)
     defaults = model_defaults()
+    model = dict(out.get("model") or {})
     if out.get("model") is not None:
-        out["model"] = {k: v for k, v in out["model"].items()
+        out["model"] = {k: v for k, v in model.items()
                         if not (k in defaults and _plain(v) == _plain(defaults[k]))}
+    if "detectors" in out and out["detectors"] is None:  # the default: one detector along the laser
+        laser = np.asarray(model.get("laser", defaults["laser"]), dtype=float)
+        out["detectors"] = {"forward": laser / np.linalg.norm(laser)}
+    out["defaults"] = {"model": defaults}
     if out.get("options") is not None and "level" in out:
         level_defaults = get_level(out["level"]).options
         out["options"] = {k: v for k, v in out["options"].items()
                           if not (k in level_defaults and _plain(v) == _plain(level_defaults[k]))}
+        out["defaults"]["options"] = dict(level_defaults)
     return out
 
 
 def canonical(task: Mapping[str, Any]) -> str:
-    """The task's canonical JSON text: sorted keys, no spaces, plain numbers, defaults left out."""
+    """The task's canonical JSON text: sorted keys, no spaces, plain numbers, defaults left out (and
+    listed once under ``defaults``)."""
     return json.dumps(_plain(_without_defaults(task)), sort_keys=True, separators=(",", ":"))
 
 

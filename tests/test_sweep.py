@@ -100,7 +100,7 @@ def test_task_keys_are_stable_across_number_spellings(tmp_path):
     assert keys[0] == keys[1]
 
 
-def test_a_task_from_a_study_file_and_the_same_task_from_python_share_their_key(tmp_path):
+def test_a_task_from_a_study_file_and_the_same_task_from_python_share_their_key(tmp_path, monkeypatch):
     """The study reader writes every model argument (complex dipole, default coupling and detuning); the
     Python API only those given. Values equal to their defaults and real numbers written as complex
     do not change the task, so the two resume each other's files."""
@@ -111,13 +111,26 @@ def test_a_task_from_a_study_file_and_the_same_task_from_python_share_their_key(
                                               f"{get_level('meanfield').options['rtol']!r}\n")
     study = _study(tmp_path, text.replace('kind = "ellipsoid"', 'kind = "ellipsoid"\nseed = 4'))
     (label, r), from_file = next(iter(study_tasks(study)[0].items()))
-    from_python = build_task(from_file["positions"], {"rabi": 1.0}, from_file["run"], from_file["detectors"],
-                             level_table(["meanfield"])["meanfield"], 0, r)
+    # as compare_levels builds it: only the arguments given, the default detectors (None)
+    text = text.replace("[detectors]\nforward = [0, 0, 1]\nside = [1, 0, 0]\n", "")
+    study = _study(tmp_path, text.replace('kind = "ellipsoid"', 'kind = "ellipsoid"\nseed = 4'))
+    (label, r), from_file = next(iter(study_tasks(study)[0].items()))
+    meanfield = level_table(["meanfield"])["meanfield"]
+    from_python = build_task(from_file["positions"], {"rabi": 1.0}, from_file["run"], None, meanfield, 0, r)
     assert from_file["model"] != from_python["model"]  # written differently ...
+    assert from_file["detectors"] is not None and from_python["detectors"] is None
     assert task_key(from_file) == task_key(from_python)  # ... the same task
-    changed = build_task(from_file["positions"], {"rabi": 1.0, "detuning": 0.5}, from_file["run"],
-                         from_file["detectors"], level_table(["meanfield"])["meanfield"], 0, r)
+    changed = build_task(from_file["positions"], {"rabi": 1.0, "detuning": 0.5}, from_file["run"], None,
+                         meanfield, 0, r)
     assert task_key(changed) != task_key(from_python)
+    # a value the level refuses never becomes a task (its failed file would be served to the default)
+    with pytest.raises(ValueError, match="max_steps must be a positive integer"):
+        build_task(from_file["positions"], {}, from_file["run"], None,
+                   {"level": "meanfield", "options": {"max_steps": 200000.0}}, 0, r)
+    # a default changed in another version makes another task
+    before = task_key(from_python)
+    monkeypatch.setitem(get_level("meanfield").options, "rtol", 1e-5)
+    assert task_key(from_python) != before
 
 
 def test_a_study_built_in_python_is_the_study_file_with_the_same_layout(tmp_path):
@@ -350,3 +363,17 @@ def test_executors_describe_themselves_in_plain_english():
     assert Dask(workers=1).name == "dask local cluster (1 worker)"
     assert Dask(workers=3).where == "on a local dask cluster of 3 worker processes"
     assert Dask(scheduler="tcp://10.0.0.5:8786").where == "on the dask scheduler at tcp://10.0.0.5:8786"
+
+
+def test_recorded_level_options_leave_out_those_the_grid_varies(tmp_path):
+    """`shared_parameters`: options common to every task of a label are recorded, those a grid varies
+    are named as varied (their values are the grid's coordinates), and so is a varied model argument."""
+    from beyondmf.sweep import shared_parameters
+
+    text = STUDY.replace('"drive.saturation" = [0.5, 4.0]', '"levels.meanfield.rtol" = [1e-6, 1e-9]')
+    study = _study(tmp_path, text.replace("[levels.meanfield]\n", "[levels.meanfield]\natol = 1e-10\n"))
+    index, labels = study_tasks(study)[:2]
+    shared = shared_parameters(index, labels)
+    assert shared["level_options"]["meanfield"] == {"level": "meanfield", "options": {"atol": 1e-10},
+                                                    "varied": ["rtol"]}
+    assert shared["N"] == 3 and shared["model"]["rabi"] == 1
