@@ -273,9 +273,10 @@ def compare_levels(
         summary[f"{name}_realizations"] = per[name]
     summary.attrs["warnings"] = per.attrs.get("warnings", [])
     summary.attrs["seed"] = int(seed)
-    if len({len(d) for d in draws}) == 1:  # the emitters of every realization, so the file alone suffices
+    shaped = [np.asarray(d, dtype=float).reshape(-1, 3) for d in draws]
+    if len({len(d) for d in shaped}) == 1:  # the emitters of every realization, so the file alone suffices
         summary["positions"] = xr.DataArray(
-            np.stack(draws), dims=("realization", "emitter", "component"),
+            np.stack(shaped), dims=("realization", "emitter", "component"),
             coords={"realization": np.arange(k), "component": ["x", "y", "z"]},
             attrs={"units": "λ0", "long_name": "emitter positions of each realization"})
     return summary

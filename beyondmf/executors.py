@@ -8,6 +8,7 @@ loses only the tasks in flight, and the numbers do not depend on which executor 
 from __future__ import annotations
 
 import threading
+import time
 import warnings
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
@@ -49,6 +50,19 @@ def _leave_ctrl_c_to_the_command() -> None:
     logger = logging.getLogger("distributed.worker.state_machine")
     if _not_a_cancellation not in logger.filters:
         logger.addFilter(_not_a_cancellation)
+
+
+def _worker_plugin():
+    """A dask worker plugin that runs `_leave_ctrl_c_to_the_command` on every worker as it starts."""
+    from distributed.diagnostics.plugin import WorkerPlugin
+
+    class LeaveCtrlCToTheCommand(WorkerPlugin):
+        name = "beyondmf-leave-ctrl-c-to-the-command"
+
+        def setup(self, worker) -> None:
+            _leave_ctrl_c_to_the_command()
+
+    return LeaveCtrlCToTheCommand()
 
 
 class Interrupted(KeyboardInterrupt):
@@ -112,7 +126,7 @@ class Dask:
                     dashboard_address=None,
                 )
                 self._client = Client(self._cluster)
-                self._client.run(_leave_ctrl_c_to_the_command)
+                self._client.register_plugin(_worker_plugin())  # also on a worker its nanny restarts
             else:
                 self._client = _connect(self.scheduler, CONNECT_TIMEOUT_S)
         except BaseException:
@@ -163,34 +177,50 @@ async def _identify(address: str, deadline: float, connection_args: dict) -> Any
         comm.abort()
 
 
-def _reachable(address: str, deadline: float, hint: str) -> None:
+def _reachable(address: str, deadline: float, hint: str) -> float:
     """Fail at once where nothing can listen at a TCP/TLS ``address``; other schemes pass unchecked.
 
     dask's `connect` retries a refused connection until its whole timeout has passed; a plain socket
     says "refused" (nobody listens on that port) or "unknown host" immediately. A host that does not
-    answer at all still costs the deadline, here or in the probe that follows.
+    answer at all costs the deadline, which covers every address the name resolves to. Returns the time
+    left of ``deadline``, for the probe that follows.
     """
     import socket
 
     from distributed.comm.addressing import parse_address, parse_host_port
 
+    end = time.monotonic() + deadline
     try:
         scheme, location = parse_address(address)
         if scheme not in ("tcp", "tls"):
-            return
+            return deadline
         host, port = parse_host_port(location)
     except ValueError as err:
         raise ConnectionError(f"{address!r} is not a scheduler address ({err}); {hint}") from None
     try:
-        socket.create_connection((host, port), timeout=deadline).close()
-    except ConnectionRefusedError:
-        raise ConnectionError(f"nothing listens at {address!r} (connection refused); {hint}") from None
+        candidates = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)
     except socket.gaierror as err:
         raise ConnectionError(f"the host of {address!r} is not known ({err.strerror}); {hint}") from None
-    except TimeoutError:
-        raise ConnectionError(f"no answer from {address!r} within {deadline:g} s; {hint}") from None
-    except OSError as err:
-        raise ConnectionError(f"could not reach {address!r} ({err.strerror or err}); {hint}") from None
+    errors = []
+    for family, kind, proto, _, where in candidates:
+        left = end - time.monotonic()
+        if left <= 0:
+            break
+        try:
+            with socket.socket(family, kind, proto) as sock:
+                sock.settimeout(left)
+                sock.connect(where)
+            return max(end - time.monotonic(), 1.0)
+        except ConnectionRefusedError:
+            errors.append("connection refused")
+        except TimeoutError:
+            errors.append(f"no answer within {deadline:g} s")
+        except OSError as err:
+            errors.append(err.strerror or str(err))
+    if errors and all(e == "connection refused" for e in errors):
+        raise ConnectionError(f"nothing listens at {address!r} (connection refused); {hint}")
+    why = "; ".join(dict.fromkeys(errors)) or f"no answer within {deadline:g} s"
+    raise ConnectionError(f"could not reach {address!r} ({why}); {hint}")
 
 
 def _connect(address: str, deadline: float):
@@ -210,20 +240,20 @@ def _connect(address: str, deadline: float):
     hint = (f"check that {address!r} is the address of a running dask scheduler (tcp://HOST:PORT, as "
             "printed by `dask scheduler`; not a worker's or another service's port) and that this machine "
             "can reach it")
-    _reachable(address, deadline, hint)
+    left = _reachable(address, deadline, hint)
     connection_args = Security().get_connection_args("client")
     box: dict[str, Any] = {}
 
     def attempt() -> None:
         try:
             box["reply"] = asyncio.run(
-                asyncio.wait_for(_identify(address, deadline, connection_args), deadline))
+                asyncio.wait_for(_identify(address, left, connection_args), left))
         except BaseException as err:  # noqa: BLE001 - handed to the waiting thread
             box["error"] = err
 
     thread = threading.Thread(target=attempt, name="beyondmf-dask-probe", daemon=True)
     thread.start()
-    thread.join(deadline + 5)
+    thread.join(left + 5)
     if thread.is_alive() or isinstance(box.get("error"), asyncio.TimeoutError):
         raise ConnectionError(f"no answer from a dask scheduler at {address!r} within {deadline:g} s; {hint}")
     if "error" in box:

@@ -223,20 +223,15 @@ def test_samples_that_all_agree_do_not_make_a_verdict_certain():
     assert list(v.sel(level="meanfield").values) == ["holds", "holds", "holds"]
 
 
-def test_correction_figure_fits_small_corrections_and_labels_the_grid(tmp_path, monkeypatch):
-    """Corrections of a few % fill the panel (they were drawn on a fixed ±1.5 scale), a grid spanning a
-    decade is logarithmic, and a density axis says n·λ0³."""
+def test_correction_figure_fits_its_corrections_and_labels_the_grid(tmp_path, monkeypatch):
+    """The y-range follows the corrections drawn (it was a fixed ±1.5, on which a few % lay flat on
+    zero), never narrower than the tolerance; a grid spanning a decade is logarithmic, and a density
+    axis says n·λ0³."""
     from beyondmf import correction_plots
 
     density = np.array([0.1, 0.5, 2.0])
     rng = np.random.default_rng(0)
     base = 1.0 + rng.normal(0, 0.001, (3, 4))
-    other = base * (1 + 0.03 * density[:, None] / 2.0)
-    per = xr.Dataset(
-        {"emission_rate": (("density", "level", "realization"), np.stack([base, other], axis=1))},
-        coords={"density": density, "level": ["exact", "meanfield"], "realization": np.arange(4)})
-    per["density"].attrs["parameter"] = "geometry.density"
-    s = summarize(per, baseline="exact", tolerance=0.1, observables=["emission_rate"])
     figures = {}
 
     def keep(fig, path):
@@ -244,9 +239,28 @@ def test_correction_figure_fits_small_corrections_and_labels_the_grid(tmp_path, 
         return path
 
     monkeypatch.setattr(correction_plots, "_save", keep)
-    correction_plots.plot_sweep(s, tmp_path)
-    ax = figures["corrections.png"].axes[0]
-    low, high = ax.get_ylim()
-    assert 0.1 < high < 0.12 and low == -high  # the tolerance lines and a 3 % correction, not ±1.5
-    assert ax.get_xscale() == "log" and ax.get_xlabel() == "density n·λ0³"
-    assert figures["values.png"].axes[0].get_xlabel() == "density n·λ0³"
+    limits = {}
+    for largest in (0.03, 0.3):
+        other = base * (1 + largest * density[:, None] / 2.0)
+        per = xr.Dataset(
+            {"emission_rate": (("density", "level", "realization"), np.stack([base, other], axis=1))},
+            coords={"density": density, "level": ["exact", "meanfield"], "realization": np.arange(4)})
+        per["density"].attrs["parameter"] = "geometry.density"
+        s = summarize(per, baseline="exact", tolerance=0.1, observables=["emission_rate"])
+        correction_plots.plot_sweep(s, tmp_path)
+        ax = figures["corrections.png"].axes[0]
+        low, high = ax.get_ylim()
+        assert low == -high
+        limits[largest] = high
+        assert ax.get_xscale() == "log" and ax.get_xlabel() == "density n·λ0³"
+        assert figures["values.png"].axes[0].get_xlabel() == "density n·λ0³"
+    assert limits[0.03] == pytest.approx(0.11)  # the tolerance lines, ±0.1, with a margin
+    assert 0.3 * 1.1 <= limits[0.3] < 0.36  # the largest correction (0.3 and its interval), with a margin
+
+
+def test_compare_levels_takes_flat_position_arrays_and_records_them_as_emitters():
+    """Positions given as flat (3N,) arrays run as (N, 3) ones do, and are saved in that shape."""
+    flat = [np.array([0.0, 0, 0, 0.4, 0, 0]), np.array([0.0, 0, 0, 0, 0.5, 0])]
+    s = compare_levels(flat, ["meanfield"], realizations=2, model={"rabi": 0.5})
+    assert s["positions"].shape == (2, 2, 3)
+    np.testing.assert_array_equal(s["positions"].sel(realization=1), flat[1].reshape(2, 3))
