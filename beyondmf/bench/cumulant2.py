@@ -15,7 +15,7 @@ import jax
 import numpy as np
 
 from .. import geometry
-from ..api import evolve
+from ..api import evolve, steady
 from ..levels.cumulant2 import RHS_FLOPS, cumulant2_args, cumulant2_rhs, product_state
 from ..model import Model
 from . import Row, suite
@@ -70,4 +70,25 @@ def bench_cumulant2(full: bool, machine: Machine) -> list[Row]:
         Row("cumulant2", case, "peak resident memory", _peak_rss_gib(), "GiB",
             "getrusage maxrss of the whole benchmark process"),
     ]
+    rows += _steady_reuse()
     return rows
+
+
+def _steady_reuse(n: int = 6, clouds: int = 4) -> list[Row]:
+    """`steady` on new clouds of one size: the first call compiles, later ones must not (each new cloud
+    recompiled the Newton polish and the observables before, ~5 s at N = 6)."""
+    def one(seed: int) -> float:
+        pos = geometry.ellipsoid_cloud(n, [0.5, 0.5, 0.5], seed=seed, min_distance=0.1)
+        t0 = time.perf_counter()
+        steady(Model(pos, rabi=0.5 + 0.1 * (seed % 100)), "cumulant2")
+        return time.perf_counter() - t0
+
+    first = one(100)
+    later = float(np.median([one(101 + k) for k in range(clouds - 1)]))
+    case = f"steady, new clouds N={n}"
+    return [
+        Row("cumulant2", case, "steady wall time, first call", first, "s", "includes compilation"),
+        Row("cumulant2", case, "steady wall time, a new cloud", later, "s",
+            f"median of {clouds - 1} new clouds and drives, same N: no compilation"),
+        Row("cumulant2", case, "first call / new cloud", first / later, "1", "compile share of a first call"),
+    ]
