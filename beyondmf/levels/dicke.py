@@ -267,7 +267,7 @@ class Dicke(Level):
         y0[0, 0, 0] = 1.0  # the ground state (k = 0), inside the symmetric space
         rhs = dicke_rhs(model.envelope)
         y, info = settle(rhs, _observe, jnp.asarray(y0), args, obs_args, options, solver,
-                         project=hermitian_unit_trace, what="Dicke-space steady state")
+                         project=hermitian_unit_trace, linear=True, what="Dicke-space steady state")
         obs = observe_once(_observe, y, obs_args)
         return Moments(**obs, attrs={"solver": solver, **info})
 

@@ -216,7 +216,7 @@ class Exact(Level):
         for label, bloch in starts.items():
             try:
                 found[label] = settle(rhs, _observe, self._state(bloch), args, obs_args, options, solver,
-                                      project=hermitian_unit_trace,
+                                      project=hermitian_unit_trace, linear=True,
                                       what=f"exact steady state (from the {label} state)")
             except SolveError as err:
                 raise SolveError(
