@@ -272,7 +272,7 @@ def settle(
     y, t, steps, stalled = P(y0), 0.0, 0, 0
     ts = np.array([0.0, chunk])
     res = residual(y)
-    early = None
+    polished = None  # the polish of the current y, where one was tried
     while res > 1e-7 and t < max_time and stalled < 2:
         _, y, st = solve(rhs, observe, y, args, obs_args, ts, options, solver, what=what)
         t += chunk
@@ -281,21 +281,19 @@ def settle(
         new = residual(y)
         stalled = stalled + 1 if (new > 0.5 * res and new < 1e-4) else 0
         res = new
+        polished = None
         if linear and res < 1e-3:
             polished = P(_newton(fns, y, args, tol))
             if residual(polished) < 1e-10:
-                early = polished
-                break
-    if early is not None:
-        return early, {"settle_time": t, "settle_steps": steps, "residual_settled": res,
-                       "residual": residual(early)}
+                return polished, {"settle_time": t, "settle_steps": steps, "residual_settled": res,
+                                  "residual": residual(polished)}
     if res > 1e-4:
         raise SolveError(
             f"{what}: the dynamics had not settled after t = {t:g}/Γ0 (residual {res:.2g}); the system may "
             "have a limit cycle or bistability. Use evolve() to look at the dynamics"
         )
     res_before = res
-    y = P(_newton(fns, y, args, tol))
+    y = polished if polished is not None else P(_newton(fns, y, args, tol))
     res = residual(y)
     if res > res_before:
         raise SolveError(f"{what}: the Newton polish moved away from the settled state (residual {res:.2g})")
