@@ -235,9 +235,18 @@ def test_python_dash_m_entry_point_exit_status(tmp_path):
     assert "Traceback" not in proc.stderr
 
 
+def _default_sigint() -> None:
+    """In the child before it starts: SIGINT as at a terminal, even where the test run itself was
+    started with SIGINT ignored (a background job of a shell), which Python would keep ignoring."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def _started_python_m(args, **kw):
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    return subprocess.Popen([sys.executable, "-m", "beyondmf", *map(str, args)], env=env, text=True, **kw)
+    return subprocess.Popen([sys.executable, "-m", "beyondmf", *map(str, args)], env=env, text=True,
+                            preexec_fn=_default_sigint, **kw)
 
 
 def test_a_level_that_fails_costs_the_others_nothing(tmp_path, capsys):
@@ -337,8 +346,13 @@ def test_an_interrupt_swallowed_by_a_garbage_collector_callback_is_raised_again(
             once.append(1)
             raise KeyboardInterrupt
 
+    import signal
+
     previous = _sys.unraisablehook
     _sys.unraisablehook = cli._redeliver_interrupt(lambda u: seen.append(u.exc_type))
+    # Python's own SIGINT handler, even where the test run was started with SIGINT ignored (then
+    # `_thread.interrupt_main` does nothing)
+    handler = signal.signal(signal.SIGINT, signal.default_int_handler)
     gc.callbacks.append(callback)
     try:
         with pytest.raises(KeyboardInterrupt):
@@ -348,6 +362,7 @@ def test_an_interrupt_swallowed_by_a_garbage_collector_callback_is_raised_again(
     finally:
         gc.callbacks.remove(callback)
         _sys.unraisablehook = previous
+        signal.signal(signal.SIGINT, handler)
     assert once and seen == []  # re-raised, not passed on to be printed
 
 
