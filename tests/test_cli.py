@@ -235,18 +235,21 @@ def test_python_dash_m_entry_point_exit_status(tmp_path):
     assert "Traceback" not in proc.stderr
 
 
-def _default_sigint() -> None:
-    """In the child before it starts: SIGINT as at a terminal, even where the test run itself was
-    started with SIGINT ignored (a background job of a shell), which Python would keep ignoring."""
+def _started_python_m(args, **kw):
+    """``python -m beyondmf ARGS`` with SIGINT as at a terminal, even where the test run itself was
+    started with SIGINT ignored (a background job of a shell): an ignored SIGINT is inherited, and
+    Python then keeps ignoring it. (Set around the start, not in a preexec_fn: forking a threaded
+    process to run Python code can deadlock.)"""
     import signal
 
-    signal.signal(signal.SIGINT, signal.SIG_DFL)
-
-
-def _started_python_m(args, **kw):
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    return subprocess.Popen([sys.executable, "-m", "beyondmf", *map(str, args)], env=env, text=True,
-                            preexec_fn=_default_sigint, **kw)
+    ours = signal.signal(signal.SIGINT, signal.SIG_DFL) if signal.getsignal(signal.SIGINT) == signal.SIG_IGN \
+        else None
+    try:
+        return subprocess.Popen([sys.executable, "-m", "beyondmf", *map(str, args)], env=env, text=True, **kw)
+    finally:
+        if ours is not None:
+            signal.signal(signal.SIGINT, ours)
 
 
 def test_a_level_that_fails_costs_the_others_nothing(tmp_path, capsys):
