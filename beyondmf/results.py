@@ -18,7 +18,6 @@ import time
 from pathlib import Path
 from typing import Any
 
-import dask
 import numpy as np
 import xarray as xr
 
@@ -190,6 +189,8 @@ def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
         # The data are in memory and every file has one writer. Without this, xarray takes a dask
         # distributed lock per file wherever a dask client is active (on a worker: a client of its own
         # and two round trips to the scheduler for every task file, and errors at shutdown).
+        import dask  # here, not at import time: only writing needs it
+
         with dask.config.set(scheduler="synchronous"):
             out.to_netcdf(tmp, engine="h5netcdf")
         with open(tmp, "rb+") as fh:

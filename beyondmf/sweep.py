@@ -116,8 +116,9 @@ def build_task(
     positions at a deterministic level are one task whatever the realization number."""
     from .api import _options
 
+    lvl = get_level(level["level"])
     # refused here, before it becomes a task: a failed task's file is reused by the next run with its key
-    _options(get_level(level["level"]), dict(level["options"]))
+    _options(lvl, dict(level["options"]))
     task = {
         "positions": np.asarray(positions, dtype=float),
         "model": dict(model),
@@ -126,7 +127,7 @@ def build_task(
         "level": level["level"],
         "options": dict(level["options"]),
     }
-    if get_level(level["level"]).stochastic:
+    if lvl.stochastic:
         task["seed"] = realization_seeds(seed, realization)[1]
     return task
 

@@ -101,9 +101,9 @@ def model_defaults() -> dict[str, Any]:
 
 
 def _without_defaults(task: Mapping[str, Any]) -> dict[str, Any]:
-    """``task`` with the model arguments and level options that equal their defaults left out, and no
-    detectors written as the default detector, so that a value written out and the same value left
-    implicit name the same task (the study reader writes every model argument and the detectors,
+    """``task`` with the model arguments and level options that equal their defaults left out, and
+    detectors left at None written out as the default detector, so that a value written out and the same
+    value left implicit name the same task (the study reader writes every model argument and the detectors,
     `compare_levels` only what it is given). The defaults themselves are added under ``defaults``: a
     default changed in another version of the package makes other tasks."""
     from .levels.base import get_level
