@@ -14,7 +14,8 @@ import numpy as np
 
 from ..api import evolve
 from ..geometry import ellipsoid_cloud
-from ..levels.twa import twa_args, twa_drift
+from ..levels._spin_sampling import spin_args as twa_args
+from ..levels._spin_sampling import spin_drift as twa_drift
 from ..model import Model
 from . import Machine, Row, median_time, suite
 
