@@ -15,7 +15,8 @@ import pytest
 
 from beyondmf import Model, evolve, steady
 from beyondmf.geometry import ellipsoid_cloud
-from beyondmf.levels.qsd_product import _exchange_leak, sample_pure
+from beyondmf.levels.qsd_product import LEAK_MEMORY_RATE, _exchange_leak, remembered_leak, sample_pure
+from beyondmf.levels.qsd_product import LEAK_WARNING as LEAK_WARNING_LEVEL
 from tests.helpers_ops import dicke_ladder_rate, lowering
 from tests.test_twa import _dense_cloud, _lindblad_reference, _line
 
@@ -82,41 +83,6 @@ def test_weak_drive_matches_the_coupled_dipole_solution():
     assert ds.attrs["max_exchange_leak"] < 0.01
 
 
-def test_same_seed_gives_the_same_numbers_whatever_the_chunk():
-    m = Model(positions=_line(4, 0.3), rabi=1.0)
-    ts = np.array([0.0, 1.0, 2.0])
-    a = evolve(m, "qsd_product", ts, seed=11, samples=100, chunk=100)
-    b = evolve(m, "qsd_product", ts, seed=11, samples=100, chunk=100)
-    c = evolve(m, "qsd_product", ts, seed=12, samples=100, chunk=100)
-    d = evolve(m, "qsd_product", ts, seed=11, samples=100, chunk=40)
-    assert np.array_equal(a.excited.values, b.excited.values)
-    assert not np.array_equal(a.excited.values, c.excited.values)
-    assert np.allclose(a.excited.values, d.excited.values, rtol=1e-12, atol=1e-14)
-
-
-def test_standard_errors_fall_as_one_over_root_samples():
-    # Central limit theorem (common practice): quadrupling the samples halves the standard error.
-    m = Model(positions=_line(4, 0.3), rabi=1.0)
-    ts = np.array([0.0, 1.0, 2.0])
-    small = evolve(m, "qsd_product", ts, seed=2, samples=200, chunk=100)
-    large = evolve(m, "qsd_product", ts, seed=3, samples=800, chunk=100)
-    for name in ("excited_stderr", "emission_rate_stderr"):
-        late = slice(1, None)
-        ratio = float(small[name].isel(time=late).mean() / large[name].isel(time=late).mean())
-        assert 1.7 < ratio < 2.3, (name, ratio)
-
-
-def test_means_converge_in_dt():
-    # A coarse step shows its bias against the Lindblad equation (scipy), a fine one is within sampling error.
-    m = Model(positions=np.zeros((1, 3)), rabi=3.0)
-    ts = np.linspace(0, 3, 7)
-    exc, _ = _lindblad_reference(m, np.array([[0, 0, -1.0]]), ts)
-    coarse = evolve(m, "qsd_product", ts, seed=5, samples=2000, dt=0.25)
-    fine = evolve(m, "qsd_product", ts, seed=5, samples=2000, dt=0.02)
-    assert np.max(np.abs(coarse.excited.values[:, 0] - exc[:, 0])) > 5 * np.max(fine.excited_stderr.values)
-    assert np.all(np.abs(fine.excited.values[:, 0] - exc[:, 0]) < 4 * fine.excited_stderr.values[:, 0] + 1e-3)
-
-
 def test_exchange_leak_is_the_norm_of_the_exchange_outside_product_states():
     # Independent construction with dense 2^N vectors: H_J = Σ_{i≠j} J_ij σ_i⁺σ_j⁻ acting on a pure product
     # state, minus its projection onto the product states' tangent space span{|ψ⟩, |ψ_1⊥ ψ_2 …⟩, …}
@@ -151,6 +117,33 @@ def test_exchange_leak_is_the_norm_of_the_exchange_outside_product_states():
     J2 = J * J - np.diag(np.diag(J * J))
     got = float(_exchange_leak(Y, {"J2": J2})["exchange_leak2"][0])
     assert got == pytest.approx(np.vdot(residual, residual).real, rel=1e-10)
+
+
+def test_remembered_leak_is_the_exponential_memory_integral():
+    # γ∫_0^t e^{−γ(t−s)} f(s) ds for f = c and f = s (elementary calculus; exact for the linear interpolation
+    # between observation times that the function uses): c(1 − e^{−γt}) and t − (1 − e^{−γt})/γ.
+    g = LEAK_MEMORY_RATE
+    t = np.array([0.0, 0.3, 1.0, 2.5, 7.0])
+    assert np.allclose(remembered_leak(np.full(5, 0.4), t, steady=False), 0.4 * (1 - np.exp(-g * t)))
+    assert np.allclose(remembered_leak(t, t, steady=False), t - (1 - np.exp(-g * t)) / g)
+    assert np.array_equal(remembered_leak([0.3], [0.0, 1.0], steady=True), [0.3])
+
+
+def test_inverted_dense_cluster_decays_as_the_lindblad_equation():
+    # Four inverted emitters in a sphere of radius 0.2 λ0 (vector couplings), against the dense Lindblad
+    # equation (scipy). Measured (docs/qsd_product.md §5): 1.3 % of the peak emission rate (mean field 17 %),
+    # instantaneous exchange_leak 0.16 during the burst but 0.065 remembered, so no warning. Asserted: the
+    # documented 3 % of the peak plus 4σ.
+    n = 4
+    m = Model(positions=ellipsoid_cloud(n, 0.2, seed=2, min_distance=0.1))
+    ts = np.linspace(0, 3, 31)
+    _, rate = _lindblad_reference(m, np.tile([0, 0, 1.0], (n, 1)), ts)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UserWarning)
+        ds = evolve(m, "qsd_product", ts, initial="excited", seed=1, samples=2000)
+    P, se = ds.emission_rate.values, ds.emission_rate_stderr.values
+    assert np.all(np.abs(P - rate) < 0.03 * rate.max() + 4 * se)
+    assert ds.attrs["max_exchange_leak"] > LEAK_WARNING_LEVEL > ds.attrs["max_exchange_leak_remembered"]
 
 
 def test_strong_exchange_is_reported_and_warned():

@@ -135,46 +135,6 @@ def test_single_emitter_dynamics_follow_lindblad():
     assert np.all(err < 4 * ds.excited_stderr.values[:, 0] + 1e-3)
 
 
-def test_same_seed_gives_the_same_numbers():
-    m = Model(positions=_line(4, 0.3), rabi=1.0)
-    ts = np.array([0.0, 1.0, 2.0])
-    a = evolve(m, "twa", ts, seed=11, samples=100, chunk=100)
-    b = evolve(m, "twa", ts, seed=11, samples=100, chunk=100)
-    c = evolve(m, "twa", ts, seed=12, samples=100, chunk=100)
-    assert np.array_equal(a.excited.values, b.excited.values)
-    assert np.array_equal(a.g2_total.values, b.g2_total.values)
-    assert not np.array_equal(a.excited.values, c.excited.values)
-    # each sample draws from its own key: the chunking changes only the rounding of the sums
-    d = evolve(m, "twa", ts, seed=11, samples=100, chunk=40)
-    assert np.allclose(a.excited.values, d.excited.values, rtol=1e-12, atol=1e-14)
-
-
-def test_standard_errors_fall_as_one_over_root_samples():
-    # Central limit theorem (common practice): quadrupling the samples halves the standard error.
-    m = Model(positions=_line(4, 0.3), rabi=1.0)
-    ts = np.array([0.0, 1.0, 2.0])
-    small = evolve(m, "twa", ts, seed=2, samples=200, chunk=100)
-    large = evolve(m, "twa", ts, seed=3, samples=800, chunk=100)
-    for name in ("excited_stderr", "emission_rate_stderr"):
-        late = slice(1, None)
-        ratio = float(small[name].isel(time=late).mean() / large[name].isel(time=late).mean())
-        assert 1.7 < ratio < 2.3, (name, ratio)
-
-
-def test_means_converge_in_dt():
-    # Stochastic Heun: for one emitter the means obey the deterministic Heun scheme (linear drift), whose
-    # error falls as dt²; a coarse step shows its bias against scipy, a fine step is within sampling error.
-    m = Model(positions=np.zeros((1, 3)), rabi=3.0)
-    ts = np.linspace(0, 3, 7)
-    exc, _ = _lindblad_reference(m, np.array([[0, 0, -1.0]]), ts)
-    coarse = evolve(m, "twa", ts, seed=5, samples=2000, dt=0.25, chunk=1000)
-    fine = evolve(m, "twa", ts, seed=5, samples=2000, dt=0.02, chunk=1000)
-    err_c = np.max(np.abs(coarse.excited.values[:, 0] - exc[:, 0]))
-    err_f = np.abs(fine.excited.values[:, 0] - exc[:, 0])
-    assert err_c > 5 * np.max(fine.excited_stderr.values)
-    assert np.all(err_f < 4 * fine.excited_stderr.values[:, 0] + 1e-3)
-
-
 def test_independent_decay_with_coherent_couplings_keeps_the_ground_state_dark():
     # The ground state is an eigenstate of the flip-flop Hamiltonian ΣJ_ij σ_i⁺σ_j⁻ and dark for Γ = 1
     # (common practice). The exchange terms conserve Σz per sample, so the total excitation stays 0.
