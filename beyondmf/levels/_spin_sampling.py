@@ -13,6 +13,7 @@ The state of a chunk of S samples is one (N, 3S) array, columns [x (S) | y (S) |
 from __future__ import annotations
 
 import functools
+from abc import abstractmethod
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any, ClassVar
@@ -369,8 +370,9 @@ class SpinSampling(Level):
     stochastic = True
 
     @staticmethod
-    def initial_samples(bloch, keys):  # pragma: no cover - every subclass implements it
-        raise NotImplementedError
+    @abstractmethod
+    def initial_samples(bloch, keys):
+        """Samples (N, 3, S) of the product state with Bloch vectors ``bloch`` (N, 3), one per key."""
 
     def check(self, model: Model) -> None:
         if model.complex_couplings:

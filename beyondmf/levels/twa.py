@@ -128,10 +128,9 @@ class TruncatedWigner(SpinSampling):
         vac = int(run_args["options"]["vacuum_check"])
         attrs["vacuum_check"] = vac
         if vac:
-            diagnostics.update(self._vacuum_control(vac, attrs, **{k: v for k, v in run_args.items()
-                                                                  if k not in ("options", "sums", "count")}))
+            diagnostics.update(self._vacuum_control(vac, attrs, run_args))
 
-    def _vacuum_control(self, count, attrs, model, seed, chunk, args, obs_args, t_obs, n_sub, steady):
+    def _vacuum_control(self, count, attrs, run_args):
         """The same equations, steps and observation times for ``count`` samples of the undriven ground
         state, whose exact total excitation is 0 at all times (|g…g⟩ is stationary for any J, Γ).
 
@@ -139,12 +138,14 @@ class TruncatedWigner(SpinSampling):
         the diagnostics ``vacuum_excitation`` and ``vacuum_excitation_stderr`` (per time), with a warning
         when it is beyond 4 standard errors. Own random streams (2, 3 of each sample key).
         """
+        model, args, steady = run_args["model"], run_args["args"], run_args["steady"]
         run = _runner(model.envelope, steady, self.equations)
         quiet = dict(args, omega=jnp.zeros_like(args["omega"]))
         ground = jnp.tile(jnp.array([0.0, 0.0, -1.0]), (model.n, 1))
-        width = min(count, chunk)
-        tot, failed = _sampled_sums(run, sample_initial, ground, seed, count, width, quiet, obs_args, t_obs,
-                                    n_sub, steady, streams=(2, 3))
+        width = min(count, run_args["chunk"])
+        tot, failed = _sampled_sums(run, sample_initial, ground, run_args["seed"], count, width, quiet,
+                                    run_args["obs_args"], run_args["t_obs"], run_args["n_sub"], steady,
+                                    streams=(2, 3))
         good = count - failed
         attrs["vacuum_check_failed"] = failed
         if good < 2:
