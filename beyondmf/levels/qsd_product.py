@@ -35,6 +35,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from .._notes import warn as _note
+from ..memory import require
 from ._spin_sampling import SpinEquations, SpinSampling
 from .base import register
 
@@ -143,6 +144,7 @@ class ProductStateDiffusion(SpinSampling):
     initial_samples = staticmethod(sample_pure)
 
     def level_args(self, model, args: dict[str, Any]) -> dict[str, Any]:
+        require(8 * model.n**2, f"the squared exchange matrix of 'qsd_product' for {model.n} emitters")
         J = np.asarray(model.J.real, dtype=float)
         return dict(args, J2=jnp.asarray(J * J - np.diag(np.diag(J * J))))
 
