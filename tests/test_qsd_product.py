@@ -17,7 +17,7 @@ from beyondmf import Model, evolve, steady
 from beyondmf.geometry import ellipsoid_cloud
 from beyondmf.levels.qsd_product import LEAK_MEMORY_RATE, _exchange_leak, remembered_leak, sample_pure
 from beyondmf.levels.qsd_product import LEAK_WARNING as LEAK_WARNING_LEVEL
-from tests.helpers_ops import dicke_ladder_rate, lowering
+from tests.helpers_ops import dicke_ladder_rate, lowering, sparse_steady_density
 from tests.test_twa import _dense_cloud, _lindblad_reference, _line
 
 
@@ -71,16 +71,36 @@ def test_weak_drive_matches_the_coupled_dipole_solution():
     # J. Ruostekoski, J. Javanainen, PRA 55, 513 (1997): to first order in Ω,
     # 0 = (iΔ − ½)β_i − (i/2)Ω_i − (i/2)Σ_{j≠i}(2J_ij − iΓ_ij)β_j. At s = 2Ω² = 0.005 the saturation
     # correction is below 1 %; the tolerance is that plus 4σ of sampling error. (The same cloud as the
-    # weak-drive test of twa, which fails it.)
+    # weak-drive test of twa, which fails it.) The level also says that its g2 is not to be trusted here.
     pos = ellipsoid_cloud(8, 0.5, seed=7, min_distance=0.2)
     m = Model(positions=pos, rabi=0.05, detuning=0.5)
     n = m.n
     A = (1j * m.detuning - 0.5) * np.eye(n) - 0.5j * (2 * m.J - 1j * (m.Gamma - np.eye(n)))
     beta = np.linalg.solve(A, 0.5j * m.rabi_sites)
-    ds = steady(m, "qsd_product", seed=3, samples=200, settle_time=20.0, window=20.0, window_points=40)
+    with pytest.warns(UserWarning, match="hardly fluctuate"):
+        ds = steady(m, "qsd_product", seed=3, samples=200, settle_time=20.0, window=20.0, window_points=40)
     got, se = ds.coherence.values, ds.coherence_stderr.values
     assert np.all(np.abs(got - beta) < 4 * se + 0.01 * np.abs(beta))
-    assert ds.attrs["max_exchange_leak"] < 0.01
+
+
+def test_weak_drive_g2_is_the_product_state_value_and_the_level_says_so():
+    # Two emitters 0.5 λ0 apart (ê along the line), Ω = 0.1: the exact steady g2_total from the sparse
+    # Lindblad null vector (tests/helpers_ops.py, scipy) is 0.545; product-state trajectories hardly
+    # fluctuate at this drive, so the level gives the product-state value (0.32, measured, docs §5), and
+    # it must warn about exactly that. The check asserts the documented failure, so that a change that
+    # fixes or worsens it is seen.
+    m = Model(positions=_line(2, 0.5), rabi=0.1, laser=(0, 0, 1))
+    rho, sm = sparse_steady_density(m)
+    sp = [a.conj().T for a in sm]
+    G = m.Gamma
+    P = sum(G[i, j] * np.trace(sp[i] @ sm[j] @ rho) for i in range(2) for j in range(2)).real
+    four = sum(G[i, j] * G[k, l] * np.trace(sp[i] @ sp[k] @ sm[l] @ sm[j] @ rho)
+               for i in range(2) for j in range(2) for k in range(2) for l in range(2)).real
+    exact = four / P**2
+    with pytest.warns(UserWarning, match="g2 and g2_total are the product-state"):
+        ds = steady(m, "qsd_product", seed=1, samples=200, settle_time=20.0, window=20.0, window_points=40)
+    got = float(ds.g2_total)
+    assert abs(got - exact) > 0.3 * exact > 50 * float(ds.g2_total_stderr)
 
 
 def test_exchange_leak_is_the_norm_of_the_exchange_outside_product_states():
@@ -131,26 +151,25 @@ def test_remembered_leak_is_the_exponential_memory_integral():
 
 def test_inverted_dense_cluster_decays_as_the_lindblad_equation():
     # Four inverted emitters in a sphere of radius 0.2 λ0 (vector couplings), against the dense Lindblad
-    # equation (scipy). Measured (docs/qsd_product.md §5): 1.3 % of the peak emission rate (mean field 17 %),
-    # instantaneous exchange_leak 0.16 during the burst but 0.065 remembered, so no warning. Asserted: the
-    # documented 3 % of the peak plus 4σ.
+    # equation (scipy). Measured (docs/qsd_product.md §4): within 2.3 % of the peak emission rate (mean
+    # field 17 %), but 12 % low in relative terms in the late tail, which the exchange_leak warning flags
+    # (0.31 Γ0 per excitation late). Asserted: the documented 3 % of the peak plus 4σ, and the warning.
     n = 4
     m = Model(positions=ellipsoid_cloud(n, 0.2, seed=2, min_distance=0.1))
     ts = np.linspace(0, 3, 31)
     _, rate = _lindblad_reference(m, np.tile([0, 0, 1.0], (n, 1)), ts)
-    with warnings.catch_warnings():
-        warnings.simplefilter("error", UserWarning)
+    with pytest.warns(UserWarning, match="per excitation"):
         ds = evolve(m, "qsd_product", ts, initial="excited", seed=1, samples=2000)
     P, se = ds.emission_rate.values, ds.emission_rate_stderr.values
     assert np.all(np.abs(P - rate) < 0.03 * rate.max() + 4 * se)
-    assert ds.attrs["max_exchange_leak"] > LEAK_WARNING_LEVEL > ds.attrs["max_exchange_leak_remembered"]
+    assert ds.attrs["max_exchange_leak_remembered"] > LEAK_WARNING_LEVEL
 
 
 def test_strong_exchange_is_reported_and_warned():
     m = Model(positions=_line(2, 0.15), rabi=2.0, laser=(0, 0, 1))
-    with pytest.warns(UserWarning, match="out of product states"):
+    with pytest.warns(UserWarning, match="per excitation"):
         ds = evolve(m, "qsd_product", np.linspace(0, 2, 5), seed=1, samples=50)
-    assert ds.attrs["max_exchange_leak"] > 0.5
+    assert ds.attrs["max_exchange_leak"] > 1.0  # Γ0 per excitation (docs §4: 1.6 late, 2.1 at most)
     assert ds.exchange_leak.dims == ("time",) and ds.exchange_leak.values[0] == 0.0
 
 
