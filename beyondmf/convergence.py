@@ -33,10 +33,17 @@ CRITERION = (
 
 
 def assess(
-    values: xr.DataArray, errors: xr.DataArray | None, dim: str, tolerance: float = 0.05
+    values: xr.DataArray,
+    errors: xr.DataArray | None,
+    dim: str,
+    tolerance: float = 0.05,
+    change_errors: xr.DataArray | None = None,
 ) -> xr.Dataset:
     """The convergence table of ``values`` along ``dim`` (ordered from coarse to fine).
 
+    ``change_errors`` (along ``dim``, labelled by the finer point of each step): the standard error of
+    each change X_i − X_{i−1}, where it is known better than from independent errors (paired realizations
+    of a sweep, whose common draw-to-draw spread cancels in the change); None: √(σ_i² + σ_{i−1}²).
     Returns a Dataset along ``dim``: ``value`` (the value, or its largest magnitude over time/detector),
     ``error``, ``change`` (Δ_i / max|X_i|), ``bound`` (b_i) and the scalar ``converged``.
     """
@@ -48,7 +55,10 @@ def assess(
     other = [d for d in values.dims if d != dim]
     scale = abs(values).max(other) if other else abs(values)
     diff = values.diff(dim, label="upper")
-    sig = np.sqrt(err**2 + err.shift({dim: 1}) ** 2).isel({dim: slice(1, None)})
+    if change_errors is None:
+        sig = np.sqrt(err**2 + err.shift({dim: 1}) ** 2).isel({dim: slice(1, None)})
+    else:
+        sig = change_errors.fillna(0.0)
     dmax = abs(diff).max(other) if other else abs(diff)
     smax = sig.max(other) if other else sig
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -101,20 +111,30 @@ def assess_sweep(
     """Convergence tables along a sweep's grid dimension ``dim`` for one level of a sweep result.
 
     Works on per-realization results (averaged here: mean ± spread/√K and sampling errors in quadrature)
-    and on `beyondmf.compare.summarize` output (``X`` and ``X_uncertainty``).
+    and on `beyondmf.compare.summarize` output (``X`` and ``X_uncertainty``). With per-realization results
+    the draws are the same at every grid value, so the error of each change is that of the paired
+    differences over realizations (their spread/√K, and the sampling errors of both points in quadrature):
+    the draw-to-draw spread of the value itself, common to both points, does not enter the criterion.
     """
     out = {}
     sub = ds.sel(level=level)
     for name in observables:
+        de = None
         if f"{name}_uncertainty" in sub:
             x, e = sub[name], sub[f"{name}_uncertainty"]
         else:
             k = sub.sizes.get("realization", 1)
             x = sub[name].mean("realization")
             spread = sub[name].var("realization", ddof=1) / k if k > 1 else 0.0
-            samp = (sub[f"{name}_stderr"] ** 2).sum("realization") / k**2 if f"{name}_stderr" in sub else 0.0
+            se2 = sub[f"{name}_stderr"] ** 2 if f"{name}_stderr" in sub else 0.0 * sub[name]
+            samp = se2.sum("realization") / k**2
             e = np.sqrt(spread + samp) * xr.ones_like(x)
-        out[name] = assess(x, e, dim, tolerance)
+            if k > 1:
+                step = sub[name].diff(dim, label="upper")
+                paired = step.var("realization", ddof=1) / k
+                pair_samp = (se2 + se2.shift({dim: 1})).isel({dim: slice(1, None)}).sum("realization") / k**2
+                de = np.sqrt(paired + pair_samp)
+        out[name] = assess(x, e, dim, tolerance, change_errors=de)
     return out
 
 

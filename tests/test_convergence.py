@@ -31,6 +31,27 @@ def test_criterion_on_constructed_series():
     assert float(t["bound"][-1]) == pytest.approx(expected)
 
 
+def test_paired_realizations_do_not_count_their_common_spread_against_convergence():
+    # Two draws whose values differ by 0.4 but that change by the same 1e-4 when the samples double: the
+    # paired change is exact, so the series has converged (common practice: paired differences); judged
+    # as unpaired means with the draw-to-draw spread as their error it would not be.
+    from beyondmf.convergence import assess_sweep
+
+    base = np.array([[0.9, 1.3]])  # (samples, realization) after broadcasting
+    values = base + np.array([[0.0], [1e-4], [2e-4]])
+    ds = xr.Dataset(
+        {"emission_rate": (("level", "samples", "realization"), values[None]),
+         "emission_rate_stderr": (("level", "samples", "realization"), np.full((1, 3, 2), 1e-5))},
+        coords={"level": ["twa"], "samples": [100, 200, 400]},
+    )
+    tables = assess_sweep(ds, "samples", "twa", observables=("emission_rate",), tolerance=0.01)
+    table = tables["emission_rate"]
+    assert bool(table["converged"])
+    # the value's own error still carries the draw-to-draw spread: √(var(0.9, 1.3)/2) = 0.2
+    assert float(table["error"][-1]) == pytest.approx(0.2, rel=1e-3)
+    assert float(table["bound"][-1]) == pytest.approx((1e-4 + 2 * np.sqrt(2 * 2e-10 / 4)) / 1.1002, rel=1e-9)
+
+
 def test_time_series_are_judged_by_their_sup_norm():
     t_ax = np.linspace(0, 1, 5)
     x = xr.DataArray([np.sin(t_ax), np.sin(t_ax) * 1.001], dims=("dt", "time"), coords={"dt": [0.1, 0.05]})
