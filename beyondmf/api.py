@@ -61,8 +61,8 @@ def _options(level: Level, given: dict[str, Any]) -> dict[str, Any]:
 def _seed(level: Level, seed):
     if seed is None and level.stochastic:
         return int(np.random.SeedSequence().entropy % 2**31)
-    if seed is not None and not is_count(seed, 0):
-        raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
+    if seed is not None and not (is_count(seed, 0) and seed < 2**63):
+        raise ValueError(f"seed must be a non-negative integer below 2**63, got {seed!r}")
     return None if seed is None else int(seed)
 
 

@@ -93,8 +93,8 @@ def assemble(
             ("time",),
             _ratio_stderr(m.rate4, m.rate, se["rate4"], se["rate"], m.cov.get("rate", 0.0)),
         )
-    for name, (dims, arr) in m.diagnostics.items():
-        data[name] = (dims, arr)
+    for name, (dims, arr, *described) in m.diagnostics.items():
+        data[name] = (dims, arr, *described)
 
     coords = {
         "atom": np.arange(model.n),

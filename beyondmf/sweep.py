@@ -74,6 +74,8 @@ EXTRA_OBSERVABLES = ("intensity_coherent", "intensity_incoherent", "excited_mean
                      "peak_time", "emitted")
 _SIZE_KEYS = {"gaussian": "widths", "ellipsoid": "semi_axes", "box": "sides"}
 _RANDOM = tuple(_SIZE_KEYS)
+# The attribute `role` of a level's own diagnostic kept by `stack` (vacuum_excitation, exchange_leak, …).
+DIAGNOSTIC = "level diagnostic"
 # Paths whose value is derived into another parameter before the study is validated.
 _DERIVED = ("geometry.density", "drive.saturation")
 
@@ -149,7 +151,9 @@ def stack(
     to ``excited_mean`` (mean population) because N may differ across the grid. A failed task (its
     level refused the model, or the solve failed) gives NaN and its message in ``failures``. The variable
     ``warnings`` counts the warnings each task's level issued about its own run (NaN for a failed task),
-    and the attribute ``warnings`` lists them as "(indices) (task KEY): message".
+    and the attribute ``warnings`` lists them as "(indices) (task KEY): message". A level's own
+    diagnostics that have the shape of the emission rate (per time, or scalars of a steady state) are
+    kept too, NaN for the other levels.
     """
     template = next((results[task_key(t)] for t in index.values()
                      if results[task_key(t)].attrs.get("task_status", "done") == "done"
@@ -161,10 +165,17 @@ def stack(
     stochastic = any(f"{n}_stderr" in results[task_key(t)] for t in index.values() for n in names)
     if stochastic:
         names += [f"{n}_stderr" for n in names]
+    # a level's own diagnostics over time (twa's vacuum_excitation, qsd_product's exchange_leak, …): kept,
+    # NaN for the levels that do not report them
+    shape_of = template["emission_rate"].dims
+    diagnostics = sorted({n for t in index.values() for n, v in results[task_key(t)].data_vars.items()
+                          if n not in names and n != "warnings" and v.dims == shape_of
+                          and np.issubdtype(v.dtype, np.floating)})
     outer = [len(v) for _, v in grid] + [len(labels), realizations]
     arrays, failures, said = {}, [], []
-    for name in names + ["excited_mean"]:
-        base = template["emission_rate"] if name == "excited_mean" else template[name.removesuffix("_stderr")]
+    for name in names + diagnostics + ["excited_mean"]:
+        base = (template["emission_rate"] if name in diagnostics or name == "excited_mean"
+                else template[name.removesuffix("_stderr")])
         arrays[name] = (base.dims, np.full(outer + list(base.shape), np.nan, dtype=base.dtype))
     counts = np.full(outer, np.nan)
     for key_tuple, task in index.items():
@@ -173,7 +184,7 @@ def stack(
             failures.append(f"{key_tuple} (task {task_key(task)}): {ds.attrs.get('error', 'failed')}")
             continue
         idx = tuple(key_tuple[:-2]) + (labels.index(key_tuple[-2]), key_tuple[-1])
-        for name in names:
+        for name in names + diagnostics:
             if name in ds:
                 arrays[name][1][idx] = ds[name].values
         arrays["excited_mean"][1][idx] = ds["excited"].mean("atom").values
@@ -190,6 +201,9 @@ def stack(
     out = xr.Dataset(data, coords=coords)
     for n in names:
         out[n].attrs = dict(template[n.removesuffix("_stderr")].attrs)
+    for n in diagnostics:
+        first = next(results[task_key(t)][n] for t in index.values() if n in results[task_key(t)])
+        out[n].attrs = dict(first.attrs, role=DIAGNOSTIC)
     out["excited_mean"].attrs.update(long_name="mean excited population over emitters")
     out["warnings"] = xr.DataArray(counts, dims=dims, coords={d: coords[d] for d in dims}).assign_attrs(
         long_name="warnings the level issued about this run (its own diagnostics; NaN: the task failed)")
@@ -800,6 +814,9 @@ def run_sweep(
         for name in ("excited_mean", "n_emitters"):
             if name in per:
                 ds[name] = per[name].mean("realization") if "realization" in per[name].dims else per[name]
+        for name, var in per.data_vars.items():  # the levels' diagnostics, per realization
+            if var.attrs.get("role") == DIAGNOSTIC:
+                ds[name] = var
     else:
         ds = per
     ds.attrs.update(

@@ -63,3 +63,15 @@ def test_means_converge_in_dt(level):
     err_f = np.abs(fine.excited.values[:, 0] - exc[:, 0])
     assert err_c > 5 * np.max(fine.excited_stderr.values)
     assert np.all(err_f < 4 * fine.excited_stderr.values[:, 0] + 1e-3)
+
+
+@pytest.mark.parametrize("level", LEVELS)
+def test_the_step_taken_is_recorded_beside_the_largest_allowed(level):
+    # report times 0.25 apart: dt = 5 allows one step per interval, dt = 0.1 needs three of 0.0833
+    m = Model(positions=np.zeros((1, 3)), rabi=1.0)
+    ts = np.linspace(0, 2, 9)
+    coarse = evolve(m, level, ts, samples=4, dt=5.0)
+    fine = evolve(m, level, ts, samples=4, dt=0.1)
+    assert coarse.attrs["dt"] == 5.0 and coarse.attrs["step_largest"] == pytest.approx(0.25)
+    assert coarse.attrs["steps"] == 8
+    assert fine.attrs["step_largest"] == pytest.approx(0.25 / 3) and fine.attrs["steps"] == 24

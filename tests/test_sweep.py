@@ -377,3 +377,16 @@ def test_recorded_level_options_leave_out_those_the_grid_varies(tmp_path):
     assert shared["level_options"]["meanfield"] == {"level": "meanfield", "options": {"atol": 1e-10},
                                                     "varied": ["rtol"]}
     assert shared["N"] == 3 and shared["model"]["rabi"] == 1
+
+
+def test_a_levels_own_diagnostics_reach_the_comparison_per_realization(tmp_path):
+    # qsd_product's exchange_leak (docs/qsd_product.md §4) is kept in results.nc of a comparison, per
+    # realization, NaN for the level that does not report it, with its units.
+    text = STUDY.replace("[levels.meanfield]", "[levels.meanfield]\n[levels.qsd_product]\nsamples = 20")
+    text = text.replace('"drive.saturation" = [0.5, 4.0]', "") + '[compare]\nbaseline = "meanfield"\n'
+    ds = run_sweep(_study(tmp_path, text), tmp_path / "out", progress=False)
+    leak = ds["exchange_leak"]
+    assert leak.attrs["units"] == "Γ0 per excitation" and "realization" in leak.dims
+    assert np.all(np.isnan(leak.sel(level="meanfield").values))
+    assert np.all(np.isfinite(leak.sel(level="qsd_product").values))
+    assert "exchange_leak" in bm_load(tmp_path / "out" / "results.nc")

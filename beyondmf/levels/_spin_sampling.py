@@ -377,8 +377,9 @@ class SpinSampling(Level):
     def check(self, model: Model) -> None:
         if model.complex_couplings:
             raise ValueError(
-                f"level '{self.name}' needs real couplings J and Γ (a real dipole ê, or real custom "
-                "matrices); use a linearly polarised dipole"
+                f"level '{self.name}' needs real couplings J and Γ; this model has complex custom "
+                "matrices (free-space couplings of any dipole, circular ones included, are real): pass "
+                "real symmetric J and Γ, or use 'meanfield', 'cumulant2' or an exact level"
             )
 
     @staticmethod
@@ -444,6 +445,8 @@ class SpinSampling(Level):
             "samples": samples,
             "samples_failed": failed,
             "dt": dt,
+            # the intervals between report times are split into equal steps of at most dt
+            "step_largest": float(np.max(np.diff(np.asarray(t_obs)) / np.asarray(n_sub))),
             "steps": int(np.sum(np.asarray(n_sub))),
             "chunk": chunk,
             "calculus": self.calculus,

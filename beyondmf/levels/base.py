@@ -68,8 +68,9 @@ class Moments:
     ``cov["rate"] = cov(rate4, rate)``. They also set ``coherent_field`` (T, D), the unbiased estimate of
     |Σ_j w_dj ⟨σ_j⁻⟩|² (`levels._sampling`; the square of the mean coherences is biased by their sampling
     variance), with ``stderr["coherent_field"]`` and ``cov["field2,coherent"]``; without it the coherent
-    part is computed from ``coherence``. ``diagnostics`` maps extra data-variable names to (dims, array);
-    ``attrs`` adds attributes (solver statistics, residuals, warnings).
+    part is computed from ``coherence``. ``diagnostics`` maps extra data-variable names to (dims, array)
+    or (dims, array, attrs), attrs with ``units`` and ``long_name``; ``attrs`` adds attributes (solver
+    statistics, residuals, warnings).
     """
 
     excited: Any
@@ -81,7 +82,7 @@ class Moments:
     coherent_field: Any = None
     stderr: dict[str, Any] = field(default_factory=dict)
     cov: dict[str, Any] = field(default_factory=dict)
-    diagnostics: dict[str, tuple[tuple[str, ...], Any]] = field(default_factory=dict)
+    diagnostics: dict[str, tuple] = field(default_factory=dict)
     attrs: dict[str, Any] = field(default_factory=dict)
 
     KEYS: ClassVar[tuple[str, ...]] = ("excited", "coherence", "field2", "field4", "rate", "rate4")
@@ -93,7 +94,7 @@ class Moments:
             coherent_field=None if self.coherent_field is None else np.asarray(self.coherent_field),
             stderr={k: np.asarray(v) for k, v in self.stderr.items()},
             cov={k: np.asarray(v) for k, v in self.cov.items()},
-            diagnostics={k: (d, np.asarray(v)) for k, (d, v) in self.diagnostics.items()},
+            diagnostics={k: (d[0], np.asarray(d[1]), *d[2:]) for k, d in self.diagnostics.items()},
             attrs=dict(self.attrs),
         )
 

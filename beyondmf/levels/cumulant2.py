@@ -215,8 +215,9 @@ _DIAGNOSTICS = {
 
 def _moments(obs, attrs) -> Moments:
     obs = {k: np.asarray(v) for k, v in obs.items()}
-    diagnostics = {k: (("time",), obs.pop(k)) for k in _DIAGNOSTICS}
-    worst = {k: float(np.max(v)) for k, (_, v) in diagnostics.items()}
+    diagnostics = {k: (("time",), obs.pop(k), {"units": "1", "long_name": text})
+                   for k, text in _DIAGNOSTICS.items()}
+    worst = {k: float(np.max(d[1])) for k, d in diagnostics.items()}
     bad = {k: v for k, v in worst.items() if v > VIOLATION_TOL}
     if bad:
         text = ", ".join(f"{k} = {v:.3g}" for k, v in bad.items())

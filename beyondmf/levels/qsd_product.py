@@ -156,7 +156,10 @@ class ProductStateDiffusion(SpinSampling):
         leak = np.sqrt(np.maximum(run_args["sums"]["exchange_leak2"] / run_args["count"], 0.0))
         excitation = np.sum(np.asarray(means["excited"]), axis=-1)
         per = np.where(excitation > 0, leak / np.where(excitation > 0, excitation, 1.0), 0.0)
-        diagnostics["exchange_leak"] = (("time",), per)
+        diagnostics["exchange_leak"] = (("time",), per, {
+            "units": "Γ0 per excitation",
+            "long_name": "rate at which the exchange J leaves product states, ‖(1 − P_T)H_J|ψ⟩‖ (rms over "
+                         "trajectories) over the mean total excitation (docs/qsd_product.md §4)"})
         attrs["max_exchange_leak"] = float(np.max(per))
         held = remembered_leak(per, np.asarray(run_args["t_obs"]), run_args["steady"])
         attrs["max_exchange_leak_remembered"] = float(np.max(held))

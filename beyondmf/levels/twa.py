@@ -70,7 +70,8 @@ def _population_check(excited, stderr, sigmas: float = 3.0):
             "in a dense cloud; see docs/twa.md). Compare with 'cumulant2', 'qsd_product' or an exact level",
             stacklevel=5,
         )
-    return {"population_violation": (("time",), worst)}
+    about = f"worst excursion of an excited population outside [0, 1] beyond {sigmas:g} standard errors"
+    return {"population_violation": (("time",), worst, {"units": "1", "long_name": about})}
 
 
 @jax.jit
@@ -165,4 +166,7 @@ class TruncatedWigner(SpinSampling):
                 "'qsd_product' or an exact level",
                 stacklevel=5,
             )
-        return {"vacuum_excitation": (("time",), mean), "vacuum_excitation_stderr": (("time",), err)}
+        about = "total excitation Σρ_ee of the undriven ground state of this cloud in the same equations"
+        return {"vacuum_excitation": (("time",), mean, {"units": "1", "long_name": about + " (exact: 0)"}),
+                "vacuum_excitation_stderr": (("time",), err, {"units": "1",
+                                                              "long_name": "standard error of " + about})}
