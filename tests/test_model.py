@@ -139,5 +139,5 @@ def test_times_and_seed_mistakes_are_explained():
     m = bm.Model([[0, 0, 0]], rabi=1.0)
     with pytest.raises(ValueError, match=r"1-D sequence.*linspace\(0, 5"):
         bm.evolve(m, "meanfield", 5.0)
-    with pytest.raises(ValueError, match="seed must be a non-negative integer below 2\*\*63, got 'a'"):
+    with pytest.raises(ValueError, match=r"seed must be a non-negative integer below 2\*\*63, got 'a'"):
         bm.evolve(m, "twa", [0, 1], seed="a", samples=4)
