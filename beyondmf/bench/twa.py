@@ -14,8 +14,7 @@ import numpy as np
 
 from ..api import evolve
 from ..geometry import ellipsoid_cloud
-from ..levels._spin_sampling import spin_args as twa_args
-from ..levels._spin_sampling import spin_drift as twa_drift
+from ..levels._spin_sampling import spin_args, spin_drift
 from ..model import Model
 from . import Machine, Row, median_time, suite
 
@@ -33,8 +32,8 @@ def twa_suite(full: bool, machine: Machine) -> list[Row]:
     model = _cloud(n)
 
     # batched drift as a fraction of the matmul peak
-    args = twa_args(model)
-    drift = jax.jit(twa_drift(model.envelope))
+    args = spin_args(model)
+    drift = jax.jit(spin_drift(model.envelope))
     Y = jnp.asarray(np.random.default_rng(0).choice([-1.0, 1.0], size=(n, 3 * samples)))
     t = median_time(lambda: drift(0.0, Y, args))
     flops = 8 * n * n * samples

@@ -21,7 +21,8 @@ dropped; correlations between emitters are only the classical ones between traje
 (measured, docs/qsd_product.md): the undriven and weakly driven dense cloud, one emitter, the superradiant
 burst of an inverted cloud (Dicke peak within 1 %). Where not: strongly driven clusters with strong exchange
 (errors like mean field's or larger, 18–29 % of the peak emission rate for the dense chains of the docs),
-and photon statistics at weak drive (g2 there is mean field's; a warning says so). Every run reports
+the slow tail of a dense inverted cluster (12–37 % in relative terms), and photon statistics at weak drive
+(g2 there is mean field's; a warning says so). Every run reports
 ``exchange_leak``, the rate per excitation at which the exchange takes the trajectories out of product
 states, and warns when its average over the last 2/Γ0 exceeds 0.05 Γ0.
 """

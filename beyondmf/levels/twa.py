@@ -42,16 +42,11 @@ from ._spin_sampling import (
     _sampled_sums,
     auto_dt,
     noise_factor,
-    spin_args,
-    spin_drift,
 )
 from .base import OptionError, is_count, register
 
-__all__ = ["TruncatedWigner", "auto_dt", "noise_factor", "sample_initial", "twa_args", "twa_drift"]
-
-# The batched drift and its arrays are those of every sampled spin level (levels._spin_sampling).
-twa_drift = spin_drift
-twa_args = spin_args
+# The batched drift and its arrays (spin_drift, spin_args) are those of every sampled spin level.
+__all__ = ["TruncatedWigner", "auto_dt", "noise_factor", "sample_initial"]
 
 
 def _population_check(excited, stderr, sigmas: float = 3.0):
