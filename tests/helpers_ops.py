@@ -117,3 +117,13 @@ def sparse_steady_density(model):
     rhs[0] = 1.0
     rho = spla.spsolve(L.tocsc(), rhs).reshape(d, d)
     return 0.5 * (rho + rho.conj().T), sm
+
+
+def coupled_dipole(model):
+    """0 = (iΔ − ½)β_i − (i/2)Ω_i − (i/2)Σ_{j≠i}(2J_ij − iΓ_ij)β_j (J. Ruostekoski, J. Javanainen,
+    Phys. Rev. A 55, 513 (1997), from memory; re-derived from conventions.md): the coherences β_i = ⟨σ_i⁻⟩
+    to first order in Ω, from numpy's dense solver."""
+    n = model.n
+    off = 2 * model.J - 1j * (model.Gamma - np.eye(n))
+    A = (1j * model.detuning - 0.5) * np.eye(n) - 0.5j * off
+    return np.linalg.solve(A, 0.5j * model.rabi_sites)

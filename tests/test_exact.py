@@ -10,7 +10,14 @@ import scipy.linalg
 import beyondmf as bm
 from beyondmf import Model
 from beyondmf.levels import Probes
-from tests.helpers_ops import SM, dense_liouvillian, product_density, site_op, sparse_steady_density
+from tests.helpers_ops import (
+    SM,
+    coupled_dipole,
+    dense_liouvillian,
+    product_density,
+    site_op,
+    sparse_steady_density,
+)
 
 
 def test_one_emitter_steady_state_and_antibunching():
@@ -86,10 +93,7 @@ def test_weak_drive_matches_coupled_dipoles():
     """To first order in Ω, β solves 0 = (iΔ − ½)β_i − (i/2)Ω_i − (i/2)Σ_{j≠i}(2J_ij − iΓ_ij)β_j
     (J. Ruostekoski and J. Javanainen, Phys. Rev. A 55, 513 (1997); statement from memory)."""
     m = cluster(4, rabi=1e-3, detuning=0.5)
-    off = m.J * 2 - 1j * m.Gamma
-    np.fill_diagonal(off, 0)
-    a = (1j * m.detuning - 0.5) * np.eye(m.n) - 0.5j * off
-    beta = np.linalg.solve(a, 0.5j * m.rabi_sites)
+    beta = coupled_dipole(m)
     ds = bm.steady(m, "exact")
     # relative corrections are O(Ω²) = 1e-6
     np.testing.assert_allclose(ds.coherence.values, beta, rtol=1e-4)

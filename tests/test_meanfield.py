@@ -7,7 +7,7 @@ from scipy.special import roots_legendre
 
 import beyondmf as bm
 from beyondmf.integrate import SolveError
-from tests.helpers_ops import dense_liouvillian
+from tests.helpers_ops import coupled_dipole, dense_liouvillian
 
 
 @pytest.mark.parametrize("rabi, detuning", [(1.0, 0.0), (0.4, -0.7), (3.0, 2.0)])
@@ -33,15 +33,6 @@ def test_single_emitter_dynamics_matches_lindblad_with_scipy():
     rho = sol.y.T.reshape(-1, 2, 2)
     np.testing.assert_allclose(ds.excited[:, 0], rho[:, 1, 1].real, atol=1e-8)
     np.testing.assert_allclose(ds.coherence[:, 0], rho[:, 1, 0], atol=1e-8)  # ⟨σ⁻⟩ = ρ_eg
-
-
-def coupled_dipole(model):
-    """0 = (iΔ − ½)β_i − (i/2)Ω_i − (i/2)Σ_{j≠i}(2J_ij − iΓ_ij)β_j (J. Ruostekoski, J. Javanainen,
-    Phys. Rev. A 55, 513 (1997), from memory; re-derived from conventions.md)."""
-    N = model.n
-    G = model.Gamma - np.eye(N)
-    A = (1j * model.detuning - 0.5) * np.eye(N) - 0.5j * (2 * model.J - 1j * G)
-    return np.linalg.solve(A, 0.5j * model.rabi_sites)
 
 
 def test_weak_drive_matches_coupled_dipole_solution():
