@@ -116,21 +116,30 @@ def _slices(s: xr.Dataset, dims: list[str]) -> list[tuple[dict, str]]:
     return out
 
 
+# Line styles of the grid points in a time panel (the colour is the level's).
+_STYLES = ("-", "--", ":", "-.")
+
+
 def _values_figure(s: xr.Dataset, path: Path) -> Path:
     panels = _panels(s)
     grid = _grid_dims(s)
     fig, axes = _subplots(len(panels))
+    styled = False  # one time panel carries the legend of the grid points' line styles
     for ax, (name, det) in zip(axes, panels, strict=True):
         for k, lv in enumerate(s["level"].values):
             v, u = _pick(s, name, det, lv)
             if "time" in v.dims:
                 t = s["time"].values
-                for sel, tag in _slices(s, grid):
+                for j, (sel, tag) in enumerate(_slices(s, grid)):
                     vv, uu = v.sel(sel).transpose("time"), u.sel(sel).transpose("time")
-                    col = _color(s, lv) if not tag else None
-                    line = ax.plot(t, vv, label=f"{_name(s, lv)}{tag}", color=col)[0]
-                    ax.fill_between(t, vv - uu, vv + uu, alpha=0.25, color=line.get_color())
+                    ls = _STYLES[j % len(_STYLES)]
+                    label = tag.removeprefix(", ") if (tag and k == 0) else None
+                    ax.plot(t, vv, color=_color(s, lv), ls=ls, label=label)
+                    ax.fill_between(t, vv - uu, vv + uu, alpha=0.2, color=_color(s, lv))
                 ax.set_xlabel("time (1/Γ0)")
+                if grid and k == len(s["level"]) - 1 and not styled and (name, det) != panels[0]:
+                    ax.legend(fontsize=7, title="line style", title_fontsize=7)
+                    styled = True
             elif grid:
                 x = s[grid[0]].values
                 for sel, tag in _slices(s, grid[1:]):

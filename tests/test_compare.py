@@ -258,6 +258,28 @@ def test_correction_figure_fits_its_corrections_and_labels_the_grid(tmp_path, mo
     assert 0.3 * 1.1 <= limits[0.3] < 0.36  # the largest correction (0.3 and its interval), with a margin
 
 
+def test_values_figure_colours_curves_by_level_and_styles_them_by_grid_point(tmp_path, monkeypatch):
+    """Time curves of a sweep: one colour per level (as in every other panel and legend), one line style
+    per grid point, with a legend of the styles; before, each curve took the next colour of the cycle."""
+    from beyondmf import correction_plots
+
+    figures = {}
+    monkeypatch.setattr(correction_plots, "_save", lambda fig, path: figures.setdefault(path.name, fig))
+    t = np.linspace(0, 1, 4)
+    rate = np.ones((2, 2, 3, 4)) * (1 + t)  # (density, level, realization, time)
+    per = xr.Dataset({"emission_rate": (("density", "level", "realization", "time"), rate),
+                      "emitted": (("density", "level", "realization"), rate[..., -1])},
+                     coords={"density": [3.0, 0.3], "level": ["exact", "qsd_product"],
+                             "realization": np.arange(3), "time": t})
+    s = summarize(per, baseline="exact", tolerance=0.1, observables=["emitted", "emission_rate"])
+    correction_plots.plot_sweep(s, tmp_path)
+    ax = next(a for a in figures["values.png"].axes if a.get_xlabel() == "time (1/Γ0)")
+    lines = ax.get_lines()
+    assert [ln.get_color() for ln in lines] == ["C0", "C0", "C1", "C1"]
+    assert [ln.get_linestyle() for ln in lines] == ["-", "--", "-", "--"]
+    assert [x.get_text() for x in ax.get_legend().get_texts()] == ["density=3", "density=0.3"]
+
+
 def test_compare_levels_takes_flat_position_arrays_and_records_them_as_emitters():
     """Positions given as flat (3N,) arrays run as (N, 3) ones do, and are saved in that shape."""
     flat = [np.array([0.0, 0, 0, 0.4, 0, 0]), np.array([0.0, 0, 0, 0, 0.5, 0])]
