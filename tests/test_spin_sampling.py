@@ -23,6 +23,24 @@ def _quiet_evolve(*args, **kw):
 
 
 @pytest.mark.parametrize("level", LEVELS)
+def test_bad_options_seeds_and_complex_couplings_are_refused(level):
+    m = Model(positions=np.zeros((1, 3)), rabi=1.0)
+    with pytest.raises(ValueError, match="samples"):
+        evolve(m, level, [0, 1], samples=1)
+    with pytest.raises(ValueError, match="dt"):
+        evolve(m, level, [0, 1], dt=-0.1)
+    with pytest.raises(ValueError, match="max_failed"):
+        evolve(m, level, [0, 1], max_failed=2)
+    with pytest.raises(ValueError, match="seed must be a non-negative integer below 2"):
+        evolve(m, level, [0, 1], samples=4, seed=2**70)  # was a raw OverflowError from JAX
+    J = np.array([[0, 0.1j], [-0.1j, 0]])
+    G = np.array([[1, 0.2j], [-0.2j, 1]])
+    cplx = Model(positions=np.array([[0, 0, 0], [0.3, 0, 0]]), coupling=(J, G))
+    with pytest.raises(ValueError, match="real couplings"):
+        evolve(cplx, level, [0, 1])
+
+
+@pytest.mark.parametrize("level", LEVELS)
 def test_same_seed_gives_the_same_numbers(level):
     m = Model(positions=_line(4, 0.3), rabi=1.0)
     ts = np.array([0.0, 1.0, 2.0])

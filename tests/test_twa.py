@@ -196,19 +196,6 @@ def test_failure_is_an_error_that_says_so():
         evolve(m, "twa", [0.0, 1.0, 2.0], seed=1, samples=10, dt=0.1, chunk=100)
 
 
-def test_bad_options_are_refused():
-    m = Model(positions=np.zeros((1, 3)), rabi=1.0)
-    with pytest.raises(ValueError, match="samples"):
-        evolve(m, "twa", [0, 1], samples=1)
-    with pytest.raises(ValueError, match="dt"):
-        evolve(m, "twa", [0, 1], dt=-0.1)
-    with pytest.raises(ValueError, match="max_failed"):
-        evolve(m, "twa", [0, 1], max_failed=2)
-    J = np.array([[0, 0.1j], [-0.1j, 0]])
-    G = np.array([[1, 0.2j], [-0.2j, 1]])
-    cplx = Model(positions=np.array([[0, 0, 0], [0.3, 0, 0]]), coupling=(J, G))
-    with pytest.raises(ValueError, match="real couplings"):
-        evolve(cplx, "twa", [0, 1])
 
 
 @pytest.mark.slow
