@@ -1,6 +1,8 @@
 """Warnings a level issues about its own run, recorded for the result's ``warnings`` attribute.
 
-A level calls `warn` instead of `warnings.warn`. The warning is issued as usual, under the caller's filters.
+A level calls `warn` instead of `warnings.warn`. The warning is issued as usual, under the caller's filters,
+and it points at the first line outside this package (the user's script or notebook cell, whether the run
+came through `evolve`, a sweep or `compare_levels`).
 Inside `collecting()`, which `evolve` and `steady` open around the level, its message is also appended to
 the list that `collecting` yields. The list lives in a context variable, so concurrent runs in other threads
 (a dask worker with several threads) keep their own messages, and the global warning filters are never
@@ -9,21 +11,34 @@ touched.
 
 from __future__ import annotations
 
+import sys
 import warnings
 from collections.abc import Iterator
 from contextlib import contextmanager
 from contextvars import ContextVar
+from pathlib import Path
 
+_PACKAGE_DIR = str(Path(__file__).resolve().parent)
 _collected: ContextVar[list[str] | None] = ContextVar("beyondmf_run_warnings", default=None)
 
 
-def warn(message: str, stacklevel: int = 2) -> None:
-    """Issue ``message`` as a UserWarning (``stacklevel`` as for `warnings.warn`, counted from the caller)
-    and record it for the current run, once."""
+def warn(message: str) -> None:
+    """Issue ``message`` as a UserWarning located at the first caller outside this package, and record it
+    for the current run, once."""
     got = _collected.get()
     if got is not None and message not in got:
         got.append(message)
-    warnings.warn(message, UserWarning, stacklevel=stacklevel + 1)
+    warnings.warn(message, UserWarning, stacklevel=_outside_package())
+
+
+def _outside_package() -> int:
+    """The `warnings.warn` stacklevel, counted from `warn`, of the innermost frame outside this package."""
+    frame = sys._getframe(2)  # the caller of `warn`; stacklevel 2 counted from `warn`
+    level = 2
+    while frame is not None and frame.f_code.co_filename.startswith(_PACKAGE_DIR):
+        frame = frame.f_back
+        level += 1
+    return level
 
 
 @contextmanager

@@ -7,10 +7,12 @@ loses only the tasks in flight, and the numbers do not depend on which executor 
 
 from __future__ import annotations
 
+import sys
 import threading
 import time
 import warnings
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -284,10 +286,29 @@ def make_executor(workers: int | None = None, scheduler: str | None = None) -> I
     return Dask(workers=workers, scheduler=scheduler)
 
 
+@contextmanager
 def _progress_bar(total: int, initial: int, enabled: bool):
+    """A tqdm bar over tasks. While it is shown, what is written to ``sys.stderr`` (warnings of the levels,
+    above all) goes through ``tqdm.write``, above the bar instead of through the middle of its line;
+    recorded warnings (``warnings.catch_warnings(record=True)``, ``pytest.warns``) stay recorded."""
     from tqdm.auto import tqdm
+    from tqdm.contrib import DummyTqdmFile
 
-    return tqdm(total=total, initial=initial, unit="task", desc="tasks", disable=not enabled, smoothing=0.1)
+    with tqdm(total=total, initial=initial, unit="task", desc="tasks", disable=not enabled,
+              smoothing=0.1) as bar:
+        if not enabled:
+            yield bar
+            return
+        stderr = sys.stderr
+        sys.stderr = DummyTqdmFile(stderr)
+        try:
+            yield bar
+        finally:
+            leftover = sys.stderr
+            sys.stderr = stderr
+            if isinstance(leftover, DummyTqdmFile) and leftover._buf:
+                stderr.write("".join(leftover._buf))
+                leftover._buf = []
 
 
 def execute(

@@ -102,8 +102,7 @@ def pick_solver(name: str, size: int, stiffness: float) -> str:
         _note(
             f"stiff equations: coupling rates up to {stiffness:.3g} Γ0 (close emitters) force explicit "
             f"steps of ~{1 / stiffness:.2g}/Γ0 with solver {name!r}; draw the cloud with a larger "
-            "min_distance, or use solver='kvaerno5' for small N",
-            stacklevel=4,
+            "min_distance, or use solver='kvaerno5' for small N"
         )
     return name
 
@@ -301,8 +300,7 @@ def settle(
         _note(
             f"{what}: the Newton polish stopped at residual {res:.2g} (target {tol:g}); the steady state is "
             "accurate to about this residual divided by the slowest relaxation rate. Lower rtol and atol "
-            "to settle closer before the polish",
-            stacklevel=4,
+            "to settle closer before the polish"
         )
     return y, {"settle_time": t, "settle_steps": steps, "residual_settled": res_before, "residual": res}
 

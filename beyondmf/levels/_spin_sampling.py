@@ -319,8 +319,7 @@ def _settling(tot: dict[str, np.ndarray], count: int, points: int, level: str) -
             f"{level} steady: the second half of the averaging window differs from the first by "
             f"{mean[0]:.3g} ± {err[0]:.2g} in Σρ_ee and {mean[1]:.3g} ± {err[1]:.2g} in the emission rate "
             f"({out['steady_drift_sigmas']:.1f} standard errors): the samples had not settled; raise "
-            "settle_time or window, or look at the approach with evolve",
-            stacklevel=4,
+            "settle_time or window, or look at the approach with evolve"
         )
     return out
 

@@ -224,8 +224,7 @@ def _moments(obs, attrs) -> Moments:
         _note(
             f"cumulant2 produced unphysical moments ({text}; tolerance {VIOLATION_TOL:g}): the second-order "
             "truncation is not trustworthy here (dense or strongly driven cloud); compare with 'exact' at "
-            "small N, or use a sampling level",
-            stacklevel=4,
+            "small N, or use a sampling level"
         )
     attrs = {**attrs, **{f"max_{k}": v for k, v in worst.items()}}
     return Moments(**obs, diagnostics=diagnostics, attrs=attrs)

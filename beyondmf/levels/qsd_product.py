@@ -171,8 +171,7 @@ class ProductStateDiffusion(SpinSampling):
                 f"{1 / LEAK_MEMORY_RATE:g}/Γ0 (diagnostic exchange_leak). Above {LEAK_WARNING:g} the "
                 "measured relative errors of the emission rate, the incoherent intensities and g2 reach "
                 "5–35 % (docs/qsd_product.md §4); one-body means at weak drive are not affected. Compare "
-                "with 'cumulant2' or an exact level",
-                stacklevel=5,
+                "with 'cumulant2' or an exact level"
             )
         model = run_args["model"]
         off = ~np.eye(model.n, dtype=bool)
@@ -185,6 +184,5 @@ class ProductStateDiffusion(SpinSampling):
                 "g2_total are the product-state (mean-field) values and miss the pair correlations that the "
                 "couplings build (docs/qsd_product.md §5: two emitters 0.5 λ0 apart, g2_total 0.32 against "
                 "0.55). Linear-response quantities are exact; for photon statistics use 'cumulant2' or an "
-                "exact level",
-                stacklevel=5,
+                "exact level"
             )

@@ -62,8 +62,7 @@ def _population_check(excited, stderr, sigmas: float = 3.0):
         _note(
             f"twa: excited populations leave [0, 1] by up to {worst.max():.3g} (beyond {sigmas:g} standard "
             "errors): the truncated Wigner equations are not trustworthy for this cloud (collective decay "
-            "in a dense cloud; see docs/twa.md). Compare with 'cumulant2', 'qsd_product' or an exact level",
-            stacklevel=5,
+            "in a dense cloud; see docs/twa.md). Compare with 'cumulant2', 'qsd_product' or an exact level"
         )
     about = f"worst excursion of an excited population outside [0, 1] beyond {sigmas:g} standard errors"
     return {"population_violation": (("time",), worst, {"units": "1", "long_name": about})}
@@ -158,8 +157,7 @@ class TruncatedWigner(SpinSampling):
                 f"{mean[worst]:.3g} ± {err[worst]:.2g} in the same equations (diagnostic vacuum_excitation): "
                 "their known error at this density and collective decay (docs/twa.md §7). Excitations and "
                 "rates of that size in the results are not reliable; compare with 'cumulant2', "
-                "'qsd_product' or an exact level",
-                stacklevel=5,
+                "'qsd_product' or an exact level"
             )
         about = "total excitation Σρ_ee of the undriven ground state of this cloud in the same equations"
         return {"vacuum_excitation": (("time",), mean, {"units": "1", "long_name": about + " (exact: 0)"}),

@@ -1,0 +1,65 @@
+"""Where a level's warnings land: at the user's line, recorded in the result, and above a progress bar.
+
+Common practice (Python's `warnings` module documentation): a library warning should point at the caller's
+code, not at the library's internals, so that the user sees which of their lines caused it.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import warnings
+
+import numpy as np
+
+import beyondmf as bm
+from beyondmf.compare import compare_levels
+
+# two emitters 0.01 λ0 apart: coupling rates of ~10⁵ Γ0, far above the stiffness an explicit solver is
+# warned about
+CLOSE_PAIR = np.array([[0.0, 0.0, 0.0], [0.0, 0.0, 0.01]])
+STIFF = "stiff equations"
+
+
+def _caught(fn):
+    with warnings.catch_warnings(record=True) as got:
+        warnings.simplefilter("always")
+        result = fn()
+    return result, [w for w in got if STIFF in str(w.message)]
+
+
+def test_a_warning_from_evolve_points_at_the_callers_line_and_is_recorded():
+    model = bm.Model(CLOSE_PAIR, rabi=0.1)
+    ds, got = _caught(lambda: bm.evolve(model, "meanfield", np.linspace(0, 0.01, 3), solver="tsit5"))
+    assert got, "the explicit solver on a stiff pair should warn"
+    assert {w.filename for w in got} == {__file__}
+    assert any(STIFF in text for text in ds.attrs["warnings"])
+
+
+def test_a_warning_under_compare_levels_points_at_the_callers_line():
+    def run():
+        return compare_levels(CLOSE_PAIR, {"mf": {"level": "meanfield", "solver": "tsit5"}}, baseline="mf",
+                              model={"rabi": 0.1}, times=np.linspace(0, 0.01, 3))
+
+    _, got = _caught(run)
+    assert got
+    assert {w.filename for w in got} == {__file__}
+
+
+def test_warnings_print_above_the_progress_bar_not_inside_its_line():
+    # in a fresh interpreter: pytest records warnings itself, so they would never reach stderr here
+    script = (
+        "import numpy as np\n"
+        "from beyondmf.compare import compare_levels\n"
+        f"compare_levels(np.array({CLOSE_PAIR.tolist()}),\n"
+        "               {'mf': {'level': 'meanfield', 'solver': 'tsit5'}}, baseline='mf',\n"
+        "               model={'rabi': 0.1}, times=np.linspace(0, 0.01, 3), progress=True)\n"
+    )
+    err = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True,
+                         timeout=300).stderr
+    lines = [line.split("\r")[-1] for line in err.split("\n") if STIFF in line]
+    assert lines, err
+    # the bar redraws itself with carriage returns; a warning written into it would follow "tasks: …|"
+    # on the same line. Written through tqdm, it is a line of its own that starts with the location.
+    assert all(line.startswith("<string>:") for line in lines), err
+    assert "tasks" in err  # the bar was shown
