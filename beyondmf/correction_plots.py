@@ -120,6 +120,14 @@ def _slices(s: xr.Dataset, dims: list[str]) -> list[tuple[dict, str]]:
 _STYLES = ("-", "--", ":", "-.")
 
 
+def _style_legend(ax, tags: list[str]) -> None:
+    """The legend of the grid points' line styles, drawn in grey so that it names no level; kept as an
+    artist, so the level legend may share the panel."""
+    handles = [plt.Line2D([], [], color="0.4", ls=_STYLES[j % len(_STYLES)], label=tag)
+               for j, tag in enumerate(tags)]
+    ax.add_artist(ax.legend(handles=handles, fontsize=7, title="line style", title_fontsize=7))
+
+
 def _values_figure(s: xr.Dataset, path: Path) -> Path:
     panels = _panels(s)
     grid = _grid_dims(s)
@@ -130,15 +138,14 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
             v, u = _pick(s, name, det, lv)
             if "time" in v.dims:
                 t = s["time"].values
-                for j, (sel, tag) in enumerate(_slices(s, grid)):
+                for j, (sel, _tag) in enumerate(_slices(s, grid)):
                     vv, uu = v.sel(sel).transpose("time"), u.sel(sel).transpose("time")
                     ls = _STYLES[j % len(_STYLES)]
-                    label = tag.removeprefix(", ") if (tag and k == 0) else None
-                    ax.plot(t, vv, color=_color(s, lv), ls=ls, label=label)
+                    ax.plot(t, vv, color=_color(s, lv), ls=ls, label=_name(s, lv) if j == 0 else None)
                     ax.fill_between(t, vv - uu, vv + uu, alpha=0.2, color=_color(s, lv))
                 ax.set_xlabel("time (1/Γ0)")
-                if grid and k == len(s["level"]) - 1 and not styled and (name, det) != panels[0]:
-                    ax.legend(fontsize=7, title="line style", title_fontsize=7)
+                if grid and k == len(s["level"]) - 1 and not styled:
+                    _style_legend(ax, [tag.removeprefix(", ") for _sel, tag in _slices(s, grid)])
                     styled = True
             elif grid:
                 x = s[grid[0]].values
@@ -167,6 +174,7 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
     tol, base = s.attrs["tolerance"], s.attrs["baseline"]
     others = [lv for lv in s["level"].values if str(lv) != base]
     fig, axes = _subplots(len(panels))
+    styled = False  # one time panel carries the legend of the grid points' line styles
     for ax, (name, det) in zip(axes, panels, strict=True):
         top = tol  # the y-range: the drawn corrections and intervals, at least the tolerance, at most ±_CLIP
         for k, lv in enumerate(others):
@@ -176,26 +184,38 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
             # no relative correction where the baseline is zero (e.g. t = 0 from the ground state): not drawn
             defined = s[f"{name}_verdict"].sel(sel) != "undefined"
             c, lo, hi = (a.where(defined) for a in (c, lo, hi))
+            col = _color(s, lv)
             if "time" in c.dims:
+                # one curve per grid point, in the level's colour, one line style per grid point
                 x = s["time"].values
                 ax.set_xlabel("time (1/Γ0)")
-                if grid:  # one grid dimension and a time axis: the curves at the grid's first value
-                    c, lo, hi = (a.isel({grid[0]: 0}) for a in (c, lo, hi))
-            elif grid:
-                x = s[grid[0]].values
-                ax.set_xlabel(_axis_label(s, grid[0]))
-                if _log_axis(x):
-                    ax.set_xscale("log")
+                curves = []
+                for j, (point, tag) in enumerate(_slices(s, grid)):
+                    label = _name(s, lv) if j == 0 else None
+                    style = _STYLES[j % len(_STYLES)]
+                    curves.append(tuple(a.sel(point).transpose("time").values for a in (c, lo, hi))
+                                  + (style, label, tag.removeprefix(", ")))
             else:
-                x = np.array([k])
-                ax.set_xticks(range(len(others)), [str(o) for o in others])
-            col = _color(s, lv)
-            ax.plot(x, np.clip(np.atleast_1d(c), -_CLIP, _CLIP), marker="o", label=_name(s, lv), color=col)
-            lo_c, hi_c = (np.clip(np.atleast_1d(a), -_CLIP, _CLIP) for a in (lo, hi))
-            ax.fill_between(x, lo_c, hi_c, alpha=0.25, color=col)
-            drawn = np.abs(np.concatenate([np.atleast_1d(a).ravel() for a in (c, lo, hi)]))
-            drawn = drawn[np.isfinite(drawn)]
-            top = max(top, float(drawn.max()) if drawn.size else 0.0)
+                if grid:
+                    x = s[grid[0]].values
+                    ax.set_xlabel(_axis_label(s, grid[0]))
+                    if _log_axis(x):
+                        ax.set_xscale("log")
+                else:
+                    x = np.array([k])
+                    ax.set_xticks(range(len(others)), [str(o) for o in others])
+                curves = [(c.values, lo.values, hi.values, "-", _name(s, lv), "")]
+            for cc, ll, hh, style, label, _tag in curves:
+                ax.plot(x, np.clip(np.atleast_1d(cc), -_CLIP, _CLIP), marker="o" if style == "-" else None,
+                        ls=style, label=label, color=col)
+                lo_c, hi_c = (np.clip(np.atleast_1d(a), -_CLIP, _CLIP) for a in (ll, hh))
+                ax.fill_between(x, lo_c, hi_c, alpha=0.25 if style == "-" else 0.12, color=col)
+                drawn = np.abs(np.concatenate([np.atleast_1d(a).ravel() for a in (cc, ll, hh)]))
+                drawn = drawn[np.isfinite(drawn)]
+                top = max(top, float(drawn.max()) if drawn.size else 0.0)
+            if grid and "time" in c.dims and not styled and k == len(others) - 1:
+                _style_legend(ax, [tag for *_rest, tag in curves])
+                styled = True
         for y in (-tol, tol):
             ax.axhline(y, color="k", ls=":", lw=1)
         ax.axhline(0, color="k", lw=0.5)

@@ -278,6 +278,11 @@ def test_values_figure_colours_curves_by_level_and_styles_them_by_grid_point(tmp
     assert [ln.get_color() for ln in lines] == ["C0", "C0", "C1", "C1"]
     assert [ln.get_linestyle() for ln in lines] == ["-", "--", "-", "--"]
     assert [x.get_text() for x in ax.get_legend().get_texts()] == ["density=3", "density=0.3"]
+    # the corrections figure draws every grid point too (it drew only the first before)
+    ax = next(a for a in figures["corrections.png"].axes if a.get_xlabel() == "time (1/Γ0)")
+    curves = [ln for ln in ax.get_lines() if len(ln.get_xdata()) == t.size]
+    assert [(ln.get_color(), ln.get_linestyle()) for ln in curves] == [("C1", "-"), ("C1", "--")]
+    assert [x.get_text() for x in ax.get_legend().get_texts()] == ["density=3", "density=0.3"]
 
 
 def test_compare_levels_takes_flat_position_arrays_and_records_them_as_emitters():
