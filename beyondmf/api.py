@@ -19,17 +19,29 @@ __all__ = ["evolve", "steady", "initial_bloch"]
 
 def initial_bloch(model: Model, initial) -> np.ndarray:
     """Per-emitter Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩) of the product state named by ``initial``."""
-    if isinstance(initial, str):
-        if initial == "ground":
-            return np.tile([0.0, 0.0, -1.0], (model.n, 1))
-        if initial == "excited":
-            return np.tile([0.0, 0.0, 1.0], (model.n, 1))
-        raise ValueError(f"initial must be 'ground', 'excited' or Bloch vectors, got {initial!r}")
-    s = np.asarray(initial, dtype=float)
+    named = {"ground": [0.0, 0.0, -1.0], "excited": [0.0, 0.0, 1.0]}
+    usage = ("'ground', 'excited', one of these per emitter, or Bloch vectors ((N, 3), or one (3,) for "
+             "every emitter)")
+    if initial is None or isinstance(initial, str):
+        if initial in named:
+            return np.tile(named[initial], (model.n, 1))
+        raise ValueError(f"initial must be {usage}, got {initial!r}")
+    if isinstance(initial, list | tuple) and initial and all(isinstance(x, str) for x in initial):
+        unknown = sorted({x for x in initial if x not in named})
+        if unknown or len(initial) != model.n:
+            bad = f" with {', '.join(map(repr, unknown))}" if unknown else ""
+            raise ValueError(f"initial as names per emitter needs {model.n} of 'ground'/'excited', got "
+                             f"{len(initial)}{bad}")
+        return np.array([named[x] for x in initial])
+    try:
+        s = np.asarray(initial, dtype=float)
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"initial must be {usage}, got {initial!r}") from err
     if s.shape == (3,):
         s = np.tile(s, (model.n, 1))
     if s.shape != (model.n, 3):
-        raise ValueError(f"initial Bloch vectors must have shape ({model.n}, 3) or (3,), got {s.shape}")
+        raise ValueError(f"initial Bloch vectors must have shape ({model.n}, 3) or (3,), got {s.shape}; "
+                         f"initial may also be {usage}")
     if not np.all(np.isfinite(s)):
         raise ValueError("initial Bloch vectors contain NaN or infinite values")
     length = np.linalg.norm(s, axis=1)
@@ -95,7 +107,8 @@ def evolve(
     model : the emitters, couplings and drive.
     level : a registered level name (`beyondmf.available_levels()`), e.g. "meanfield".
     times : increasing times (1/Γ0) at which to report; the state is ``initial`` at times[0].
-    initial : "ground", "excited", or Bloch vectors ((N, 3) or one (3,) for all) of a product state.
+    initial : "ground", "excited", a list of N of these (one per emitter, e.g. a partly inverted cloud),
+        or Bloch vectors ((N, 3) or one (3,) for all) of a product state.
     detectors : name → direction of observation; default one detector, "forward", along the laser.
     seed : random seed of sampling levels (drawn and recorded when None).
     options : the level's options (see ``beyondmf.level_options(level)``); anything else is an error.
@@ -123,9 +136,14 @@ def evolve(
     seed = _seed(lvl, seed)
     with collecting() as said:  # the level's warnings about this run, kept in the result (beyondmf._notes)
         moments = lvl.evolve(model, ts, bloch, probes, seed, opts)
-    init = initial if isinstance(initial, str) else "bloch vectors"
+    named = isinstance(initial, str)
+    init = initial if named else "bloch vectors (data variable initial_bloch)"
     attrs = _attrs(model, lvl, "evolve", opts, seed, {"initial": init, "warnings": said})
-    return assemble(model, lvl.name, moments, probes, ts, attrs)
+    ds = assemble(model, lvl.name, moments, probes, ts, attrs)
+    if not named:  # the state itself, so that the file says how to reproduce the run
+        ds["initial_bloch"] = (("atom", "axis"), bloch,
+                               {"units": "1", "long_name": "initial Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩)"})
+    return ds
 
 
 def steady(

@@ -212,6 +212,9 @@ def _cmd_run(args) -> int:
 
     if args.workers is not None and args.workers < 1:
         raise _UsageError(f"--workers: expected a positive number of workers, got {args.workers}")
+    if not args.out.strip():  # Path("") is "."; an empty --out is a slip (an unset variable), not "here"
+        raise _UsageError("--out: give a directory for results.nc and the figures, e.g. --out out/study "
+                          "(--out . writes into the current directory)")
     study = read_study(args.study, quick=args.quick)
     out = Path(args.out)
     created = _prepare_out(out)

@@ -36,11 +36,15 @@ width stands.
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 import xarray as xr
 from scipy import stats
+
+from .levels.base import is_count
+from .model import Model
 
 __all__ = ["summarize", "compare_levels", "verdict_table", "OBSERVABLES", "VERDICTS"]
 
@@ -246,9 +250,21 @@ def compare_levels(
     from .sweep import build_task, level_table, realization_seeds, stack
 
     table = level_table(levels)
-    k = int(realizations)
-    if k < 1:
+    if not is_count(realizations, 1):
         raise ValueError(f"realizations must be a positive integer, got {realizations!r}")
+    k = int(realizations)
+    if not (is_count(seed, 0) and seed < 2**63):
+        raise ValueError(f"seed must be a non-negative integer below 2**63, got {seed!r}")
+    if isinstance(observables, str) or not all(isinstance(o, str) for o in observables):
+        raise ValueError(f"observables must be a list of names, e.g. ['emission_rate'], got {observables!r}")
+    model_args = set(Model.__dataclass_fields__) - {"positions", "J", "Gamma"} - {
+        f for f in Model.__dataclass_fields__ if f.startswith("_")}
+    unknown = sorted(set(model or {}) - model_args)
+    if unknown:
+        raise ValueError(f"model= got {', '.join(map(repr, unknown))}; it takes the arguments of "
+                         f"beyondmf.Model other than the positions: {', '.join(sorted(model_args))}")
+    if out is not None and Path(out).exists() and not Path(out).is_dir():
+        raise ValueError(f"out={str(out)!r} is a file; give a directory (made if missing) for the task files")
     draws = []
     for r in range(k):
         pos_seed, _ = realization_seeds(seed, r)
@@ -260,6 +276,11 @@ def compare_levels(
             if len(positions) != k:
                 raise ValueError(f"got {len(positions)} position arrays for {k} realizations")
             draws.append(np.asarray(positions[r], dtype=float))
+    sizes = sorted({np.asarray(d).size // 3 for d in draws})
+    if len(sizes) > 1:
+        listed = ", ".join(map(str, sizes))
+        raise ValueError(f"the realizations have different numbers of emitters ({listed}); "
+                         "a comparison averages over draws of one cloud, so give every draw the same N")
     run = {"calculation": "steady"} if times is None else {
         "calculation": "evolve", "times": np.asarray(times, dtype=float).tolist(), "initial": initial}
     index = {}
@@ -274,9 +295,9 @@ def compare_levels(
     summary.attrs["warnings"] = per.attrs.get("warnings", [])
     summary.attrs["seed"] = int(seed)
     shaped = [np.asarray(d, dtype=float).reshape(-1, 3) for d in draws]
-    if len({len(d) for d in shaped}) == 1:  # the emitters of every realization, so the file alone suffices
-        summary["positions"] = xr.DataArray(
-            np.stack(shaped), dims=("realization", "emitter", "component"),
-            coords={"realization": np.arange(k), "component": ["x", "y", "z"]},
-            attrs={"units": "λ0", "long_name": "emitter positions of each realization"})
+    # the emitters of every realization (one N, checked above), so the file alone suffices
+    summary["positions"] = xr.DataArray(
+        np.stack(shaped), dims=("realization", "emitter", "component"),
+        coords={"realization": np.arange(k), "component": ["x", "y", "z"]},
+        attrs={"units": "λ0", "long_name": "emitter positions of each realization"})
     return summary

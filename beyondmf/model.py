@@ -75,6 +75,13 @@ class Envelope:
         for a, b in wins:
             if not (np.isfinite(a) and np.isfinite(b) and b > a):
                 raise ValueError(f"envelope window ({a}, {b}) must have finite t_on < t_off")
+        ordered = sorted(wins)
+        for (a0, b0), (a1, b1) in zip(ordered, ordered[1:], strict=False):
+            if a1 < b0:  # the envelope is 1 or 0: overlapping windows would add up to 2
+                raise ValueError(
+                    f"envelope windows ({a0:g}, {b0:g}) and ({a1:g}, {b1:g}) overlap; the laser is either on "
+                    f"or off, so give them as one window ({a0:g}, {max(b0, b1):g})"
+                )
         return cls(windows=wins)
 
 

@@ -162,8 +162,8 @@ def remove_stale_parts(directory: str | os.PathLike, name: str = "*") -> list[Pa
 def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
     """Write ``ds`` to ``path`` as NetCDF-4. The file appears whole or not at all.
 
-    It is written to a temporary file beside ``path`` (``.NAME.*.part``) and renamed into place; it gets
-    the normal mode of a new file (0666 less the umask).
+    Missing parent directories are made. The file is written to a temporary file beside ``path``
+    (``.NAME.*.part``) and renamed into place; it gets the normal mode of a new file (0666 less the umask).
     """
     if not isinstance(ds, xr.Dataset):
         raise TypeError(f"save: expected an xarray.Dataset (as returned by beyondmf.evolve or steady), "
@@ -172,7 +172,11 @@ def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
     if path.is_dir():
         raise IsADirectoryError(f"save: {path} is a directory; give the path of the file to write, "
                                 f"e.g. {path / 'results.nc'}")
-    path.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except (FileExistsError, NotADirectoryError) as err:
+        raise NotADirectoryError(f"save: cannot write {path}: a part of {path.parent} is a file, "
+                                 "not a directory") from err
     out = xr.Dataset(coords={k: v for k, v in ds.coords.items()})
     for name, var in ds.data_vars.items():
         if np.iscomplexobj(var.values):
@@ -184,7 +188,10 @@ def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
     for name in out.variables:
         out[name].attrs = _encode_attrs(dict(out[name].attrs))
     out.attrs = _encode_attrs(dict(ds.attrs))
-    tmp = _create_part(path)
+    try:
+        tmp = _create_part(path)
+    except OSError as err:
+        raise type(err)(err.errno, f"save: cannot write {path} ({err.strerror})") from err
     try:
         # The data are in memory and every file has one writer. Without this, xarray takes a dask
         # distributed lock per file wherever a dask client is active (on a worker: a client of its own

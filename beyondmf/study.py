@@ -509,13 +509,22 @@ def parse_table(raw: dict[str, Any], text: str = "", path: Path | None = None) -
 def read_study(path: str | Path) -> Study:
     """Read and validate the study file at ``path``."""
     p = Path(path)
+    return parse_study(study_text(p), p)
+
+
+def study_text(p: Path) -> str:
+    """The text of the study file ``p``, or a `StudyError` that says why it cannot be read."""
+    if p.is_dir():
+        raise StudyError(f"{p} is a directory; give the path of a study file (.toml)")
     if not p.is_file():
         raise StudyError(f"{p}: no such study file")
     try:
-        text = p.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as err:
-        raise StudyError(f"{p}: cannot read the study file ({err})") from None
-    return parse_study(text, p)
+        return p.read_text(encoding="utf-8")
+    except UnicodeDecodeError as err:
+        raise StudyError(f"{p}: not a text file in UTF-8 (byte {err.start}); a study file is TOML "
+                         "text") from None
+    except OSError as err:
+        raise StudyError(f"{p}: cannot read the study file ({err.strerror or err})") from None
 
 
 def _fill_missing(datasets: list[xr.Dataset]) -> list[xr.Dataset]:

@@ -49,8 +49,9 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from .levels.base import available_levels, get_level
-from .study import Study, StudyError, parse_table, section, study_check
+from .levels.base import available_levels, detector_directions, get_level
+from .model import Model
+from .study import Study, StudyError, parse_table, section, study_check, study_text
 from .tasks import SCALAR_VARIABLES, task_key
 
 __all__ = [
@@ -98,6 +99,9 @@ def level_table(levels: Sequence[str] | Mapping[str, Any]) -> dict[str, dict[str
     items = {name: {} for name in levels} if not isinstance(levels, Mapping) else dict(levels)
     out = {}
     for label, opts in items.items():
+        if opts is not None and not isinstance(opts, Mapping):
+            raise ValueError(f"levels[{label!r}] must be a table of options, e.g. {{'level': 'twa', "
+                             f"'samples': 500}} or {{}}, got {opts!r}")
         opts = dict(opts or {})
         name = opts.pop("level", label)
         get_level(name)  # unknown names raise, listing the known ones
@@ -125,13 +129,21 @@ def build_task(
         "positions": np.asarray(positions, dtype=float),
         "model": dict(model),
         "run": dict(run),
-        "detectors": None if detectors is None else {k: np.asarray(v, float) for k, v in detectors.items()},
+        "detectors": None if detectors is None else _task_detectors(detectors, model),
         "level": level["level"],
         "options": dict(level["options"]),
     }
     if lvl.stochastic:
         task["seed"] = realization_seeds(seed, realization)[1]
     return task
+
+
+def _task_detectors(detectors: Mapping[str, Any], model: Mapping[str, Any]) -> dict[str, np.ndarray]:
+    """Directions as given (so that task keys do not move by a rounding), angle tables turned into
+    vectors; every entry validated, naming the detector."""
+    resolved = detector_directions(detectors, model.get("laser", Model.laser))
+    return {k: resolved[str(k)] if isinstance(v, Mapping) else np.asarray(v, float)
+            for k, v in detectors.items()}
 
 
 def stack(
@@ -568,9 +580,7 @@ def read_study(path: str | Path, quick: bool = False) -> Study:
     a broken CI-sized version of a study is found by the study's own runs.
     """
     p = Path(path)
-    if not p.is_file():
-        raise StudyError(f"{p}: no such study file")
-    text = p.read_text(encoding="utf-8")
+    text = study_text(p)
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:

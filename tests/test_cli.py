@@ -177,6 +177,25 @@ def test_missing_study_file(tmp_path, capsys):
     assert err.strip() == f"beyondmf run: error: {tmp_path / 'nowhere.toml'}: no such study file"
 
 
+def test_a_study_path_that_is_a_directory_or_not_text_is_named_as_such(tmp_path, capsys):
+    code, err = _run(["run", tmp_path, "--out", tmp_path / "out"], capsys)
+    assert code == cli.EXIT_USAGE and f"{tmp_path} is a directory; give the path of a study file" in err
+    binary = tmp_path / "bin.toml"
+    binary.write_bytes(b"\xff\xfe[drive]\n")
+    code, err = _run(["run", binary, "--out", tmp_path / "out"], capsys)
+    assert code == cli.EXIT_USAGE and f"{binary}: not a text file in UTF-8 (byte 0)" in err
+    assert not (tmp_path / "out").exists()
+
+
+def test_an_empty_out_is_refused_not_taken_as_the_current_directory(tmp_path, capsys, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    study_file = tmp_path / "s.toml"
+    study_file.write_text(SMALL)
+    code, err = _run(["run", study_file, "--out", ""], capsys)
+    assert code == cli.EXIT_USAGE and "--out: give a directory" in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["s.toml"]
+
+
 def test_levels_may_be_a_list_of_names():
     # a top-level key must come before the first [table] header in TOML
     study = parse_study('levels = ["meanfield"]\n' + _replace(SMALL, "[levels.meanfield]\nrtol = 1e-7", ""))

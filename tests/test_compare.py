@@ -81,6 +81,36 @@ def test_bad_arguments_are_explained():
         summarize(ds, observables=["g2"])
 
 
+_PAIR = np.array([[0.0, 0, 0], [0.4, 0, 0]])
+
+
+@pytest.mark.parametrize(
+    "kwargs, match",
+    [
+        ({"realizations": 2.5}, "realizations must be a positive integer, got 2.5"),
+        ({"seed": 1.5}, "seed must be a non-negative integer"),
+        ({"seed": -1}, "seed must be a non-negative integer"),
+        ({"positions": [_PAIR, _PAIR[:1]], "realizations": 2}, "different numbers of emitters .1, 2."),
+        ({"levels": {"meanfield": {}, "cumulant2": 1e-6}}, r"levels\['cumulant2'\] must be a table"),
+        ({"observables": "emission_rate"}, "observables must be a list of names"),
+        ({"model": {"rabbi": 1.0}}, "model= got 'rabbi'; it takes the arguments of beyondmf.Model"),
+        ({"model": {"positions": _PAIR}}, "model= got 'positions'"),
+        ({"detectors": {"a": {"angle": 60, "x": 1}}}, "detector 'a': a table takes 'angle'"),
+    ],
+)
+def test_bad_compare_levels_arguments_are_refused_before_anything_runs(kwargs, match, tmp_path):
+    args = {"positions": _PAIR, "levels": ["meanfield"], "model": {"rabi": 0.5}, "out": tmp_path / "out"}
+    with pytest.raises(ValueError, match=match):
+        compare_levels(**(args | kwargs))
+    assert not (tmp_path / "out").exists()
+
+
+def test_compare_levels_refuses_an_out_that_is_a_file(tmp_path):
+    (tmp_path / "afile").write_text("")
+    with pytest.raises(ValueError, match="is a file; give a directory"):
+        compare_levels(_PAIR, ["meanfield"], out=tmp_path / "afile")
+
+
 def _deterministic_levels() -> list[str]:
     return [name for name in bm.available_levels() if not bm.get_level(name).stochastic]
 

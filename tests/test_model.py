@@ -18,6 +18,7 @@ import beyondmf as bm
         ({"positions": [[0, 0, 0]], "detuning": "large"}, "detuning must be a real number"),
         ({"positions": [[0, 0, 0]], "coupling": "dyadic"}, "unknown coupling"),
         ({"positions": [[0, 0, 0]], "envelope": [(2, 1)]}, "t_on < t_off"),
+        ({"positions": [[0, 0, 0]], "envelope": [(3, 8), (0, 5)]}, r"overlap.*one window \(0, 8\)"),
         ({"positions": [[0, 0, 0]], "rabi": [1, 2]}, "rabi must be a .complex. number"),
         ({"positions": [[0, 0, 0]], "detuning": "0"}, "detuning must be a real number"),
         ({"positions": [[0, 0, 1j]]}, "positions must be real"),
@@ -98,6 +99,14 @@ def test_unknown_option_is_an_error():
         (lambda m: bm.evolve(m, "meanfield", [0, 1], detectors={"a": (0, 0, 0)}), "non-zero"),
         (lambda m: bm.evolve(m, "meanfield", [0, 1], detectors=[(0, 0, 1)]), "map a name"),
         (lambda m: bm.evolve(m, "meanfield", [0, 1], seed=-3), "non-negative integer"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], initial=["ground", "up"]), "needs 1 of 'ground'"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], initial=[0, 0, 1j]), "initial must be 'ground'"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], initial=None), "initial must be 'ground'"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], detectors={"a": {"angle": 60, "tilt": 3}}),
+         "detector 'a': a table takes 'angle'"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], detectors={"a": {"angle": 200}}), "0 to 180"),
+        (lambda m: bm.evolve(m, "meanfield", [0, 1], detectors={"f": "forwrd"}),
+         "detector 'f' needs a direction"),
     ],
 )
 def test_bad_call_arguments_are_refused(call, match):
@@ -141,3 +150,29 @@ def test_times_and_seed_mistakes_are_explained():
         bm.evolve(m, "meanfield", 5.0)
     with pytest.raises(ValueError, match=r"seed must be a non-negative integer below 2\*\*63, got 'a'"):
         bm.evolve(m, "twa", [0, 1], seed="a", samples=4)
+
+
+def test_detectors_may_be_given_by_angle_from_the_laser_as_in_study_files():
+    # the study-file form {angle, azimuth} (degrees from the laser): for a laser along z, angle 90° and
+    # azimuth 90° is ŷ (beyondmf.study.detector_direction)
+    m = bm.Model([[0, 0, 0], [0.3, 0.1, 0]], rabi=1.0)
+    by_angle = bm.evolve(m, "meanfield", [0, 1], detectors={"side": {"angle": 90, "azimuth": 90}})
+    by_vector = bm.evolve(m, "meanfield", [0, 1], detectors={"side": (0, 1, 0)})
+    np.testing.assert_allclose(by_angle["direction"].values, [[0, 1, 0]], atol=1e-15)
+    np.testing.assert_allclose(by_angle["intensity"].values, by_vector["intensity"].values, rtol=1e-12)
+
+
+def test_initial_state_per_emitter_by_name_and_recorded_in_the_result():
+    m = bm.Model([[0, 0, 0], [2.0, 0, 0], [0, 2.0, 0]])
+    ds = bm.evolve(m, "meanfield", [0, 0.5], initial=["excited", "ground", "excited"])
+    np.testing.assert_array_equal(ds["excited"].values[0], [1, 0, 1])
+    np.testing.assert_array_equal(ds["initial_bloch"].values[:, 2], [1, -1, 1])
+    assert ds.attrs["initial"].startswith("bloch vectors")
+    assert "initial_bloch" not in bm.evolve(m, "meanfield", [0, 0.5], initial="ground")
+
+
+@pytest.mark.parametrize("level", ["twa", "qsd_product", "jumps"])
+def test_a_single_report_time_gives_the_initial_state_at_every_level(level):
+    # as the deterministic levels do: the state at times[0] is the initial one
+    ds = bm.evolve(bm.Model([[0, 0, 0]], rabi=1.0), level, [0.5], initial="excited", samples=8, seed=1)
+    assert ds["excited"].shape == (1, 1) and float(ds["excited"][0, 0]) == 1.0

@@ -83,6 +83,13 @@ def test_save_refuses_what_it_cannot_write_with_a_clear_error(dataset, tmp_path)
     with pytest.raises(IsADirectoryError, match=r"existing is a directory; give the path of the file"):
         bm.save(dataset, tmp_path / "existing")
     assert sorted(p.name for p in tmp_path.rglob("*")) == ["existing"]  # nothing half-written
+    (tmp_path / "good.nc").write_text("")
+    with pytest.raises(NotADirectoryError, match=r"good.nc/x.nc: a part of .*good.nc is a file"):
+        bm.save(dataset, tmp_path / "good.nc" / "x.nc")
+    with pytest.raises(OSError, match=r"save: cannot write /proc/x.nc \("):  # the target, not the temporary
+        bm.save(dataset, "/proc/x.nc")
+    # missing parent directories are made (documented)
+    assert bm.save(dataset, tmp_path / "new" / "sub" / "x.nc").is_file()
 
 
 def test_only_clearly_abandoned_temporary_files_are_removed(tmp_path):

@@ -445,7 +445,7 @@ class SpinSampling(Level):
             "samples_failed": failed,
             "dt": dt,
             # the intervals between report times are split into equal steps of at most dt
-            "step_largest": float(np.max(np.diff(np.asarray(t_obs)) / np.asarray(n_sub))),
+            "step_largest": float(np.max(np.diff(np.asarray(t_obs)) / np.asarray(n_sub), initial=0.0)),
             "steps": int(np.sum(np.asarray(n_sub))),
             "chunk": chunk,
             "calculus": self.calculus,

@@ -7,7 +7,9 @@ level never computes an observable itself, so `intensity` means the same at ever
 
 from __future__ import annotations
 
+import numbers
 from abc import ABC, abstractmethod
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any, ClassVar
 
@@ -40,16 +42,40 @@ class Probes:
 
     @classmethod
     def build(cls, model: Model, detectors: dict[str, Any]) -> Probes:
-        names, dirs = [], []
-        for name, vec in detectors.items():
-            v = np.asarray(vec, dtype=float).reshape(-1)
-            if v.shape != (3,) or not np.all(np.isfinite(v)) or not np.linalg.norm(v) > 0:
-                raise ValueError(f"detector {name!r} needs a non-zero finite 3-vector direction, got {vec!r}")
-            names.append(str(name))
-            dirs.append(v / np.linalg.norm(v))
-        directions = np.array(dirs).reshape(-1, 3)
+        resolved = detector_directions(detectors, model.laser)
+        names = tuple(resolved)
+        directions = np.array([resolved[n] for n in names]).reshape(-1, 3)
         weights = np.exp(-2j * np.pi * directions @ model.positions.T)
-        return cls(tuple(names), directions, weights)
+        return cls(names, directions, weights)
+
+
+def detector_directions(detectors: Mapping[str, Any], laser) -> dict[str, np.ndarray]:
+    """name → unit vector, from a direction (x, y, z) or a table {"angle": θ, "azimuth": φ} in degrees
+    from the laser direction (as in study files: `beyondmf.study.detector_direction`)."""
+    from ..study import detector_direction
+
+    out = {}
+    for name, spec in detectors.items():
+        if isinstance(spec, Mapping):
+            extra = sorted(set(spec) - {"angle", "azimuth"})
+            angle, azimuth = spec.get("angle"), spec.get("azimuth", 0.0)
+            if extra or not all(isinstance(a, numbers.Real) and not isinstance(a, bool) and np.isfinite(a)
+                                for a in (angle, azimuth)) or not 0 <= angle <= 180:
+                raise ValueError(
+                    f"detector {name!r}: a table takes 'angle' (degrees from the laser, 0 to 180) and "
+                    f"optionally 'azimuth' (degrees about it), got {dict(spec)!r}")
+            out[str(name)] = detector_direction(laser, float(angle), float(azimuth))
+            continue
+        try:
+            v = np.asarray(spec, dtype=float).reshape(-1)
+        except (TypeError, ValueError):
+            v = None
+        if v is None or v.shape != (3,) or not np.all(np.isfinite(v)) or not np.linalg.norm(v) > 0:
+            raise ValueError(
+                f"detector {name!r} needs a direction: a non-zero finite (x, y, z), or a table "
+                f"{{'angle': θ, 'azimuth': φ}} in degrees from the laser; got {spec!r}")
+        out[str(name)] = v / np.linalg.norm(v)
+    return out
 
 
 @dataclass
