@@ -264,9 +264,13 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
     from .sweep import run_sweep
 
     executor = make_executor(args.workers, args.scheduler)
-    _say(f"running tasks {executor.where}; finished tasks in {out / 'tasks'} are reused")
+
+    def ready(count: int) -> None:  # after every task is built and validated
+        _say(f"running {count} task{'s' * (count != 1)} {executor.where}; finished tasks in {out / 'tasks'} "
+             "are reused")
+
     try:
-        ds = run_sweep(study, out, executor=executor, progress=True)
+        ds = run_sweep(study, out, executor=executor, progress=True, on_ready=ready)
     except Interrupted as stop:
         if not stop.kept:
             raise _Stopped(f"none of the {stop.total} tasks had finished; run the same command again to "

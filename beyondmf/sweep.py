@@ -790,8 +790,11 @@ def run_sweep(
     executor=None,
     progress: bool = True,
     on_done: Callable[[str, str], None] | None = None,
+    on_ready: Callable[[int], None] | None = None,
 ) -> xr.Dataset:
     """Run (or resume) every task of ``study`` and write the merged DIR/results.nc.
+
+    ``on_ready(number of tasks)`` is called once every task is built and validated, before any runs.
 
     Without [compare] the result has dimensions (grid..., level, realization, ...); with it, the
     `beyondmf.compare.summarize` reduction (level dimension, corrections, verdicts) plus the
@@ -805,6 +808,8 @@ def run_sweep(
     index, labels, k, dims, params = study_tasks(study)
     cmp: CompareSpec | None = study.extra.get("compare")
     observables = cmp.observables if cmp else OBSERVABLES
+    if on_ready:
+        on_ready(len({task_key(t) for t in index.values()}))
     results = execute(list(index.values()), out, executor, progress, on_done)
     spec = study.extra.get("sweep")
     last = bool(spec and spec.keep == "last_time")
