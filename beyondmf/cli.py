@@ -326,7 +326,9 @@ def _report_convergence(study, ds, out: Path, plots: bool) -> None:
 
     tables = check_convergence(study, ds)
     merged = xr.Dataset({f"{obs}_{var}": t[var] for obs, t in tables.items() for var in t.data_vars})
-    merged.attrs.update(next(iter(tables.values())).attrs)
+    # the attributes the tables share; each observable's last bound is the last entry of its X_bound
+    merged.attrs.update({k: v for k, v in next(iter(tables.values())).attrs.items() if k != "last_bound"})
+    merged.attrs["observables"] = list(tables)
     save(merged, out / "convergence.nc")
     _say(f"wrote {out / 'convergence.nc'}")
     for obs, table in tables.items():

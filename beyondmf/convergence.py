@@ -49,6 +49,11 @@ def assess(
     """
     if dim not in values.dims or values.sizes[dim] < 2:
         raise ValueError(f"convergence needs at least two values along {dim!r}")
+    if dim in values.coords and np.issubdtype(values[dim].dtype, np.number):
+        steps = np.diff(values[dim].values.astype(float))
+        if not (np.all(steps > 0) or np.all(steps < 0)):
+            raise ValueError(f"the values along {dim!r} must run from coarse to fine (strictly monotonic), "
+                             f"got {values[dim].values.tolist()}: the criterion judges the last step")
     if not (tolerance > 0):
         raise ValueError(f"tolerance must be a positive relative change, got {tolerance!r}")
     err = xr.zeros_like(values) if errors is None else errors.fillna(0.0)

@@ -185,8 +185,9 @@ def stack(
                           and np.issubdtype(v.dtype, np.floating)})
     outer = [len(v) for _, v in grid] + [len(labels), realizations]
     arrays, failures, said = {}, [], []
-    for name in names + diagnostics + ["excited_mean"]:
-        base = (template["emission_rate"] if name in diagnostics or name == "excited_mean"
+    means = ["excited_mean", *(["excited_mean_stderr"] if stochastic else [])]
+    for name in names + diagnostics + means:
+        base = (template["emission_rate"] if name in diagnostics or name in means
                 else template[name.removesuffix("_stderr")])
         arrays[name] = (base.dims, np.full(outer + list(base.shape), np.nan, dtype=base.dtype))
     counts = np.full(outer, np.nan)
@@ -200,6 +201,9 @@ def stack(
             if name in ds:
                 arrays[name][1][idx] = ds[name].values
         arrays["excited_mean"][1][idx] = ds["excited"].mean("atom").values
+        if stochastic and "excited_stderr" in ds:
+            # the emitters' errors are correlated (the same samples): their mean bounds the error of the mean
+            arrays["excited_mean_stderr"][1][idx] = ds["excited_stderr"].mean("atom").values
         messages = list(ds.attrs.get("warnings", []))
         counts[idx] = len(messages)
         said.extend(f"{key_tuple} (task {task_key(task)}): {m}" for m in messages)
@@ -217,6 +221,10 @@ def stack(
         first = next(results[task_key(t)][n] for t in index.values() if n in results[task_key(t)])
         out[n].attrs = dict(first.attrs, role=DIAGNOSTIC)
     out["excited_mean"].attrs.update(long_name="mean excited population over emitters")
+    if stochastic:
+        out["excited_mean_stderr"].attrs.update(
+            long_name="mean of the emitters' standard errors: an upper bound of the standard error of "
+                      "excited_mean (the emitters' errors are correlated)")
     out["warnings"] = xr.DataArray(counts, dims=dims, coords={d: coords[d] for d in dims}).assign_attrs(
         long_name="warnings the level issued about this run (its own diagnostics; NaN: the task failed)")
     if "time" in out.dims and last_time:
@@ -522,6 +530,7 @@ def _check_sections(study: Study, raw: Mapping[str, Any]) -> None:
         if conv.level not in levels:
             raise StudyError(f"convergence.level: {conv.level!r} is not among the study's levels "
                              f"({', '.join(levels)}); name one of them")
+        _check_refinement_order(conv.dim, dict(spec.dims())[conv.dim])
         if cmp is not None:
             known = list(cmp.observables)
             hint = " (with [compare], those of compare.observables)"
@@ -532,6 +541,28 @@ def _check_sections(study: Study, raw: Mapping[str, Any]) -> None:
         if missing:
             raise StudyError(f"convergence.observables: {', '.join(missing)} not in the results of this "
                              f"study; choose from {', '.join(known)}{hint}")
+
+
+# options whose refinement has a known direction: more samples, a longer window …, a smaller step or
+# tolerance (the criterion judges the last step of the list, so the list must run from coarse to fine)
+_FINER_WHEN_LARGER = ("samples", "window", "window_points", "settle_time", "max_steps")
+_FINER_WHEN_SMALLER = ("dt", "rtol", "atol")
+
+
+def _check_refinement_order(dim: str, values: Sequence) -> None:
+    x = np.asarray(values, dtype=float)
+    steps = np.diff(x)
+    if not (np.all(steps > 0) or np.all(steps < 0)):
+        raise StudyError(f"convergence.dimension: the values of {dim!r} ({', '.join(f'{v:g}' for v in x)}) "
+                         "must run from coarse to fine, strictly increasing or decreasing: the criterion "
+                         "judges the last step")
+    option = dim.rsplit("_", 1)[-1] if dim not in _FINER_WHEN_LARGER + _FINER_WHEN_SMALLER else dim
+    wrong = ("increasing" if option in _FINER_WHEN_LARGER and steps[0] < 0 else
+             "decreasing" if option in _FINER_WHEN_SMALLER and steps[0] > 0 else None)
+    if wrong:
+        got = ", ".join(f"{v:g}" for v in x)
+        raise StudyError(f"convergence.dimension: list the values of {dim!r} from coarse to fine, "
+                         f"{wrong} (got {got}): the criterion judges the last step")
 
 
 def _merge(base: dict, over: Mapping) -> dict:

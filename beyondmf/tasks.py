@@ -47,7 +47,7 @@ __all__ = [
     "TaskFileError",
 ]
 
-FORMAT = 1
+FORMAT = 2  # 2: the checksum covers coordinates and attributes too
 # The per-task results that survive merging across geometries of different N (per-emitter arrays do not).
 SCALAR_VARIABLES = (
     "emission_rate",
@@ -189,11 +189,26 @@ def compute(task: Mapping[str, Any]) -> xr.Dataset:
 
 
 def _checksum(ds: xr.Dataset) -> str:
-    """SHA-256 over the names and bytes of every data variable, in name order."""
+    """SHA-256 over the names, bytes and attributes of every variable and coordinate, and the dataset's
+    attributes (except the task and task_* stamp), in name order; attributes in the form `save` writes
+    them, so that the sum is the same before the file is written and after it is read."""
+    from .results import _encode_attrs
+
+    def attrs(a: Mapping[str, Any]) -> bytes:
+        enc = _encode_attrs({k: v for k, v in a.items() if k != "task" and not k.startswith("task_")})
+        items = sorted((k, v.item() if isinstance(v, np.generic) else v) for k, v in enc.items())
+        return json.dumps(items).encode()
+
     h = hashlib.sha256()
-    for name in sorted(ds.data_vars):
+    for name in sorted(map(str, ds.variables)):
         h.update(name.encode())
-        h.update(np.ascontiguousarray(ds[name].values).tobytes())
+        values = ds[name].values
+        if values.dtype.kind in "OUS":  # names (detectors, axes): their text, not object pointers
+            h.update(json.dumps(values.astype(str).tolist()).encode())
+        else:
+            h.update(np.ascontiguousarray(values).tobytes())
+        h.update(attrs(ds[name].attrs))
+    h.update(attrs(ds.attrs))
     return h.hexdigest()
 
 
@@ -249,6 +264,9 @@ def read_task(path: str | Path, task: Mapping[str, Any]) -> xr.Dataset:
     attrs = ds.attrs
     if attrs.get("task_key") != task_key(task) or attrs.get("task") != canonical(task):
         raise TaskFileError(f"{path}: written for another task")
+    if attrs.get("task_format") != FORMAT:
+        raise TaskFileError(f"{path}: written by another version of beyondmf (task file format "
+                            f"{attrs.get('task_format')}, this one writes {FORMAT})")
     if attrs.get("task_status") not in ("done", "failed"):
         raise TaskFileError(f"{path}: incomplete (status {attrs.get('task_status')!r})")
     if attrs.get("task_checksum") != _checksum(ds):

@@ -530,8 +530,8 @@ def test_the_run_says_where_its_tasks_run(tmp_path, capsys):
 
 def test_a_grid_point_that_cannot_be_built_fails_before_the_run_starts(tmp_path, capsys):
     study_file = tmp_path / "grid.toml"
-    study_file.write_text(_replace(_replace(SMALL, "n = 12", "n = 3"), "seed = 3\n", "")
-                          + '[sweep]\nrealizations = 1\n[sweep.grid]\n"geometry.min_distance" = [0.1, 50.0]\n')
+    grid = '[sweep]\nrealizations = 1\n[sweep.grid]\n"geometry.min_distance" = [0.1, 50.0]\n'
+    study_file.write_text(_replace(_replace(SMALL, "n = 12", "n = 3"), "seed = 3\n", "") + grid)
     code, err = _run(["run", study_file, "--out", tmp_path / "out", "--no-plots"], capsys)
     assert code == cli.EXIT_USAGE, err
     assert "running " not in err and "min_distance" in err, err

@@ -105,6 +105,23 @@ def test_bad_compare_levels_arguments_are_refused_before_anything_runs(kwargs, m
     assert not (tmp_path / "out").exists()
 
 
+def test_the_mean_population_of_a_sampled_level_carries_its_sampling_error():
+    # Two emitters 50 λ0 apart (independent): P = Σ_i ρ_ee,i, so excited_mean = P/2 exactly at every
+    # level, and its correction equals the emission rate's. With 50 trajectories its sampling error must
+    # widen the interval as it does the rate's (it was taken as exact, giving a firm verdict from noise).
+    pos = np.array([[0.0, 0, 0], [50.0, 0, 0]])
+    s = compare_levels(pos, {"exact": {}, "jumps": {"samples": 50}}, seed=2, baseline="exact",
+                       model={"rabi": 1.0}, tolerance=0.02, observables=["emission_rate", "excited_mean"])
+    j = {"level": "jumps"}
+    assert float(s["excited_mean_uncertainty"].sel(j)) > 0
+    for name in ("emission_rate", "excited_mean"):
+        assert str(s[f"{name}_verdict"].sel(j).values) == "undecided"
+    # the mean of the emitters' errors bounds the error of their mean; for independent emitters it is
+    # within √2 of the rate's own error, which is exact here
+    rate, mean = float(s["emission_rate_uncertainty"].sel(j)), float(s["excited_mean_uncertainty"].sel(j))
+    assert rate / 2 <= mean + 1e-12 and mean <= rate / 2 * np.sqrt(2) + 1e-12
+
+
 def test_compare_levels_refuses_an_out_that_is_a_file(tmp_path):
     (tmp_path / "afile").write_text("")
     with pytest.raises(ValueError, match="is a file; give a directory"):

@@ -31,6 +31,12 @@ def test_criterion_on_constructed_series():
     assert float(t["bound"][-1]) == pytest.approx(expected)
 
 
+def test_a_series_that_is_not_monotonic_in_its_parameter_is_refused():
+    x = xr.DataArray([1.0, 1.1, 1.05], dims="samples", coords={"samples": [100, 400, 200]})
+    with pytest.raises(ValueError, match="must run from coarse to fine"):
+        assess(x, None, "samples")
+
+
 def test_paired_realizations_do_not_count_their_common_spread_against_convergence():
     # Two draws whose values differ by 0.4 but that change by the same 1e-4 when the samples double: the
     # paired change is exact, so the series has converged (common practice: paired differences); judged

@@ -100,6 +100,21 @@ def test_convergence_names_that_do_not_exist_are_refused_when_read(tmp_path, con
     assert fragment in msg
 
 
+@pytest.mark.parametrize(
+    "values, fragment",
+    [
+        ("[1e-4, 1e-6, 1e-5]", "must run from coarse to fine, strictly increasing or decreasing"),
+        ("[1e-6, 1e-4]", "list the values of 'rtol' from coarse to fine, decreasing"),
+    ],
+)
+def test_convergence_refuses_a_refinement_listed_out_of_order(tmp_path, values, fragment):
+    # the criterion judges the last step of the list (beyondmf.convergence), so it must be a refinement
+    grid = GRID.replace("[1e-4, 1e-6]", values)
+    msg = _refused(tmp_path, BASE + grid + '[convergence]\ndimension = "rtol"\nlevel = "cumulant2"\n',
+                   "convergence.dimension")
+    assert fragment in msg
+
+
 def test_convergence_without_a_grid_is_refused(tmp_path):
     msg = _refused(tmp_path, BASE + '[convergence]\ndimension = "rtol"\nlevel = "cumulant2"\n',
                    "convergence.dimension")

@@ -93,6 +93,33 @@ def test_damaged_task_files_are_recomputed(tmp_path):
     _same(ref, again)
 
 
+@pytest.mark.parametrize("level, options", [("meanfield", {}), ("twa", {"samples": 8}), ("exact", {})])
+def test_a_task_file_reads_back_whole_and_a_changed_attribute_or_name_is_caught(tmp_path, level, options):
+    # the checksum covers coordinates and attributes as well as the data (a corrupted attribute was read
+    # back silently before): edit the file through h5py, as bytes on disk would change
+    import h5py
+
+    from beyondmf.tasks import TaskFileError, read_task, run_task
+
+    task = {"positions": np.array([[0.0, 0, 0], [0.3, 0, 0]]), "model": {"rabi": 1.0},
+            "run": {"calculation": "evolve", "times": [0.0, 0.5], "initial": "ground"},
+            "detectors": {"forward": np.array([0.0, 0, 1])}, "level": level, "options": options}
+    if level == "twa":
+        task["seed"] = 1
+    key, status, _ = run_task(task, tmp_path)
+    assert status == "done"
+    path = task_path(tmp_path, key)
+    read_task(path, task)  # what was written reads back as written
+    with h5py.File(path, "r+") as f:
+        f["g2_total"].attrs["long_name"] = "garbage" + f["g2_total"].attrs["long_name"][7:]
+    with pytest.raises(TaskFileError, match="checksum mismatch"):
+        read_task(path, task)
+    with h5py.File(path, "r+") as f:
+        f.attrs["task_format"] = 1
+    with pytest.raises(TaskFileError, match="another version of beyondmf .task file format 1"):
+        read_task(path, task)
+
+
 def test_task_keys_are_stable_across_number_spellings(tmp_path):
     a = _study(tmp_path, STUDY.replace("rabi = 1.0", "rabi = 1"))
     b = _study(tmp_path)
