@@ -16,9 +16,7 @@ import warnings
 from collections.abc import Iterator
 from contextlib import contextmanager
 from contextvars import ContextVar
-from pathlib import Path
 
-_PACKAGE_DIR = str(Path(__file__).resolve().parent)
 _collected: ContextVar[list[str] | None] = ContextVar("beyondmf_run_warnings", default=None)
 
 
@@ -35,7 +33,8 @@ def _outside_package() -> int:
     """The `warnings.warn` stacklevel, counted from `warn`, of the innermost frame outside this package."""
     frame = sys._getframe(2)  # the caller of `warn`; stacklevel 2 counted from `warn`
     level = 2
-    while frame is not None and frame.f_code.co_filename.startswith(_PACKAGE_DIR):
+    # by module name, not file path: a package imported through a symbolic link keeps the link's path
+    while frame is not None and frame.f_globals.get("__name__", "").partition(".")[0] == "beyondmf":
         frame = frame.f_back
         level += 1
     return level

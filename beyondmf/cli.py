@@ -266,7 +266,7 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
     executor = make_executor(args.workers, args.scheduler)
 
     def ready(count: int) -> None:  # after every task is built and validated
-        _say(f"running {count} task{'s' * (count != 1)} {executor.where}; finished tasks in {out / 'tasks'} "
+        _say(f"{count} task{'s' * (count != 1)} to run {executor.where}; those finished in {out / 'tasks'} "
              "are reused")
 
     try:

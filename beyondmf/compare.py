@@ -35,6 +35,7 @@ width stands.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -257,8 +258,7 @@ def compare_levels(
         raise ValueError(f"seed must be a non-negative integer below 2**63, got {seed!r}")
     if isinstance(observables, str) or not all(isinstance(o, str) for o in observables):
         raise ValueError(f"observables must be a list of names, e.g. ['emission_rate'], got {observables!r}")
-    model_args = set(Model.__dataclass_fields__) - {"positions", "J", "Gamma"} - {
-        f for f in Model.__dataclass_fields__ if f.startswith("_")}
+    model_args = {f.name for f in dataclasses.fields(Model) if f.init} - {"positions"}
     unknown = sorted(set(model or {}) - model_args)
     if unknown:
         raise ValueError(f"model= got {', '.join(map(repr, unknown))}; it takes the arguments of "

@@ -32,6 +32,12 @@ CRITERION = (
 )
 
 
+def strictly_monotonic(values) -> bool:
+    """Whether a refinement's parameter values run one way: strictly increasing or strictly decreasing."""
+    steps = np.diff(np.asarray(values, dtype=float))
+    return bool(np.all(steps > 0) or np.all(steps < 0))
+
+
 def assess(
     values: xr.DataArray,
     errors: xr.DataArray | None,
@@ -50,8 +56,7 @@ def assess(
     if dim not in values.dims or values.sizes[dim] < 2:
         raise ValueError(f"convergence needs at least two values along {dim!r}")
     if dim in values.coords and np.issubdtype(values[dim].dtype, np.number):
-        steps = np.diff(values[dim].values.astype(float))
-        if not (np.all(steps > 0) or np.all(steps < 0)):
+        if not strictly_monotonic(values[dim].values):
             raise ValueError(f"the values along {dim!r} must run from coarse to fine (strictly monotonic), "
                              f"got {values[dim].values.tolist()}: the criterion judges the last step")
     if not (tolerance > 0):

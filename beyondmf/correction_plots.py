@@ -120,19 +120,26 @@ def _slices(s: xr.Dataset, dims: list[str]) -> list[tuple[dict, str]]:
 _STYLES = ("-", "--", ":", "-.")
 
 
-def _style_legend(ax, tags: list[str]) -> None:
-    """The legend of the grid points' line styles, drawn in grey so that it names no level; kept as an
-    artist, so the level legend may share the panel."""
-    handles = [plt.Line2D([], [], color="0.4", ls=_STYLES[j % len(_STYLES)], label=tag)
-               for j, tag in enumerate(tags)]
-    ax.add_artist(ax.legend(handles=handles, fontsize=7, title="line style", title_fontsize=7))
+def _legends(axes, time_panels: list, tags: list[str], level_legend: dict) -> None:
+    """The level legend on the first panel and, for a grid drawn over time, the legend of the grid points'
+    line styles (grey: it names no level) on the first time panel other than the first; on the first
+    panel itself when it is the only time panel, the two legends then in opposite corners."""
+    shared = False
+    if tags and time_panels:
+        ax = next((a for a in time_panels if a is not axes[0]), time_panels[0])
+        shared = ax is axes[0]
+        handles = [plt.Line2D([], [], color="0.4", ls=_STYLES[j % len(_STYLES)], label=tag)
+                   for j, tag in enumerate(tags)]
+        ax.add_artist(ax.legend(handles=handles, fontsize=7, title="line style", title_fontsize=7,
+                                loc="upper right" if shared else "best"))
+    axes[0].legend(**level_legend, loc="upper left" if shared else "best")
 
 
 def _values_figure(s: xr.Dataset, path: Path) -> Path:
     panels = _panels(s)
     grid = _grid_dims(s)
     fig, axes = _subplots(len(panels))
-    styled = False  # one time panel carries the legend of the grid points' line styles
+    time_panels = []
     for ax, (name, det) in zip(axes, panels, strict=True):
         for k, lv in enumerate(s["level"].values):
             v, u = _pick(s, name, det, lv)
@@ -144,9 +151,8 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
                     ax.plot(t, vv, color=_color(s, lv), ls=ls, label=_name(s, lv) if j == 0 else None)
                     ax.fill_between(t, vv - uu, vv + uu, alpha=0.2, color=_color(s, lv))
                 ax.set_xlabel("time (1/Γ0)")
-                if grid and k == len(s["level"]) - 1 and not styled:
-                    _style_legend(ax, [tag.removeprefix(", ") for _sel, tag in _slices(s, grid)])
-                    styled = True
+                if k == 0:
+                    time_panels.append(ax)
             elif grid:
                 x = s[grid[0]].values
                 for sel, tag in _slices(s, grid[1:]):
@@ -163,7 +169,8 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
         vals = np.abs(s[name].values[np.isfinite(s[name].values)])
         if name.startswith("g2") and vals.size and vals.min() > 0 and vals.max() / vals.min() > 100:
             ax.set_yscale("log")
-    axes[0].legend(fontsize=8, title="level", title_fontsize=8)
+    tags = [tag.removeprefix(", ") for _sel, tag in _slices(s, grid)] if grid else []
+    _legends(axes, time_panels, tags, {"fontsize": 8, "title": "level", "title_fontsize": 8})
     fig.suptitle(s.attrs.get("title", "") + (" (quick mode)" if s.attrs.get("quick") else ""), fontsize=10)
     return _save(fig, path)
 
@@ -174,7 +181,7 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
     tol, base = s.attrs["tolerance"], s.attrs["baseline"]
     others = [lv for lv in s["level"].values if str(lv) != base]
     fig, axes = _subplots(len(panels))
-    styled = False  # one time panel carries the legend of the grid points' line styles
+    time_panels, tags = [], []
     for ax, (name, det) in zip(axes, panels, strict=True):
         top = tol  # the y-range: the drawn corrections and intervals, at least the tolerance, at most ±_CLIP
         for k, lv in enumerate(others):
@@ -206,16 +213,17 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
                     ax.set_xticks(range(len(others)), [str(o) for o in others])
                 curves = [(c.values, lo.values, hi.values, "-", _name(s, lv), "")]
             for cc, ll, hh, style, label, _tag in curves:
-                ax.plot(x, np.clip(np.atleast_1d(cc), -_CLIP, _CLIP), marker="o" if style == "-" else None,
-                        ls=style, label=label, color=col)
+                marker = None if "time" in c.dims else "o"
+                ax.plot(x, np.clip(np.atleast_1d(cc), -_CLIP, _CLIP), marker=marker, ls=style, label=label,
+                        color=col)
                 lo_c, hi_c = (np.clip(np.atleast_1d(a), -_CLIP, _CLIP) for a in (ll, hh))
-                ax.fill_between(x, lo_c, hi_c, alpha=0.25 if style == "-" else 0.12, color=col)
+                ax.fill_between(x, lo_c, hi_c, alpha=0.2, color=col)
                 drawn = np.abs(np.concatenate([np.atleast_1d(a).ravel() for a in (cc, ll, hh)]))
                 drawn = drawn[np.isfinite(drawn)]
                 top = max(top, float(drawn.max()) if drawn.size else 0.0)
-            if grid and "time" in c.dims and not styled and k == len(others) - 1:
-                _style_legend(ax, [tag for *_rest, tag in curves])
-                styled = True
+            if "time" in c.dims and k == 0:
+                time_panels.append(ax)
+                tags = [tag for *_rest, tag in curves] if grid else []
         for y in (-tol, tol):
             ax.axhline(y, color="k", ls=":", lw=1)
         ax.axhline(0, color="k", lw=0.5)
@@ -223,7 +231,7 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
         ax.set_ylim(-lim, lim)
         ax.set_title(f"correction of {_title(name, det)}", fontsize=9)
     if others:
-        axes[0].legend(fontsize=8, title=f"vs {base}", title_fontsize=8)
+        _legends(axes, time_panels, tags, {"fontsize": 8, "title": f"vs {base}", "title_fontsize": 8})
     fig.suptitle(f"relative corrections (X − X_{base})/X_{base}, {s.attrs['confidence']:.0%} intervals, "
                  f"tolerance ±{tol:g} (dotted), drawn within ±{_CLIP:g}",
                  fontsize=10)

@@ -286,29 +286,51 @@ def make_executor(workers: int | None = None, scheduler: str | None = None) -> I
     return Dask(workers=workers, scheduler=scheduler)
 
 
+_STDERR_LOCK = threading.Lock()
+_STDERR_BARS = 0  # progress bars now shown (in any thread); the outermost one wraps sys.stderr
+
+
 @contextmanager
 def _progress_bar(total: int, initial: int, enabled: bool):
-    """A tqdm bar over tasks. While it is shown, what is written to ``sys.stderr`` (warnings of the levels,
-    above all) goes through ``tqdm.write``, above the bar instead of through the middle of its line;
-    recorded warnings (``warnings.catch_warnings(record=True)``, ``pytest.warns``) stay recorded."""
+    """A tqdm bar over tasks. While bars are shown, what is written to ``sys.stderr`` (warnings of the
+    levels, above all) goes through ``tqdm.write``, above the bar instead of through the middle of its
+    line; recorded warnings (``warnings.catch_warnings(record=True)``, ``pytest.warns``) stay recorded.
+    The first bar to open wraps ``sys.stderr`` and the last to close puts it back, if nothing else has
+    replaced it meanwhile."""
     from tqdm.auto import tqdm
-    from tqdm.contrib import DummyTqdmFile
 
     with tqdm(total=total, initial=initial, unit="task", desc="tasks", disable=not enabled,
               smoothing=0.1) as bar:
         if not enabled:
             yield bar
             return
-        stderr = sys.stderr
-        sys.stderr = DummyTqdmFile(stderr)
+        _wrap_stderr(+1)
         try:
             yield bar
         finally:
-            leftover = sys.stderr
-            sys.stderr = stderr
-            if isinstance(leftover, DummyTqdmFile) and leftover._buf:
-                stderr.write("".join(leftover._buf))
-                leftover._buf = []
+            _wrap_stderr(-1)
+
+
+def _wrap_stderr(change: int) -> None:
+    global _STDERR_BARS, _STDERR_WRAPPED
+    from tqdm.contrib import DummyTqdmFile
+
+    with _STDERR_LOCK:
+        _STDERR_BARS += change
+        if change > 0 and _STDERR_BARS == 1:
+            _STDERR_WRAPPED = (sys.stderr, DummyTqdmFile(sys.stderr))
+            sys.stderr = _STDERR_WRAPPED[1]
+        elif change < 0 and _STDERR_BARS == 0 and _STDERR_WRAPPED is not None:
+            original, wrapper = _STDERR_WRAPPED
+            _STDERR_WRAPPED = None
+            if wrapper._buf:  # a last line without its newline
+                original.write("".join(wrapper._buf))
+                wrapper._buf = []
+            if sys.stderr is wrapper:
+                sys.stderr = original
+
+
+_STDERR_WRAPPED: tuple | None = None
 
 
 def execute(

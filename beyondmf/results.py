@@ -62,7 +62,9 @@ def _encode_attrs(attrs: dict[str, Any]) -> dict[str, Any]:
     for key, val in attrs.items():
         if isinstance(val, bool | np.bool_):
             out[key] = int(val)
-        elif isinstance(val, str | int | float | np.integer | np.floating):
+        elif isinstance(val, str):
+            out[key] = str(val)  # numpy's str_ too, which h5py cannot store as it is
+        elif isinstance(val, int | float | np.integer | np.floating):
             out[key] = val
         else:
             out[key] = json.dumps(val, default=_json_default)
@@ -232,9 +234,11 @@ def load(path: str | os.PathLike) -> xr.Dataset:
         if name.endswith(_RE) and var.attrs.get("complex_parts") == 1:
             base = name[: -len(_RE)]
             attrs = {k: v for k, v in var.attrs.items() if k != "complex_parts"}
-            merged = var + 1j * raw[base + _IM]
-            merged.attrs = attrs
-            ds[base] = merged
+            # set the parts, not re + 1j·im: that turns a real part −0.0 into +0.0, and a non-finite
+            # imaginary part into a NaN real part
+            data = np.empty(var.shape, dtype=complex)
+            data.real, data.imag = var.values, raw[base + _IM].values
+            ds[base] = xr.DataArray(data, dims=var.dims, coords=var.coords, attrs=attrs)
         elif not name.endswith(_IM):
             ds[name] = var
     for name in ds.variables:

@@ -550,17 +550,21 @@ _FINER_WHEN_SMALLER = ("dt", "rtol", "atol")
 
 
 def _check_refinement_order(dim: str, values: Sequence) -> None:
-    x = np.asarray(values, dtype=float)
-    steps = np.diff(x)
-    if not (np.all(steps > 0) or np.all(steps < 0)):
-        raise StudyError(f"convergence.dimension: the values of {dim!r} ({', '.join(f'{v:g}' for v in x)}) "
-                         "must run from coarse to fine, strictly increasing or decreasing: the criterion "
-                         "judges the last step")
-    option = dim.rsplit("_", 1)[-1] if dim not in _FINER_WHEN_LARGER + _FINER_WHEN_SMALLER else dim
-    wrong = ("increasing" if option in _FINER_WHEN_LARGER and steps[0] < 0 else
-             "decreasing" if option in _FINER_WHEN_SMALLER and steps[0] > 0 else None)
+    from .convergence import strictly_monotonic
+
+    if not all(isinstance(v, int | float) and not isinstance(v, bool) for v in values):
+        return  # e.g. dt = ["auto", 0.01]: no order to check; assess skips such a parameter too
+    got = ", ".join(f"{v:g}" for v in values)
+    if not strictly_monotonic(values):
+        raise StudyError(f"convergence.dimension: the values of {dim!r} ({got}) must run from coarse to "
+                         "fine, strictly increasing or decreasing: the criterion judges the last step")
+    # the dimension is the option's name, or the whole grid path with '_' when two paths end alike
+    option = next((o for o in _FINER_WHEN_LARGER + _FINER_WHEN_SMALLER if dim == o or dim.endswith("_" + o)),
+                  None)
+    rising = values[1] > values[0]
+    wrong = ("increasing" if option in _FINER_WHEN_LARGER and not rising else
+             "decreasing" if option in _FINER_WHEN_SMALLER and rising else None)
     if wrong:
-        got = ", ".join(f"{v:g}" for v in x)
         raise StudyError(f"convergence.dimension: list the values of {dim!r} from coarse to fine, "
                          f"{wrong} (got {got}): the criterion judges the last step")
 

@@ -212,6 +212,15 @@ def _checksum(ds: xr.Dataset) -> str:
     return h.hexdigest()
 
 
+def _data_checksum(ds: xr.Dataset) -> str:
+    """The checksum of task file format 1: SHA-256 over the names and bytes of the data variables."""
+    h = hashlib.sha256()
+    for name in sorted(ds.data_vars):
+        h.update(name.encode())
+        h.update(np.ascontiguousarray(ds[name].values).tobytes())
+    return h.hexdigest()
+
+
 def _stamp(ds: xr.Dataset, task: Mapping[str, Any], status: str, seconds: float) -> xr.Dataset:
     ds = ds.copy()
     ds.attrs.update(
@@ -264,11 +273,13 @@ def read_task(path: str | Path, task: Mapping[str, Any]) -> xr.Dataset:
     attrs = ds.attrs
     if attrs.get("task_key") != task_key(task) or attrs.get("task") != canonical(task):
         raise TaskFileError(f"{path}: written for another task")
-    if attrs.get("task_format") != FORMAT:
-        raise TaskFileError(f"{path}: written by another version of beyondmf (task file format "
-                            f"{attrs.get('task_format')}, this one writes {FORMAT})")
+    fmt = attrs.get("task_format")
+    if fmt not in (1, FORMAT):
+        raise TaskFileError(f"{path}: written by another version of beyondmf (task file format {fmt}, "
+                            f"this one reads 1 and {FORMAT})")
     if attrs.get("task_status") not in ("done", "failed"):
         raise TaskFileError(f"{path}: incomplete (status {attrs.get('task_status')!r})")
-    if attrs.get("task_checksum") != _checksum(ds):
+    # format 1 (before 2026-12-02) summed the data variables only: still verifiable, so still used
+    if attrs.get("task_checksum") != (_checksum(ds) if fmt == FORMAT else _data_checksum(ds)):
         raise TaskFileError(f"{path}: data checksum mismatch")
     return ds

@@ -525,7 +525,7 @@ def test_the_run_says_where_its_tasks_run(tmp_path, capsys):
                           + "[sweep]\nrealizations = 1\n")
     code, err = _run(["run", study_file, "--out", tmp_path / "out", "--no-plots"], capsys)
     assert code == 0, err
-    assert "running 1 task in this process; finished tasks in" in err
+    assert "1 task to run in this process; those finished in" in err
 
 
 def test_a_grid_point_that_cannot_be_built_fails_before_the_run_starts(tmp_path, capsys):
@@ -534,7 +534,7 @@ def test_a_grid_point_that_cannot_be_built_fails_before_the_run_starts(tmp_path,
     study_file.write_text(_replace(_replace(SMALL, "n = 12", "n = 3"), "seed = 3\n", "") + grid)
     code, err = _run(["run", study_file, "--out", tmp_path / "out", "--no-plots"], capsys)
     assert code == cli.EXIT_USAGE, err
-    assert "running " not in err and "min_distance" in err, err
+    assert "to run" not in err and "min_distance" in err, err
     assert not (tmp_path / "out").exists()
 
 

@@ -305,9 +305,26 @@ def test_correction_figure_fits_its_corrections_and_labels_the_grid(tmp_path, mo
     assert 0.3 * 1.1 <= limits[0.3] < 0.36  # the largest correction (0.3 and its interval), with a margin
 
 
-def test_values_figure_colours_curves_by_level_and_styles_them_by_grid_point(tmp_path, monkeypatch):
+def _legend_objects(ax) -> list:
+    return ax.findobj(lambda o: o.__class__.__name__ == "Legend")
+
+
+def _legend_texts(ax) -> list[list[str]]:
+    return [[t.get_text() for t in leg.get_texts()] for leg in _legend_objects(ax)]
+
+
+def _boxes_overlap(fig, ax) -> bool:
+    fig.canvas.draw()
+    boxes = [leg.get_window_extent() for leg in _legend_objects(ax)]
+    return any(a.overlaps(b) for k, a in enumerate(boxes) for b in boxes[k + 1:])
+
+
+@pytest.mark.parametrize("observables", [["emitted", "emission_rate"], ["emission_rate", "emitted"]])
+def test_figures_colour_curves_by_level_and_style_them_by_grid_point(tmp_path, monkeypatch, observables):
     """Time curves of a sweep: one colour per level (as in every other panel and legend), one line style
-    per grid point, with a legend of the styles; before, each curve took the next colour of the cycle."""
+    per grid point, with a grey legend of the styles, in values.png and corrections.png (which drew the
+    grid's first point only before); the style legend and the level legend never cover each other, also
+    when the time panel is the first one, which carries the level legend."""
     from beyondmf import correction_plots
 
     figures = {}
@@ -318,18 +335,19 @@ def test_values_figure_colours_curves_by_level_and_styles_them_by_grid_point(tmp
                       "emitted": (("density", "level", "realization"), rate[..., -1])},
                      coords={"density": [3.0, 0.3], "level": ["exact", "qsd_product"],
                              "realization": np.arange(3), "time": t})
-    s = summarize(per, baseline="exact", tolerance=0.1, observables=["emitted", "emission_rate"])
+    s = summarize(per, baseline="exact", tolerance=0.1, observables=observables)
     correction_plots.plot_sweep(s, tmp_path)
-    ax = next(a for a in figures["values.png"].axes if a.get_xlabel() == "time (1/Γ0)")
-    lines = ax.get_lines()
-    assert [ln.get_color() for ln in lines] == ["C0", "C0", "C1", "C1"]
-    assert [ln.get_linestyle() for ln in lines] == ["-", "--", "-", "--"]
-    assert [x.get_text() for x in ax.get_legend().get_texts()] == ["density=3", "density=0.3"]
-    # the corrections figure draws every grid point too (it drew only the first before)
-    ax = next(a for a in figures["corrections.png"].axes if a.get_xlabel() == "time (1/Γ0)")
-    curves = [ln for ln in ax.get_lines() if len(ln.get_xdata()) == t.size]
-    assert [(ln.get_color(), ln.get_linestyle()) for ln in curves] == [("C1", "-"), ("C1", "--")]
-    assert [x.get_text() for x in ax.get_legend().get_texts()] == ["density=3", "density=0.3"]
+    styles = ["density=3", "density=0.3"]
+    for name, levels, colours in (("values.png", ["exact", "qsd_product"], ["C0", "C0", "C1", "C1"]),
+                                  ("corrections.png", ["qsd_product"], ["C1", "C1"])):
+        fig = figures[name]
+        ax = next(a for a in fig.axes if a.get_xlabel() == "time (1/Γ0)")
+        curves = [ln for ln in ax.get_lines() if len(ln.get_xdata()) == t.size]
+        assert [ln.get_color() for ln in curves] == colours, name
+        assert [ln.get_linestyle() for ln in curves] == ["-", "--"] * (len(colours) // 2), name
+        assert styles in _legend_texts(ax), name
+        assert any(texts[: len(levels)] == levels for texts in _legend_texts(fig.axes[0])), name
+        assert not _boxes_overlap(fig, fig.axes[0]), name
 
 
 def test_compare_levels_takes_flat_position_arrays_and_records_them_as_emitters():

@@ -63,3 +63,26 @@ def test_warnings_print_above_the_progress_bar_not_inside_its_line():
     # on the same line. Written through tqdm, it is a line of its own that starts with the location.
     assert all(line.startswith("<string>:") for line in lines), err
     assert "tasks" in err  # the bar was shown
+
+
+def test_progress_bars_put_stderr_back_whatever_order_they_close_in():
+    # two bars in two threads may close in either order; an exception inside a bar must not leave
+    # sys.stderr wrapped (the first implementation restored what each bar had seen when it opened)
+    import contextlib
+
+    from beyondmf.executors import _progress_bar
+
+    original = sys.stderr
+    first, second = _progress_bar(1, 0, True), _progress_bar(1, 0, True)
+    first.__enter__()
+    second.__enter__()
+    assert sys.stderr is not original
+    first.__exit__(None, None, None)  # the first to open closes first
+    assert sys.stderr is not original  # the second bar is still shown
+    second.__exit__(None, None, None)
+    assert sys.stderr is original
+    with contextlib.suppress(RuntimeError), _progress_bar(1, 0, True):
+        raise RuntimeError
+    assert sys.stderr is original
+    with _progress_bar(1, 0, False):  # a hidden bar leaves stderr alone
+        assert sys.stderr is original

@@ -115,6 +115,25 @@ def test_convergence_refuses_a_refinement_listed_out_of_order(tmp_path, values, 
     assert fragment in msg
 
 
+def test_refinement_order_follows_the_option_also_under_a_full_path_name(tmp_path):
+    # two grid paths that end alike name their dimensions by the whole path
+    grid = ('[sweep]\n[sweep.grid]\n"levels.cumulant2.rtol" = [1e-6, 1e-4]\n'
+            '"levels.meanfield.rtol" = [1e-4, 1e-6]\n')
+    conv = '[convergence]\ndimension = "{}"\nlevel = "{}"\n'
+    msg = _refused(tmp_path, BASE + grid + conv.format("levels_cumulant2_rtol", "cumulant2"),
+                   "convergence.dimension")
+    assert "list the values of 'levels_cumulant2_rtol' from coarse to fine, decreasing" in msg
+    _read(tmp_path, BASE + grid + conv.format("levels_meanfield_rtol", "meanfield"))
+
+
+def test_a_refinement_with_a_non_numeric_value_is_read(tmp_path):
+    # dt = "auto" has no order; the convergence table skips such a parameter's order too
+    text = (BASE + "[levels.twa]\nsamples = 20\n"
+            + '[sweep]\n[sweep.grid]\n"levels.twa.dt" = ["auto", 0.01]\n'
+            + '[convergence]\ndimension = "dt"\nlevel = "twa"\n')
+    assert _read(tmp_path, text).extra["convergence"].dim == "dt"
+
+
 def test_convergence_without_a_grid_is_refused(tmp_path):
     msg = _refused(tmp_path, BASE + '[convergence]\ndimension = "rtol"\nlevel = "cumulant2"\n',
                    "convergence.dimension")

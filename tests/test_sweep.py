@@ -94,12 +94,13 @@ def test_damaged_task_files_are_recomputed(tmp_path):
 
 
 @pytest.mark.parametrize("level, options", [("meanfield", {}), ("twa", {"samples": 8}), ("exact", {})])
-def test_a_task_file_reads_back_whole_and_a_changed_attribute_or_name_is_caught(tmp_path, level, options):
+def test_a_task_file_reads_back_whole_and_a_changed_attribute_or_coordinate_is_caught(tmp_path, level,
+                                                                                      options):
     # the checksum covers coordinates and attributes as well as the data (a corrupted attribute was read
     # back silently before): edit the file through h5py, as bytes on disk would change
     import h5py
 
-    from beyondmf.tasks import TaskFileError, read_task, run_task
+    from beyondmf.tasks import TaskFileError, _data_checksum, read_task, run_task
 
     task = {"positions": np.array([[0.0, 0, 0], [0.3, 0, 0]]), "model": {"rabi": 1.0},
             "run": {"calculation": "evolve", "times": [0.0, 0.5], "initial": "ground"},
@@ -109,14 +110,26 @@ def test_a_task_file_reads_back_whole_and_a_changed_attribute_or_name_is_caught(
     key, status, _ = run_task(task, tmp_path)
     assert status == "done"
     path = task_path(tmp_path, key)
+    pristine = path.read_bytes()
     read_task(path, task)  # what was written reads back as written
     with h5py.File(path, "r+") as f:
         f["g2_total"].attrs["long_name"] = "garbage" + f["g2_total"].attrs["long_name"][7:]
     with pytest.raises(TaskFileError, match="checksum mismatch"):
         read_task(path, task)
+    path.write_bytes(pristine)
     with h5py.File(path, "r+") as f:
-        f.attrs["task_format"] = 1
-    with pytest.raises(TaskFileError, match="another version of beyondmf .task file format 1"):
+        f["position"][1, 0] = 0.31  # a coordinate: where the second emitter was
+    with pytest.raises(TaskFileError, match="checksum mismatch"):
+        read_task(path, task)
+    # a file of format 1 (its checksum over the data variables only) is still verified and used
+    path.write_bytes(pristine)
+    old = _data_checksum(bm_load(path))
+    with h5py.File(path, "r+") as f:
+        f.attrs["task_format"], f.attrs["task_checksum"] = 1, old
+    read_task(path, task)
+    with h5py.File(path, "r+") as f:
+        f.attrs["task_format"] = 7
+    with pytest.raises(TaskFileError, match="another version of beyondmf .task file format 7"):
         read_task(path, task)
 
 
