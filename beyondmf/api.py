@@ -80,7 +80,8 @@ def _seed(level: Level, seed):
 
 def _attrs(model: Model, level: Level, kind: str, options, seed, extra) -> dict[str, Any]:
     attrs = {"level": level.name, "calculation": kind, **model.parameters(), "options": options}
-    attrs["seed"] = -1 if seed is None else seed
+    # a deterministic level uses no seed: −1 there, whatever was passed (a study passes its seed to all)
+    attrs["seed"] = seed if (seed is not None and level.stochastic) else -1
     attrs.update(extra)
     attrs.update(provenance())
     return attrs
@@ -139,10 +140,19 @@ def evolve(
     named = isinstance(initial, str)
     init = initial if named else "bloch vectors (data variable initial_bloch)"
     attrs = _attrs(model, lvl, "evolve", opts, seed, {"initial": init, "warnings": said})
-    ds = assemble(model, lvl.name, moments, probes, ts, attrs)
+    ds = _with_inputs(model, assemble(model, lvl.name, moments, probes, ts, attrs))
     if not named:  # the state itself, so that the file says how to reproduce the run
         ds["initial_bloch"] = (("atom", "axis"), bloch,
                                {"units": "1", "long_name": "initial Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩)"})
+    return ds
+
+
+def _with_inputs(model: Model, ds: xr.Dataset) -> xr.Dataset:
+    """Custom couplings are part of the model: kept in the result, so that the file can reproduce it."""
+    if model.coupling == "custom":
+        for name, mat, what in (("coupling_J", model.J, "exchange J_ij"), ("coupling_Gamma", model.Gamma,
+                                                                           "collective decay Γ_ij")):
+            ds[name] = (("atom", "partner"), np.array(mat), {"units": "Γ0", "long_name": f"custom {what}"})
     return ds
 
 
@@ -168,4 +178,4 @@ def steady(
     with collecting() as said:
         moments = lvl.steady(model, probes, seed, opts)
     attrs = _attrs(model, lvl, "steady", opts, seed, {"warnings": said})
-    return assemble(model, lvl.name, moments, probes, None, attrs)
+    return _with_inputs(model, assemble(model, lvl.name, moments, probes, None, attrs))

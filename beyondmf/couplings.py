@@ -33,6 +33,10 @@ def _unit(vec, name: str) -> np.ndarray:
     norm = np.linalg.norm(v)
     if norm == 0:
         raise ValueError(f"{name} must not be the zero vector")
+    if abs(norm - 1.0) <= 4 * np.finfo(float).eps:
+        # already a unit vector (e.g. one read back from a results file): dividing again would move its
+        # last digits, and a rerun from the file would then differ in the last digits
+        return v
     return v / norm
 
 

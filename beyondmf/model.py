@@ -263,4 +263,6 @@ class Model:
             "detuning": float(self.detuning),
             "saturation": self.saturation,
             "envelope": self.envelope.describe(),
+            # the exact windows (the description rounds them to 6 digits); empty: constant or a function
+            "envelope_windows": [list(w) for w in (self.envelope.windows or ())],
         }

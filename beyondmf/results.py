@@ -35,9 +35,29 @@ def provenance() -> dict[str, str]:
 
     return {
         "beyondmf_version": __version__,
+        "beyondmf_commit": _source_commit(),
         "jax_version": jax.__version__,
         "diffrax_version": diffrax.__version__,
     }
+
+
+@functools.cache
+def _source_commit() -> str:
+    """The git commit of the code that runs, with "+changes" when its files differ from it; "" when the
+    package is not run from a git checkout (an installed release: its version says what it is)."""
+    import subprocess
+
+    here = Path(__file__).resolve().parent
+    try:
+        top, head = subprocess.run(["git", "-C", str(here), "rev-parse", "--show-toplevel", "HEAD"],
+                                   capture_output=True, text=True, timeout=5, check=True).stdout.split()
+        if Path(top).resolve() / "beyondmf" != here:  # an installed copy inside some other repository
+            return ""
+        dirty = subprocess.run(["git", "-C", str(here), "status", "--porcelain", "--untracked-files=no",
+                                "--", "."], capture_output=True, text=True, timeout=5, check=True).stdout
+    except (OSError, subprocess.SubprocessError):
+        return ""
+    return head + ("+changes" if dirty.strip() else "")
 
 
 def _json_default(obj: Any):

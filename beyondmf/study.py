@@ -561,7 +561,8 @@ def run_study(
     lines). The top-level attributes are those every level has with the same value (the model parameters,
     the calculation); all of each level's attributes (options, solver statistics, sample counts) are kept
     per level in the attribute ``levels`` (level name → its attributes); the study file's text is in
-    ``study``.
+    ``study``. A study without ``run.seed`` draws one seed for all its sampled levels: ``run_seed`` (with
+    ``run_seed_drawn`` = 1), which ``seed = run_seed`` in [run] reproduces.
 
     A level that cannot do the model (it refuses it, its solve fails, it does not fit in memory) raises,
     and nothing is returned. With ``keep_going`` the other levels still run instead: the result has the
@@ -571,16 +572,20 @@ def run_study(
     model = study.build_model()
     detectors = study.detector_directions()
     results, names, failures, first_error = [], [], [], None
+    seed = study.run.seed
+    if seed is None and any(get_level(name).stochastic for name in study.levels):
+        # one drawn seed for every sampled level, recorded as run_seed: [run] seed = run_seed reruns it
+        seed = int(np.random.SeedSequence().entropy % 2**31)
     for name, options in study.levels.items():
         if on_level:
             on_level(name, "start", None)
         t0 = time.perf_counter()
         try:
             if study.run.calculation == "steady":
-                ds = steady(model, name, detectors=detectors, seed=study.run.seed, **options)
+                ds = steady(model, name, detectors=detectors, seed=seed, **options)
             else:
                 ds = evolve(model, name, study.run.times(), initial=study.run.initial, detectors=detectors,
-                            seed=study.run.seed, **options)
+                            seed=seed, **options)
         except _LEVEL_FAILURES as err:
             if not keep_going:
                 raise
@@ -615,5 +620,7 @@ def run_study(
         geometry=study.geometry.kind,
         geometry_parameters=study.geometry.params,
         failures=failures,
+        run_seed=-1 if seed is None else seed,
+        run_seed_drawn=int(study.run.seed is None and seed is not None),
     )
     return combined

@@ -233,14 +233,17 @@ def stack(
         out = out.assign(_burst_observables(out))
     out.attrs["failures"] = failures
     out.attrs["warnings"] = said
-    out.attrs.update(shared_parameters(index, labels))
+    out.attrs.update(shared_parameters(index, labels, results))
     return out
 
 
-def shared_parameters(index: Mapping[tuple, Mapping[str, Any]], labels: Sequence[str]) -> dict[str, Any]:
+def shared_parameters(index: Mapping[tuple, Mapping[str, Any]], labels: Sequence[str],
+                      results: Mapping[str, xr.Dataset] | None = None) -> dict[str, Any]:
     """What the tasks of a merged result have in common, for its attributes: the package versions, the
-    level and options behind each label, and the model arguments, run and detectors where every task has
-    the same (a grid over one of them leaves it out; the study text, where there is one, has it)."""
+    level and options behind each label (given, and ``as_run``: with the defaults and what "auto" chose, read
+    from a finished task of ``results``), every model argument that all tasks share (those a grid varies
+    are listed in ``model_varied``; their values are in the grid coordinates), and the run and detectors
+    where every task has the same (the study text, where there is one, has everything)."""
     from .results import provenance
     from .tasks import _plain, model_defaults
 
@@ -261,17 +264,44 @@ def shared_parameters(index: Mapping[tuple, Mapping[str, Any]], labels: Sequence
         varied = [k for k in names if k not in same]
         if varied:  # a grid over these options: their values are in the grid coordinates
             entry["varied"] = varied
+        # every option as the level ran it (defaults included) and what "auto" chose, from a finished task
+        ran = next((results[task_key(t)].attrs for t in group if results is not None
+                    and results[task_key(t)].attrs.get("task_status", "done") == "done"
+                    and "options" in results[task_key(t)].attrs), None)
+        if ran is not None:
+            entry["as_run"] = {k: v for k, v in _plain(ran["options"]).items() if k not in varied}
+            for chosen in ("solver", "dt", "chunk"):
+                if chosen in ran and chosen not in varied:
+                    entry["as_run"][f"{chosen}_chosen"] = _plain(ran[chosen])
         out["level_options"][label] = entry
-    for part in ("model", "run", "detectors"):
+    for part in ("run", "detectors"):
         values = {repr(_plain(t.get(part))) for t in tasks}
         if len(values) == 1 and tasks[0].get(part) is not None:
             out[part] = _plain(tasks[0][part])
-    if "model" in out:  # every argument of Model, the defaults written out
-        out["model"] = {**_plain(model_defaults()), **out["model"]}
+    # every argument of Model, the defaults written out, except those the grid varies (in its coordinates)
+    models = [{**_plain(model_defaults()), **_plain(t.get("model") or {})} for t in tasks]
+    keys = sorted({k for m in models for k in m})
+    out["model"] = {k: _complex_back(models[0][k]) for k in keys
+                    if all(k in m and repr(m[k]) == repr(models[0][k]) for m in models)}
+    varied = [k for k in keys if k not in out["model"]]
+    if varied:
+        out["model_varied"] = varied
     sizes = {len(t["positions"]) for t in tasks}
     if len(sizes) == 1:
         out["N"] = sizes.pop()
     return out
+
+
+def _complex_back(value: Any) -> Any:
+    """A task's {"re": a, "im": b} (its canonical form of a complex number) as the complex a + bj, so that the
+    attribute can be passed back to `beyondmf.Model` as it is."""
+    if isinstance(value, dict) and set(value) == {"re", "im"}:
+        return complex(value["re"], value["im"])
+    if isinstance(value, list):
+        return [_complex_back(v) for v in value]
+    if isinstance(value, dict):
+        return {k: _complex_back(v) for k, v in value.items()}
+    return value
 
 
 def _burst_observables(ds: xr.Dataset) -> dict[str, xr.DataArray]:

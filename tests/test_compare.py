@@ -179,8 +179,13 @@ def test_compare_levels_uses_the_same_draws_at_every_level(tmp_path):
     assert back.attrs["model"] == {"dipole": [1, 0, 0], "coupling": "vector", "rabi": 1, "detuning": 0,
                                    "laser": [0, 0, 1], "envelope": None}
     assert back.attrs["run"]["calculation"] == "evolve" and back.attrs["run"]["times"][-1] == 2
-    assert back.attrs["level_options"]["meanfield_tight"] == {"level": "meanfield",
-                                                              "options": {"rtol": 1e-10, "atol": 1e-12}}
+    entry = back.attrs["level_options"]["meanfield_tight"]
+    assert {k: entry[k] for k in ("level", "options")} == {"level": "meanfield",
+                                                            "options": {"rtol": 1e-10, "atol": 1e-12}}
+    # as the level ran: every option, defaults included, and what "auto" chose
+    assert entry["as_run"]["rtol"] == 1e-10 and entry["as_run"]["max_steps"] == bm.level_options("meanfield")[
+        "max_steps"]
+    assert entry["as_run"]["solver_chosen"] in ("tsit5", "kvaerno5")
     assert back.attrs["seed"] == 2 and back.attrs["N"] == 4
     assert back.attrs["beyondmf_version"] == bm.__version__
 
