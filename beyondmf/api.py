@@ -70,11 +70,21 @@ def _options(level: Level, given: dict[str, Any]) -> dict[str, Any]:
     return opts
 
 
+def draw_seed() -> int:
+    """A fresh random seed for a sampling level (recorded with its results)."""
+    return int(np.random.SeedSequence().entropy % 2**31)
+
+
+def check_seed(seed) -> None:
+    if not (is_count(seed, 0) and seed < 2**63):
+        raise ValueError(f"seed must be a non-negative integer below 2**63, got {seed!r}")
+
+
 def _seed(level: Level, seed):
     if seed is None and level.stochastic:
-        return int(np.random.SeedSequence().entropy % 2**31)
-    if seed is not None and not (is_count(seed, 0) and seed < 2**63):
-        raise ValueError(f"seed must be a non-negative integer below 2**63, got {seed!r}")
+        return draw_seed()
+    if seed is not None:
+        check_seed(seed)
     return None if seed is None else int(seed)
 
 

@@ -44,6 +44,7 @@ import numpy as np
 import xarray as xr
 from scipy import stats
 
+from .api import check_seed
 from .levels.base import is_count
 from .model import Model
 
@@ -254,8 +255,7 @@ def compare_levels(
     if not is_count(realizations, 1):
         raise ValueError(f"realizations must be a positive integer, got {realizations!r}")
     k = int(realizations)
-    if not (is_count(seed, 0) and seed < 2**63):
-        raise ValueError(f"seed must be a non-negative integer below 2**63, got {seed!r}")
+    check_seed(seed)
     if isinstance(observables, str) or not all(isinstance(o, str) for o in observables):
         raise ValueError(f"observables must be a list of names, e.g. ['emission_rate'], got {observables!r}")
     model_args = {f.name for f in dataclasses.fields(Model) if f.init} - {"positions"}

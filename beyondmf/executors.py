@@ -288,6 +288,7 @@ def make_executor(workers: int | None = None, scheduler: str | None = None) -> I
 
 _STDERR_LOCK = threading.Lock()
 _STDERR_BARS = 0  # progress bars now shown (in any thread); the outermost one wraps sys.stderr
+_STDERR_WRAPPED: tuple | None = None  # (the stderr it replaced, its wrapper) while bars are shown
 
 
 @contextmanager
@@ -328,9 +329,6 @@ def _wrap_stderr(change: int) -> None:
                 wrapper._buf = []
             if sys.stderr is wrapper:
                 sys.stderr = original
-
-
-_STDERR_WRAPPED: tuple | None = None
 
 
 def execute(

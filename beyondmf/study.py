@@ -25,10 +25,10 @@ import numpy as np
 import xarray as xr
 
 from . import geometry as geo
-from .api import evolve, steady
+from .api import draw_seed, evolve, steady
 from .couplings import KINDS as COUPLING_KINDS
 from .integrate import SolveError
-from .levels.base import available_levels, get_level
+from .levels.base import available_levels, detector_direction, get_level
 from .model import Model
 
 __all__ = [
@@ -222,23 +222,6 @@ def _parse_drive(table: dict, where: str) -> Drive:
             raise _fail(f"{where}.windows", what, w)
         windows = tuple((float(a), float(b)) for a, b in w)
     return Drive(rabi, det, laser, windows)
-
-
-def detector_direction(laser, angle_deg: float, azimuth_deg: float = 0.0) -> np.ndarray:
-    """The unit vector at ``angle_deg`` from the laser direction, turned ``azimuth_deg`` about it.
-
-    Azimuth 0 lies in the plane of the laser and the reference axis x̂ (ŷ when |l̂_x| ≥ 0.9, a laser
-    along or near x); with ê1 that axis made perpendicular to l̂, azimuth 90° points along l̂ × ê1
-    (ŷ for a laser along z, ẑ for a laser along x, −ẑ for a laser along y).
-    """
-    l_hat = np.asarray(laser, dtype=float)
-    l_hat = l_hat / np.linalg.norm(l_hat)
-    ref = np.array([1.0, 0.0, 0.0]) if abs(l_hat[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    e1 = ref - (ref @ l_hat) * l_hat
-    e1 /= np.linalg.norm(e1)
-    e2 = np.cross(l_hat, e1)
-    th, ph = np.radians(angle_deg), np.radians(azimuth_deg)
-    return np.cos(th) * l_hat + np.sin(th) * (np.cos(ph) * e1 + np.sin(ph) * e2)
 
 
 @dataclass(frozen=True)
@@ -561,8 +544,8 @@ def run_study(
     lines). The top-level attributes are those every level has with the same value (the model parameters,
     the calculation); all of each level's attributes (options, solver statistics, sample counts) are kept
     per level in the attribute ``levels`` (level name → its attributes); the study file's text is in
-    ``study``. A study without ``run.seed`` draws one seed for all its sampled levels: ``run_seed`` (with
-    ``run_seed_drawn`` = 1), which ``seed = run_seed`` in [run] reproduces.
+    ``study``. A study without ``run.seed`` draws one seed for all its sampled levels, recorded as
+    ``run_seed``; ``seed = run_seed`` in [run] reproduces the run.
 
     A level that cannot do the model (it refuses it, its solve fails, it does not fit in memory) raises,
     and nothing is returned. With ``keep_going`` the other levels still run instead: the result has the
@@ -575,7 +558,7 @@ def run_study(
     seed = study.run.seed
     if seed is None and any(get_level(name).stochastic for name in study.levels):
         # one drawn seed for every sampled level, recorded as run_seed: [run] seed = run_seed reruns it
-        seed = int(np.random.SeedSequence().entropy % 2**31)
+        seed = draw_seed()
     for name, options in study.levels.items():
         if on_level:
             on_level(name, "start", None)
@@ -621,6 +604,5 @@ def run_study(
         geometry_parameters=study.geometry.params,
         failures=failures,
         run_seed=-1 if seed is None else seed,
-        run_seed_drawn=int(study.run.seed is None and seed is not None),
     )
     return combined

@@ -265,9 +265,8 @@ def shared_parameters(index: Mapping[tuple, Mapping[str, Any]], labels: Sequence
         if varied:  # a grid over these options: their values are in the grid coordinates
             entry["varied"] = varied
         # every option as the level ran it (defaults included) and what "auto" chose, from a finished task
-        ran = next((results[task_key(t)].attrs for t in group if results is not None
-                    and results[task_key(t)].attrs.get("task_status", "done") == "done"
-                    and "options" in results[task_key(t)].attrs), None)
+        finished = (results[task_key(t)].attrs for t in group) if results is not None else ()
+        ran = next((a for a in finished if a.get("task_status", "done") == "done" and "options" in a), None)
         if ran is not None:
             entry["as_run"] = {k: v for k, v in _plain(ran["options"]).items() if k not in varied}
             for chosen in ("solver", "dt", "chunk"):

@@ -415,3 +415,23 @@ def test_results_attributes_are_those_every_level_shares(monkeypatch):
     for name in ("samples", "dt", "options", "level"):
         assert name not in ds.attrs, name
     assert ds.attrs["levels"]["twa"]["samples"] == 10 and ds.attrs["levels"]["twa"]["dt"] == 0.01
+
+
+def test_a_study_without_a_seed_records_the_one_it_drew_and_reruns_with_it(tmp_path):
+    # conventions.md, "data contract": the file says how to reproduce the run; one drawn seed serves every
+    # sampled level, and a deterministic level records none
+    from beyondmf.study import run_study
+
+    text = NO_LEVELS + "[levels.meanfield]\n[levels.twa]\nsamples = 20\n"
+    first = run_study(_read_single(tmp_path, text))
+    seed = first.attrs["run_seed"]
+    assert seed >= 0 and first.attrs["levels"]["twa"]["seed"] == seed
+    assert first.attrs["levels"]["meanfield"]["seed"] == -1
+    again = run_study(_read_single(tmp_path, text.replace("[run]\n", f"[run]\nseed = {seed}\n")))
+    np.testing.assert_array_equal(again["emission_rate"].values, first["emission_rate"].values)
+
+
+def _read_single(tmp_path, text):
+    path = tmp_path / "single.toml"
+    path.write_text(textwrap.dedent(text))
+    return study_mod.read_study(path)

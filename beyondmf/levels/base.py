@@ -49,11 +49,26 @@ class Probes:
         return cls(names, directions, weights)
 
 
+def detector_direction(laser, angle_deg: float, azimuth_deg: float = 0.0) -> np.ndarray:
+    """The unit vector at ``angle_deg`` from the laser direction, turned ``azimuth_deg`` about it.
+
+    Azimuth 0 lies in the plane of the laser and the reference axis x̂ (ŷ when |l̂_x| ≥ 0.9, a laser
+    along or near x); with ê1 that axis made perpendicular to l̂, azimuth 90° points along l̂ × ê1
+    (ŷ for a laser along z, ẑ for a laser along x, −ẑ for a laser along y).
+    """
+    l_hat = np.asarray(laser, dtype=float)
+    l_hat = l_hat / np.linalg.norm(l_hat)
+    ref = np.array([1.0, 0.0, 0.0]) if abs(l_hat[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    e1 = ref - (ref @ l_hat) * l_hat
+    e1 /= np.linalg.norm(e1)
+    e2 = np.cross(l_hat, e1)
+    th, ph = np.radians(angle_deg), np.radians(azimuth_deg)
+    return np.cos(th) * l_hat + np.sin(th) * (np.cos(ph) * e1 + np.sin(ph) * e2)
+
+
 def detector_directions(detectors: Mapping[str, Any], laser) -> dict[str, np.ndarray]:
     """name → unit vector, from a direction (x, y, z) or a table {"angle": θ, "azimuth": φ} in degrees
-    from the laser direction (as in study files: `beyondmf.study.detector_direction`)."""
-    from ..study import detector_direction
-
+    from the laser direction (as in study files: `detector_direction`)."""
     out = {}
     for name, spec in detectors.items():
         if isinstance(spec, Mapping):
