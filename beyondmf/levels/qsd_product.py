@@ -21,10 +21,11 @@ dropped; correlations between emitters are only the classical ones between traje
 (measured, docs/qsd_product.md): the undriven and weakly driven dense cloud, one emitter, the superradiant
 burst of an inverted cloud (Dicke peak within 1 %). Where not: strongly driven clusters with strong exchange
 (errors like mean field's or larger, 18–29 % of the peak emission rate for the dense chains of the docs),
-the slow tail of a dense inverted cluster (12–37 % in relative terms), and photon statistics at weak drive
-(g2 there is mean field's; a warning says so). Every run reports
-``exchange_leak``, the rate per excitation at which the exchange takes the trajectories out of product
-states, and warns when its average over the last 2/Γ0 exceeds 0.05 Γ0.
+the slow tail of a dense inverted cluster (12–37 % in relative terms), and photon statistics (g2) of a
+driven cloud with close pairs (errors up to 77 %). Every run reports ``exchange_leak`` and ``decay_leak``,
+the rates per excitation at which the exchange and the collective decay take the trajectories out of
+product states, and warns when the first, averaged over the last 2/Γ0, exceeds 0.05 Γ0, or the second,
+while the laser is on, exceeds 0.03 Γ0 (g2) or 0.1 Γ0 (the emission rate too).
 """
 
 from __future__ import annotations
@@ -48,8 +49,17 @@ __all__ = ["ProductStateDiffusion", "remembered_leak", "sample_pure"]
 # 1.6 → 34 %; inverted dense clusters 0.31 → 12 %, 0.97 → 17 %, 2.4 → 37 % (late times, small rates).
 LEAK_MEMORY_RATE = 0.5
 LEAK_WARNING = 0.05
-# Weak excitation: below this mean ρ_ee per emitter, with couplings above WEAK_COUPLING between some pair,
-# g2 is the product-state value (docs/qsd_product.md §5) and a warning says so.
+# The collective decay's share (decay_leak, per excitation, the same memory, counted only while the laser is
+# on: undriven, the unravelling's back-action keeps a burst right). Calibration (docs/qsd_product.md §4,
+# steady states of 40 driven pairs against the exact two-emitter solution): above 0.03 the relative errors
+# of g2_total reached 8–77 % at weak and moderate drive (Ω ≤ 0.3; one case 1 %) and up to 37 % under strong
+# drive; below 0.03 at most 1 %. Above 0.1 the emission rate errs too under strong drive (up to 24 %; below
+# 0.1 at most 2.3 %).
+DECAY_G2_WARNING = 0.03
+DECAY_RATE_WARNING = 0.1
+# Weak excitation at the end of a run (the tail of a decay, where decay_leak is not counted): below this
+# mean ρ_ee per emitter, with couplings above WEAK_COUPLING between some pair, g2 is the product-state value
+# (docs/qsd_product.md §5) and a warning says so, unless the decay_leak warning already did.
 WEAK_EXCITATION = 0.01
 WEAK_COUPLING = 0.05
 
@@ -123,19 +133,27 @@ def _unit(Y):
 
 
 def _exchange_leak(Y, args):
-    """Per trajectory ‖(1 − P)H_J|ψ⟩‖²: the part of the exchange's action that leaves product states.
+    """Per trajectory ‖(1 − P)H_J|ψ⟩‖² and ‖(1 − P)H_Γ|ψ⟩‖²: the parts of the exchange's action and of the
+    collective decay's coherent two-emitter term that leave product states.
 
     For a pure qubit state the complement of |ψ_i⟩ is one state, and the exchange J_ij(σ_i⁺σ_j⁻ + σ_j⁺σ_i⁻)
     flips a pair into it with amplitude ∝ J_ij (g_i² e_j² + e_i² g_j²) (g, e the ground and excited
-    amplitudes), so the squared norm is Σ_{i≠j} J_ij² [(1 − n_i)² n_j² + Re(β_i*² β_j²)].
+    amplitudes), so the squared norm is Σ_{i≠j} J_ij² [(1 − n_i)² n_j² + Re(β_i*² β_j²)]. The
+    non-Hermitian term H_Γ = −(i/2)Σ_{i≠j} Γ_ij σ_i⁺σ_j⁻ of the unravelling has the same form with
+    J_ij → Γ_ij/2 (and the two add in quadrature: their pair flips differ by the phase i). ``args["K2"]``
+    stacks J² and Γ²/4, zero diagonals, as one (2N × N) matrix.
     """
     x, y, z = _split(Y)
     S = x.shape[1]
+    N = x.shape[0]
     n = 0.5 * (1 + z)
     b2r, b2i = 0.25 * (x * x - y * y), -0.5 * x * y  # β² with β = (x − iy)/2
-    K = args["J2"] @ jnp.concatenate([n * n, b2r, b2i], axis=1)  # one real product, (N, 3S)
-    leak = jnp.sum((1 - n) ** 2 * K[:, :S] + b2r * K[:, S : 2 * S] + b2i * K[:, 2 * S :], axis=0)
-    return {"exchange_leak2": leak}
+    K = args["K2"] @ jnp.concatenate([n * n, b2r, b2i], axis=1)  # one real product, (2N, 3S)
+
+    def norm2(k):
+        return jnp.sum((1 - n) ** 2 * k[:, :S] + b2r * k[:, S : 2 * S] + b2i * k[:, 2 * S :], axis=0)
+
+    return {"exchange_leak2": norm2(K[:N]), "decay_leak2": norm2(K[N:])}
 
 
 @register
@@ -149,9 +167,11 @@ class ProductStateDiffusion(SpinSampling):
     initial_samples = staticmethod(sample_pure)
 
     def level_args(self, model, args: dict[str, Any]) -> dict[str, Any]:
-        require(8 * model.n**2, f"the squared exchange matrix of 'qsd_product' for {model.n} emitters")
+        require(16 * model.n**2, f"the squared coupling matrices of 'qsd_product' for {model.n} emitters")
         J = np.asarray(model.J.real, dtype=float)
-        return dict(args, J2=jnp.asarray(J * J - np.diag(np.diag(J * J))))
+        G = np.asarray(model.Gamma.real, dtype=float)
+        off = ~np.eye(model.n, dtype=bool)
+        return dict(args, K2=jnp.asarray(np.concatenate([J * J * off, G * G * off / 4])))
 
     def add_diagnostics(self, run_args, means, stderr, diagnostics, attrs) -> None:
         leak = np.sqrt(np.maximum(run_args["sums"]["exchange_leak2"] / run_args["count"], 0.0))
@@ -174,6 +194,34 @@ class ProductStateDiffusion(SpinSampling):
                 "with 'cumulant2' or an exact level"
             )
         model = run_args["model"]
+        dleak = np.sqrt(np.maximum(run_args["sums"]["decay_leak2"] / run_args["count"], 0.0))
+        dper = np.where(excitation > 0, dleak / np.where(excitation > 0, excitation, 1.0), 0.0)
+        diagnostics["decay_leak"] = (("time",), dper, {
+            "units": "Γ0 per excitation",
+            "long_name": "rate at which the collective decay's two-emitter term leaves product states, "
+                         "‖(1 − P_T)H_Γ|ψ⟩‖ with H_Γ = −(i/2)Σ Γ_ij σ_i⁺σ_j⁻ (rms over trajectories) over "
+                         "the mean total excitation (docs/qsd_product.md §4)"})
+        attrs["max_decay_leak"] = float(np.max(dper))
+        t_obs = np.asarray(run_args["t_obs"])
+        if run_args["steady"]:
+            driven = np.full(dper.shape, abs(model.rabi) > 0, dtype=float)
+        else:
+            driven = (abs(model.rabi) > 0) * (np.asarray(model.envelope(jnp.asarray(t_obs))) != 0)
+        dheld = remembered_leak(dper * driven, t_obs, run_args["steady"])
+        attrs["max_decay_leak_driven_remembered"] = float(np.max(dheld))
+        if attrs["max_decay_leak_driven_remembered"] > DECAY_G2_WARNING:
+            rate = attrs["max_decay_leak_driven_remembered"] > DECAY_RATE_WARNING
+            _note(
+                f"qsd_product: under the drive the collective decay takes the trajectories out of product "
+                f"states at {attrs['max_decay_leak_driven_remembered']:.3g} Γ0 per excitation, averaged over "
+                f"the last {1 / LEAK_MEMORY_RATE:g}/Γ0 (diagnostic decay_leak). Above {DECAY_G2_WARNING:g} "
+                "the pair correlations it builds are missing: g2, g2_total and the incoherent intensities "
+                "erred by up to 77 % in the measured driven pairs (docs/qsd_product.md §4)"
+                + (f"; above {DECAY_RATE_WARNING:g} the emission rate too, by up to 24 % under strong drive"
+                   if rate else "; the emission rate and the coherences are not affected at this level")
+                + ". For photon statistics compare with 'cumulant2', 'jumps' or an exact level"
+            )
+            return
         off = ~np.eye(model.n, dtype=bool)
         strongest = max(np.abs(model.J[off]).max(initial=0.0), np.abs(model.Gamma[off]).max(initial=0.0))
         last = np.asarray(means["excited"])[-1]
@@ -182,7 +230,6 @@ class ProductStateDiffusion(SpinSampling):
                 "qsd_product: at this weak excitation (mean ρ_ee per emitter below "
                 f"{WEAK_EXCITATION:g} at the last time) the trajectories hardly fluctuate, so g2 and "
                 "g2_total are the product-state (mean-field) values and miss the pair correlations that the "
-                "couplings build (docs/qsd_product.md §5: two emitters 0.5 λ0 apart, g2_total 0.32 against "
-                "0.55). Linear-response quantities are exact; for photon statistics use 'cumulant2' or an "
-                "exact level"
+                "couplings build (docs/qsd_product.md §5). Linear-response quantities are exact; for photon "
+                "statistics use 'cumulant2' or an exact level"
             )
