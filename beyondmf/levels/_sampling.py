@@ -22,7 +22,11 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["amplitude_sums", "coherent_statistics"]
+__all__ = ["amplitude_sums", "coherent_statistics", "UNSETTLED_SIGMAS"]
+
+# A sampled steady state whose settling check moved by more than this many standard errors had not
+# settled: the level warns (twa, qsd_product, jumps).
+UNSETTLED_SIGMAS = 4.0
 
 
 def amplitude_sums(amp, field2, wsum) -> dict:

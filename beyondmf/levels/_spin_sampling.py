@@ -27,7 +27,7 @@ from ..estimators import product_field_moments, product_rate_moments
 from ..integrate import SolveError
 from ..memory import require
 from ..model import Envelope, Model
-from ._sampling import amplitude_sums, coherent_statistics
+from ._sampling import UNSETTLED_SIGMAS, amplitude_sums, coherent_statistics
 from .base import Level, Moments, OptionError, Probes, check_sampling_options, is_count, is_real_number
 
 __all__ = ["SpinEquations", "SpinSampling", "auto_dt", "noise_factor", "spin_args", "spin_drift"]
@@ -314,7 +314,7 @@ def _settling(tot: dict[str, np.ndarray], count: int, points: int, level: str) -
         "steady_drift_rate_stderr": float(err[1]),
         "steady_drift_sigmas": float(np.max(sig)),
     }
-    if out["steady_drift_sigmas"] > 4:
+    if out["steady_drift_sigmas"] > UNSETTLED_SIGMAS:
         _note(
             f"{level} steady: the second half of the averaging window differs from the first by "
             f"{mean[0]:.3g} ± {err[0]:.2g} in Σρ_ee and {mean[1]:.3g} ± {err[1]:.2g} in the emission rate "

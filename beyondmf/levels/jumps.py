@@ -29,10 +29,11 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._notes import warn as _note
 from ..memory import available_bytes, require
 from ..model import Envelope, Model
 from . import _qubits as q
-from ._sampling import amplitude_sums, coherent_statistics
+from ._sampling import UNSETTLED_SIGMAS, amplitude_sums, coherent_statistics
 from .base import Level, Moments, OptionError, Probes, check_sampling_options, is_real_number, register
 
 __all__ = ["Jumps", "jump_channels"]
@@ -241,7 +242,9 @@ class Jumps(Level):
         """The ensemble at t = settle_time after starting in the ground state.
 
         ``steady_drift_sigmas``: the change of the emission rate from t/2 to t over its paired standard error
-        (the same trajectories at both times).
+        (the same trajectories at both times); beyond `UNSETTLED_SIGMAS` a warning says that the ensemble
+        had not settled (a slow, subradiant mode of a dense cluster can take far longer than the default
+        settle_time).
         """
         t1 = float(options["settle_time"])
         ground = np.tile([0.0, 0.0, -1.0], (model.n, 1))
@@ -251,6 +254,10 @@ class Jumps(Level):
         var = (m.stderr["rate"][2] ** 2 + m.stderr["rate"][1] ** 2) - 2 * lag / samples
         change, err = float(m.rate[2] - m.rate[1]), float(np.sqrt(max(var, 0.0)))
         drift = abs(change) / max(err, 1e-300)
+        if drift > UNSETTLED_SIGMAS:
+            _note(f"jumps steady: the emission rate changed by {change:.3g} ± {err:.2g} between t = "
+                  f"{t1 / 2:g} and the reported t = settle_time = {t1:g} ({drift:.1f} standard errors): the "
+                  "trajectories had not settled; raise settle_time, or look at the approach with evolve")
         pick = lambda a: np.asarray(a)[2:3]  # noqa: E731
         return Moments(
             **{k: pick(getattr(m, k)) for k in Moments.KEYS},
