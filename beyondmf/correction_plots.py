@@ -15,6 +15,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import xarray as xr  # noqa: E402
+from matplotlib.ticker import NullFormatter  # noqa: E402
 
 from .compare import summarize  # noqa: E402
 
@@ -39,6 +40,18 @@ def _axis_label(s: xr.Dataset, dim: str) -> str:
 def _log_axis(x: np.ndarray) -> bool:
     """A positive grid spanning a decade or more is drawn on a logarithmic axis."""
     return bool(np.all(x > 0) and x.max() / x.min() >= 10)
+
+
+def _grid_axis(ax, s: xr.Dataset, dim: str) -> np.ndarray:
+    """Label the x axis with grid dimension ``dim`` (logarithmic for a grid spanning a decade), ticks at
+    the grid points only (minor tick labels of a log axis would run into each other); its values."""
+    x = s[dim].values
+    ax.set_xlabel(_axis_label(s, dim))
+    if _log_axis(x):
+        ax.set_xscale("log")
+        ax.xaxis.set_minor_formatter(NullFormatter())
+        ax.set_xticks(x, [f"{v:g}" for v in x])
+    return x
 
 
 def _subplots(n: int):
@@ -154,19 +167,18 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
                 if k == 0:
                     time_panels.append(ax)
             elif grid:
-                x = s[grid[0]].values
+                x = _grid_axis(ax, s, grid[0])
                 for sel, tag in _slices(s, grid[1:]):
                     ax.errorbar(x, v.sel(sel).transpose(grid[0]), yerr=u.sel(sel).transpose(grid[0]),
                                 marker="o", capsize=3, label=f"{_name(s, lv)}{tag}",
                                 color=_color(s, lv) if not tag else None)
-                ax.set_xlabel(_axis_label(s, grid[0]))
-                if _log_axis(x):
-                    ax.set_xscale("log")
             else:
                 ax.bar(k, float(v), yerr=float(u), capsize=4, label=_name(s, lv), color=_color(s, lv))
                 ax.set_xticks([])
         ax.set_title(_title(name, det), fontsize=9)
-        vals = np.abs(s[name].values[np.isfinite(s[name].values)])
+        # g2 spanning orders of magnitude on a log axis, but only if every value is positive: a sampled
+        # g2 can be negative (noise, or a level's failure), and a log axis would silently drop it
+        vals = s[name].values[np.isfinite(s[name].values)]
         if name.startswith("g2") and vals.size and vals.min() > 0 and vals.max() / vals.min() > 100:
             ax.set_yscale("log")
     tags = [tag.removeprefix(", ") for _sel, tag in _slices(s, grid)] if grid else []
@@ -204,10 +216,7 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
                                   + (style, label, tag.removeprefix(", ")))
             else:
                 if grid:
-                    x = s[grid[0]].values
-                    ax.set_xlabel(_axis_label(s, grid[0]))
-                    if _log_axis(x):
-                        ax.set_xscale("log")
+                    x = _grid_axis(ax, s, grid[0])
                 else:
                     x = np.array([k])
                     ax.set_xticks(range(len(others)), [str(o) for o in others])

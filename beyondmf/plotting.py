@@ -33,8 +33,20 @@ def _by_level(ds: xr.Dataset, level: str) -> xr.Dataset:
 
 
 def _title(ds: xr.Dataset, what: str) -> str:
+    """The figure's title: what it shows, then the study's title (and whether it ran with --quick)."""
     title = ds.attrs.get("title") or ""
-    return f"{what} — {title}" if title else what
+    if ds.attrs.get("quick"):
+        title += " (quick mode)"
+    return f"{what}\n{title}" if title else what
+
+
+def _stderr(sub: xr.Dataset, name: str) -> xr.DataArray | None:
+    """The standard error a sampling level reports for ``name``; None for deterministic levels."""
+    err = sub.get(f"{name}_stderr")
+    return None if err is None or not bool((err > 0).any()) else err
+
+
+_BAND = "shaded: ±1 standard error of the sampling levels"
 
 
 def _save(fig, path: Path) -> Path:
@@ -43,12 +55,15 @@ def _save(fig, path: Path) -> Path:
     return path
 
 
-def _bars(ax, labels: list[str], groups: list[str], values: np.ndarray, ylabel: str) -> None:
-    """Grouped bar chart: one group per label, one bar per entry of ``groups`` (values[label, group])."""
+def _bars(ax, labels: list[str], groups: list[str], values: np.ndarray, ylabel: str,
+          errors: np.ndarray | None = None) -> None:
+    """Grouped bar chart: one group per label, one bar per entry of ``groups`` (values[label, group]);
+    ``errors`` (same shape, NaN where a level reports none) are drawn as error bars."""
     width = 0.8 / len(groups)
     x = np.arange(len(labels))
     for k, g in enumerate(groups):
-        ax.bar(x + (k - (len(groups) - 1) / 2) * width, values[:, k], width, label=g)
+        err = None if errors is None or np.all(np.isnan(errors[:, k])) else np.nan_to_num(errors[:, k])
+        ax.bar(x + (k - (len(groups) - 1) / 2) * width, values[:, k], width, label=g, yerr=err, capsize=4)
     ax.set_xticks(x, labels)
     ax.set_ylabel(ylabel)
     ax.legend(title="level")
@@ -59,17 +74,33 @@ def plot_emission(ds: xr.Dataset, path: str | Path) -> Path:
     levels = _levels(ds)
     fig, ax = plt.subplots(figsize=(6.4, 4.2), layout="constrained")
     if "time" in ds.dims:
-        for lv in levels:
-            ax.plot(ds["time"], _by_level(ds, lv)["emission_rate"], label=lv)
+        banded = False
+        for k, lv in enumerate(levels):
+            sub = _by_level(ds, lv)
+            p = sub["emission_rate"]
+            ax.plot(ds["time"], p, label=lv, color=f"C{k}")
+            err = _stderr(sub, "emission_rate")
+            if err is not None:
+                ax.fill_between(ds["time"], p - err, p + err, color=f"C{k}", alpha=0.25, lw=0)
+                banded = True
         ax.set_xlabel(_TIME)
         ax.set_ylabel(_RATE)
-        ax.legend(title="level")
+        ax.legend(title="level" + (f"\n({_BAND})" if banded else ""), title_fontsize="small")
     else:
         vals = np.array([[float(_by_level(ds, lv)["emission_rate"]) for lv in levels]])
-        _bars(ax, ["steady state"], levels, vals, _RATE)
+        errs = np.array([[_scalar_err(_by_level(ds, lv), "emission_rate") for lv in levels]])
+        _bars(ax, ["steady state"], levels, vals, _RATE, errs)
     ax.set_title(_title(ds, f"Total emission, N = {ds.sizes['atom']}"))
     ax.grid(alpha=0.3)
     return _save(fig, Path(path))
+
+
+def _scalar_err(sub: xr.Dataset, name: str, detector: str | None = None) -> float:
+    """A steady state's standard error of ``name`` (at ``detector``), NaN for a deterministic level."""
+    err = _stderr(sub, name)
+    if err is None:
+        return float("nan")
+    return float(err.sel(detector=detector) if detector is not None else err)
 
 
 def _angle_label(ds: xr.Dataset, det: str) -> str:
@@ -91,7 +122,8 @@ def plot_intensity(ds: xr.Dataset, path: str | Path) -> Path:
         vals = np.array(
             [[float(_by_level(ds, lv)["intensity"].sel(detector=d)) for lv in levels] for d in dets]
         )
-        _bars(ax, [_angle_label(ds, d) for d in dets], levels, vals, _INTENSITY)
+        errs = np.array([[_scalar_err(_by_level(ds, lv), "intensity", d) for lv in levels] for d in dets])
+        _bars(ax, [_angle_label(ds, d) for d in dets], levels, vals, _INTENSITY, errs)
         ax.set_title(_title(ds, "Steady-state intensity per detector"))
         ax.grid(alpha=0.3, axis="y")
         return _save(fig, Path(path))
@@ -102,7 +134,13 @@ def plot_intensity(ds: xr.Dataset, path: str | Path) -> Path:
         for k, lv in enumerate(levels):
             sub = _by_level(ds, lv)
             colour = f"C{k}"
-            ax.plot(ds["time"], sub["intensity"].sel(detector=d), color=colour, label=f"{lv}: total")
+            total = sub["intensity"].sel(detector=d)
+            ax.plot(ds["time"], total, color=colour, label=f"{lv}: total")
+            err = _stderr(sub, "intensity")
+            if err is not None:
+                err = err.sel(detector=d)
+                ax.fill_between(ds["time"], total - err, total + err, color=colour, alpha=0.25, lw=0,
+                                label=f"{lv}: ±1 standard error")
             if "intensity_coherent" in sub:
                 ax.plot(ds["time"], sub["intensity_coherent"].sel(detector=d), color=colour, ls="--",
                         label=f"{lv}: coherent part")
@@ -141,18 +179,21 @@ def plot_geometry(ds: xr.Dataset, path: str | Path) -> Path:
             end = centre - 0.15 * length * u if incoming else centre + length * u
             if np.hypot(u[a], u[b]) < 0.05:  # along the viewing axis
                 mark = "$\\odot$" if u[depth] > 0 else "$\\otimes$"
-                ax.plot(centre[a], centre[b], marker=mark, ms=26 if incoming else 14, color=colour, ls="none",
+                ax.plot(centre[a], centre[b], marker=mark, ms=22 if incoming else 14, color=colour, ls="none",
                         label=f"{name} (out of page)" if u[depth] > 0 else f"{name} (into page)")
             else:
-                ax.annotate("", xy=(end[a], end[b]), xytext=(start[a], start[b]),
+                ax.annotate("", xy=(end[a], end[b]), xytext=(start[a], start[b]), annotation_clip=False,
                             arrowprops=dict(arrowstyle="-|>", color=colour, lw=2, mutation_scale=18))
                 ax.plot([], [], color=colour, lw=2, label=name)
+                # arrows do not widen the axes: an invisible segment does, so the head stays in the panel
+                ax.plot([start[a], end[a]], [start[b], end[b]], alpha=0)
         ax.set_xlabel(f"{'xyz'[a]} (λ0)")
         ax.set_ylabel(f"{'xyz'[b]} (λ0)")
         ax.set_aspect("equal", adjustable="datalim")
         ax.set_title(view)
         ax.grid(alpha=0.3)
-    axes[-1].legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize="small")
+    axes[-1].legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize="small", markerscale=0.6,
+                    labelspacing=1.0)
     dip = ds.attrs.get("dipole")
     dip_txt = ", ".join(f"{complex(c).real:g}" if complex(c).imag == 0 else f"{complex(c):g}" for c in dip) \
         if dip is not None else "?"

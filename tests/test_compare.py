@@ -310,6 +310,31 @@ def test_correction_figure_fits_its_corrections_and_labels_the_grid(tmp_path, mo
     assert 0.3 * 1.1 <= limits[0.3] < 0.36  # the largest correction (0.3 and its interval), with a margin
 
 
+def test_a_log_grid_is_labelled_at_its_points_and_negative_g2_keeps_a_linear_axis(tmp_path, monkeypatch):
+    """Minor tick labels of a log axis ran into each other ("3×10⁻¹4×10⁻¹…"); a g2 spanning a factor 100
+    was put on a log axis even when some values were negative, which then vanished."""
+    from beyondmf import correction_plots
+
+    figures = {}
+    monkeypatch.setattr(correction_plots, "_save", lambda fig, path: figures.setdefault(path.name, fig))
+    density = np.array([0.3, 1.0, 3.0])
+    g2 = np.array([[[1.0, 1.1], [0.9, 1.0]], [[1.2, 1.0], [-19.6, -5.8]], [[1.1, 1.0], [0.01, 0.02]]])
+    dims = ("density", "level", "realization")
+    per = xr.Dataset({"g2_total": (dims, g2), "emission_rate": (dims, np.ones_like(g2))},
+                     coords={"density": density, "level": ["exact", "twa"], "realization": [0, 1]})
+    per["density"].attrs["parameter"] = "geometry.density"
+    s = summarize(per, baseline="exact", tolerance=0.1, observables=["g2_total", "emission_rate"])
+    correction_plots.plot_sweep(s, tmp_path)
+    for name in ("values.png", "corrections.png"):
+        fig = figures[name]
+        fig.canvas.draw()
+        ax = fig.axes[0]
+        assert ax.get_xscale() == "log", name
+        assert [t.get_text() for t in ax.get_xticklabels()] == ["0.3", "1", "3"], name
+        assert not any(t.get_text() for t in ax.get_xticklabels(minor=True)), name
+    assert figures["values.png"].axes[0].get_yscale() == "linear"
+
+
 def _legend_objects(ax) -> list:
     return ax.findobj(lambda o: o.__class__.__name__ == "Legend")
 
