@@ -18,15 +18,29 @@ from contextlib import contextmanager
 from contextvars import ContextVar
 
 _collected: ContextVar[list[str] | None] = ContextVar("beyondmf_run_warnings", default=None)
+_silent: ContextVar[bool] = ContextVar("beyondmf_record_only", default=False)
 
 
 def warn(message: str) -> None:
     """Issue ``message`` as a UserWarning located at the first caller outside this package, and record it
-    for the current run, once."""
+    for the current run, once (inside `recording_only`: record it only)."""
     got = _collected.get()
     if got is not None and message not in got:
         got.append(message)
-    warnings.warn(message, UserWarning, stacklevel=_outside_package())
+    if not _silent.get():
+        warnings.warn(message, UserWarning, stacklevel=_outside_package())
+
+
+@contextmanager
+def recording_only() -> Iterator[None]:
+    """Inside the block the levels' warnings are recorded in their results but not printed: for a dask
+    worker, whose output would cut into the progress bar of the command that waits for it (that command
+    reports the recorded warnings itself)."""
+    token = _silent.set(True)
+    try:
+        yield
+    finally:
+        _silent.reset(token)
 
 
 def _outside_package() -> int:

@@ -152,18 +152,20 @@ def _prepare_out(out: Path) -> list[Path]:
         raise _UsageError(f"--out: {out} exists and is not a directory; give a directory (it is created "
                           "if missing)")
     created = [d for d in [out, *out.parents] if not d.exists()][::-1]
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-        with tempfile.NamedTemporaryFile(dir=out, prefix=".beyondmf-write-test-") as probe:
-            probe.write(b"beyondmf can write here\n")
-            probe.flush()
-    except OSError as err:
-        _remove_empty(created)
-        why = err.strerror or type(err).__name__
-        if isinstance(err, NotADirectoryError | FileExistsError):
-            why += " (a part of that path is a file)"
-        raise _UsageError(f"--out: cannot create and write files in {out}: {why}; give a directory you can "
-                          "write to") from None
+    tasks = out / "tasks"  # a resumed task run writes there: checked too, before any computing
+    for where in (out, tasks) if tasks.exists() else (out,):
+        try:
+            where.mkdir(parents=True, exist_ok=True)
+            with tempfile.NamedTemporaryFile(dir=where, prefix=".beyondmf-write-test-") as probe:
+                probe.write(b"beyondmf can write here\n")
+                probe.flush()
+        except OSError as err:
+            _remove_empty(created)
+            why = err.strerror or type(err).__name__
+            if isinstance(err, NotADirectoryError | FileExistsError):
+                why += " (a part of that path is a file)"
+            raise _UsageError(f"--out: cannot create and write files in {where}: {why}; give a directory you "
+                              "can write to") from None
     for name in ("results.nc", "convergence.nc"):  # temporaries of a killed run; DIR may hold other files
         remove_stale_parts(out, name)
     now = time.time()
@@ -204,6 +206,23 @@ def _write_figures(make, out: Path) -> list[Path]:
         shutil.rmtree(tmp, ignore_errors=True)
 
 
+# The figures `beyondmf run` writes into DIR (convergence_<observable>.png by pattern).
+_OUR_FIGURES = ("emission.png", "intensity.png", "geometry.png", "values.png", "corrections.png",
+                "correction_map.png")
+
+
+def _remove_stale_figures(out: Path, since: float) -> None:
+    """Remove the figures of an earlier run (our names, last written before ``since``) that this run did
+    not write again: they would stand beside a results.nc whose numbers they do not show."""
+    for path in sorted([*(out / n for n in _OUR_FIGURES), *out.glob("convergence_*.png")]):
+        try:
+            if path.is_file() and path.stat().st_mtime < since:
+                path.unlink()
+                _say(f"removed {path}: a figure of an earlier run in this directory, not made by this one")
+        except OSError:
+            continue
+
+
 def _cmd_run(args) -> int:
     from .plotting import plot_all
     from .results import save
@@ -219,10 +238,12 @@ def _cmd_run(args) -> int:
     out = Path(args.out)
     created = _prepare_out(out)
     tasks_existed = (out / "tasks").exists()
-    t0 = time.perf_counter()
+    t0, started = time.perf_counter(), time.time()
     try:
         if is_sweep(study) or args.workers is not None or args.scheduler is not None:
-            return _run_tasks(study, out, args, t0)
+            code = _run_tasks(study, out, args, t0)
+            _remove_stale_figures(out, started)
+            return code
 
         def on_level(name: str, stage: str, seconds: float | None) -> None:
             if stage == "start":
@@ -230,7 +251,8 @@ def _cmd_run(args) -> int:
             elif stage == "done":
                 _say(f"level {name}: finished in {seconds:.1f} s")
             else:
-                _say(f"level {name}: failed after {seconds:.1f} s (why: at the end); the other levels go on")
+                rest = "; the other levels go on" if len(study.levels) > 1 else ""
+                _say(f"level {name}: failed after {seconds:.1f} s (why: at the end){rest}")
 
         try:
             # a level that cannot do this model does not cost the others their results
@@ -250,6 +272,7 @@ def _cmd_run(args) -> int:
                 _write_figures(lambda d: plot_all(ds, d), out)
             except KeyboardInterrupt:
                 raise _Stopped(f"{path} is complete, the figures are not all written") from None
+        _remove_stale_figures(out, started)
         _say(f"done in {time.perf_counter() - t0:.1f} s")
         return EXIT_FAILED if failures else 0
     except BaseException:
@@ -307,7 +330,11 @@ def _report_tasks(study, ds, out: Path, args, t0: float) -> None:
     if "baseline" in ds.attrs:
         from .compare import verdict_table
 
-        _say(f"verdicts against {ds.attrs['baseline']} (tolerance {ds.attrs['tolerance']:g}):")
+        over = "times, detectors and grid points" if any(
+            d not in ("level", "time", "detector", "realization") for d in ds["emission_rate"].dims) \
+            else "times and detectors"
+        _say(f"verdicts against {ds.attrs['baseline']} (tolerance {ds.attrs['tolerance']:g}; per observable "
+             f"the least favourable over {over}, in results.nc point by point):")
         warned = ds.get("warned_realizations")
         for level, row in verdict_table(ds).items():
             k = 0 if warned is None else int(warned.sel(level=level).sum())

@@ -160,16 +160,20 @@ def summarize(
             unresolved = flat & (abs(d.mean("realization")) > zero) & ~is_base
             verdict[unresolved.broadcast_like(c).transpose(*order).values] = "undecided"
         out[name] = mean.assign_attrs(x.attrs)
+        units = {"units": x.attrs["units"]} if "units" in x.attrs else {}
         out[f"{name}_uncertainty"] = np.sqrt(_var(x, k) / k + samp).assign_attrs(
-            long_name=f"uncertainty of the mean of {name} over realizations (1 standard error)")
+            **units, long_name=f"uncertainty of the mean of {name} over realizations (1 standard error)")
         out[f"{name}_correction"] = c.assign_attrs(
-            long_name=f"relative correction of {name} against {baseline}")
+            units="1", long_name=f"relative correction (X − X_{baseline})/X_{baseline} of {name}")
         out[f"{name}_correction_low"] = low.assign_attrs(
-            long_name=f"lower end of the {confidence:.0%} interval")
+            units="1", long_name=f"lower end of the {confidence:.0%} interval of {name}_correction")
         out[f"{name}_correction_high"] = high.assign_attrs(
-            long_name=f"upper end of the {confidence:.0%} interval")
+            units="1", long_name=f"upper end of the {confidence:.0%} interval of {name}_correction")
         out[f"{name}_verdict"] = xr.DataArray(verdict, dims=c.dims, coords=c.coords).assign_attrs(
-            long_name=f"does {baseline} hold for {name} within the tolerance", values=", ".join(VERDICTS))
+            long_name=f"do this level and {baseline} agree on {name} within the tolerance ±{tolerance:g} "
+                      f"(holds: the interval of {name}_correction lies inside; fails: wholly outside; "
+                      "undecided: it straddles the tolerance)",
+            values=", ".join(VERDICTS))
     if "warnings" in ds:
         # a level's own verdict on its runs (twa's vacuum control, cumulant2's unphysical moments, ...):
         # its corrections at these points rest on runs that said they were outside their range

@@ -162,9 +162,18 @@ class Dask:
 
         if self._client is None:
             raise RuntimeError("use the Dask executor inside a `with` block")
-        futures = [self._client.submit(fn, item, *args, pure=False) for item in items]
+        futures = [self._client.submit(_on_worker, fn, item, *args, pure=False) for item in items]
         for fut in as_completed(futures):
             yield fut.result()
+
+
+def _on_worker(fn: Callable, *args):
+    """``fn(*args)`` on a dask worker, the levels' warnings recorded in the results but not printed there
+    (the waiting command reports them; `beyondmf._notes.recording_only`)."""
+    from ._notes import recording_only
+
+    with recording_only():
+        return fn(*args)
 
 
 async def _identify(address: str, deadline: float, connection_args: dict) -> Any:

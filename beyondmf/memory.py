@@ -19,12 +19,20 @@ def available_bytes() -> int:
     return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
 
 
+def size_text(nbytes: float) -> str:
+    """A memory size for a message, in the largest binary unit below it: '17 MiB', '3.2 GiB', '3.07 EiB'."""
+    units = ("bytes", "KiB", "MiB", "GiB", "TiB", "PiB", "EiB")
+    k = 0
+    while k < len(units) - 1 and nbytes >= 1024 ** (k + 1):
+        k += 1
+    return f"{nbytes / 1024**k:.3g} {units[k]}"
+
+
 def require(nbytes: float, what: str, fraction: float = 0.9) -> None:
     """Raise MemoryError, before allocating, when ``what`` needs more than ``fraction`` of free memory."""
     have = available_bytes()
     if nbytes > fraction * have:
         raise MemoryError(
-            f"{what}: about {nbytes / 2**30:.1f} GiB needed, but this machine has {have / 2**30:.1f} GiB "
-            "free; "
+            f"{what}: about {size_text(nbytes)} needed, but this machine has {size_text(have)} free; "
             "use fewer emitters (for a sampling level, a smaller chunk of samples), or a larger machine"
         )

@@ -165,7 +165,8 @@ class Model:
                 if dmin < MIN_SEPARATION:
                     raise ValueError(
                         f"emitters {i} and {j} are {dmin:.3g} λ0 apart, closer than {MIN_SEPARATION} λ0: "
-                        "the couplings diverge there; draw the cloud with a min_distance"
+                        "the couplings diverge there; place them further apart (a random cloud: draw it with "
+                        "a min_distance)"
                     )
             Jd, Gd = device_couplings(pos, dip, self.coupling)
             kind = self.coupling

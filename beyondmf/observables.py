@@ -111,9 +111,13 @@ def assemble(
     for name, (unit, long) in _UNITS.items():
         if name in ds:
             ds[name].attrs.update(units=unit, long_name=long)
+        if f"{name}_stderr" in ds:
+            ds[f"{name}_stderr"].attrs.update(units=unit,
+                                              long_name=f"standard error (sampling) of the {long}")
     if times is not None:
-        ds["time"].attrs.update(units="1/Γ0")
-    ds["position"].attrs.update(units="λ0")
+        ds["time"].attrs.update(units="1/Γ0", long_name="time")
+    ds["position"].attrs.update(units="λ0", long_name="emitter positions")
+    ds["direction"].attrs.update(units="1", long_name="detector directions (unit vectors)")
     ds.attrs.update(attrs)
     ds.attrs.update(m.attrs)
     return ds

@@ -440,7 +440,17 @@ class Study:
                 envelope=self.drive.windows,
             )
         except ValueError as err:
-            raise StudyError(f"model: {err}") from None
+            raise StudyError(f"{self._model_key(str(err))}: {err}") from None
+
+    def _model_key(self, message: str) -> str:
+        """The study key a refusal of `Model` is about (its checks that span several keys)."""
+        if message.startswith("envelope"):
+            return "drive.windows"
+        if message.startswith("emitters ") and " apart" in message:  # two emitters too close
+            if self.geometry.kind == "points":
+                return "geometry.positions"
+            return "geometry.spacing" if "spacing" in self.geometry.params else "geometry.min_distance"
+        return "model"
 
     def detector_directions(self) -> dict[str, np.ndarray]:
         """Name → unit vector; the default is one detector, "forward", along the laser."""
@@ -604,5 +614,6 @@ def run_study(
         geometry_parameters=study.geometry.params,
         failures=failures,
         run_seed=-1 if seed is None else seed,
+        quick=int(bool(study.extra.get("quick"))),  # 1: run with the study's [quick] overrides (--quick)
     )
     return combined

@@ -80,6 +80,31 @@ DIAGNOSTIC = "level diagnostic"
 # Paths whose value is derived into another parameter before the study is validated.
 _DERIVED = ("geometry.density", "drive.saturation")
 
+# Units and names of the grid coordinates in results.nc (and on the figures' axes); other paths are
+# named by themselves.
+GRID_QUANTITIES = {
+    "geometry.density": ("λ0⁻³", "density n (peak density for a Gaussian cloud)"),
+    "drive.saturation": ("1", "saturation parameter s = 2Ω²/(1 + 4Δ²)"),
+    "drive.rabi": ("Γ0", "Rabi frequency Ω"),
+    "drive.detuning": ("Γ0", "detuning Δ = ω_laser − ω_atom"),
+    "geometry.spacing": ("λ0", "lattice spacing"),
+    "geometry.min_distance": ("λ0", "smallest distance between emitters"),
+    "geometry.n": ("1", "number of emitters N"),
+    "run.t_end": ("1/Γ0", "end time"),
+}
+
+
+def grid_quantity(path: str) -> tuple[str | None, str]:
+    """(units or None, long name) of the grid coordinate for study path ``path``."""
+    if path in GRID_QUANTITIES:
+        return GRID_QUANTITIES[path]
+    last = path.rsplit(".", 1)[-1]
+    if path.startswith("levels.") and last in ("samples", "realizations", "chunk"):
+        return "1", f"{last} ({path})"
+    if path.startswith("levels.") and last in ("dt", "settle_time", "window"):
+        return "1/Γ0", f"{last} ({path})"
+    return None, path
+
 
 # ---------------------------------------------------------------------------------------------------
 # Seeds and tasks
@@ -163,7 +188,8 @@ def stack(
     to ``excited_mean`` (mean population) because N may differ across the grid. A failed task (its
     level refused the model, or the solve failed) gives NaN and its message in ``failures``. The variable
     ``warnings`` counts the warnings each task's level issued about its own run (NaN for a failed task),
-    and the attribute ``warnings`` lists them as "(indices) (task KEY): message". A level's own
+    and the attribute ``warnings`` lists them as "grid values, level, realization k (task KEY):
+    message". A level's own
     diagnostics that have the shape of the emission rate (per time, or scalars of a steady state) are
     kept too, NaN for the other levels.
     """
@@ -191,10 +217,16 @@ def stack(
                 else template[name.removesuffix("_stderr")])
         arrays[name] = (base.dims, np.full(outer + list(base.shape), np.nan, dtype=base.dtype))
     counts = np.full(outer, np.nan)
+
+    def where(key_tuple: tuple) -> str:  # a task in words: grid values, level, realization
+        point = [f"{g}={v:g}" if isinstance(v, int | float | np.number) else f"{g}={v}"
+                 for (g, values), i in zip(grid, key_tuple[:-2], strict=True) for v in [values[i]]]
+        return ", ".join([*point, str(key_tuple[-2]), f"realization {key_tuple[-1]}"])
+
     for key_tuple, task in index.items():
         ds = results[task_key(task)]
         if "emission_rate" not in ds:
-            failures.append(f"{key_tuple} (task {task_key(task)}): {ds.attrs.get('error', 'failed')}")
+            failures.append(f"{where(key_tuple)} (task {task_key(task)}): {ds.attrs.get('error', 'failed')}")
             continue
         idx = tuple(key_tuple[:-2]) + (labels.index(key_tuple[-2]), key_tuple[-1])
         for name in names + diagnostics:
@@ -206,7 +238,7 @@ def stack(
             arrays["excited_mean_stderr"][1][idx] = ds["excited_stderr"].mean("atom").values
         messages = list(ds.attrs.get("warnings", []))
         counts[idx] = len(messages)
-        said.extend(f"{key_tuple} (task {task_key(task)}): {m}" for m in messages)
+        said.extend(f"{where(key_tuple)} (task {task_key(task)}): {m}" for m in messages)
     dims = [g for g, _ in grid] + ["level", "realization"]
     coords = {g: np.asarray(v) for g, v in grid}
     coords.update(level=list(labels), realization=np.arange(realizations))
@@ -217,15 +249,20 @@ def stack(
     out = xr.Dataset(data, coords=coords)
     for n in names:
         out[n].attrs = dict(template[n.removesuffix("_stderr")].attrs)
+        if n.endswith("_stderr"):
+            out[n].attrs["long_name"] = "standard error (sampling) of " + out[n].attrs.get(
+                "long_name", n.removesuffix("_stderr"))
     for n in diagnostics:
         first = next(results[task_key(t)][n] for t in index.values() if n in results[task_key(t)])
         out[n].attrs = dict(first.attrs, role=DIAGNOSTIC)
-    out["excited_mean"].attrs.update(long_name="mean excited population over emitters")
+    out["excited_mean"].attrs.update(units="1", long_name="mean excited population over emitters")
     if stochastic:
         out["excited_mean_stderr"].attrs.update(
+            units="1",
             long_name="mean of the emitters' standard errors: an upper bound of the standard error of "
                       "excited_mean (the emitters' errors are correlated)")
     out["warnings"] = xr.DataArray(counts, dims=dims, coords={d: coords[d] for d in dims}).assign_attrs(
+        units="1",
         long_name="warnings the level issued about this run (its own diagnostics; NaN: the task failed)")
     if "time" in out.dims and last_time:
         out = out.isel(time=-1)
@@ -848,6 +885,30 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
     return index, labels, spec.realizations, dims, params
 
 
+def _realization_seeds(study: Study, index: Mapping[tuple, Mapping], k: int) -> dict[str, xr.DataArray]:
+    """The seeds each realization used, so that one run can be redone from results.nc alone: the seed of
+    its position draw (the ``seed`` argument of the `beyondmf.geometry` function) and the sampling seed of
+    its stochastic levels (``seed`` of `evolve`/`steady`); −1 where there is none."""
+    spec: SweepSpec = study.extra.get("sweep") or SweepSpec({}, 1, 0)
+    own = "sweep" not in study.extra and "compare" not in study.extra
+    random = study.geometry.kind in _RANDOM
+    position = [(int(study.geometry.params.get("seed", 0)) if own else realization_seeds(spec.seed, r)[0])
+                if random else -1 for r in range(k)]
+    sampling = [-1] * k
+    for key_tuple, task in index.items():
+        if "seed" in task:
+            sampling[key_tuple[-1]] = int(task["seed"])
+    fixed = "" if random else "; -1: none, the positions are a lattice or given points"
+    return {
+        "position_seed": xr.DataArray(np.array(position, dtype=np.int64), dims="realization", attrs={
+            "units": "1", "long_name": "seed of the realization's position draw (the seed argument of the "
+                                       "beyondmf.geometry function of the study's geometry.kind)" + fixed}),
+        "sampling_seed": xr.DataArray(np.array(sampling, dtype=np.int64), dims="realization", attrs={
+            "units": "1", "long_name": "sampling seed of the realization's stochastic levels (the seed "
+                                       "argument of evolve/steady); -1: no stochastic level"}),
+    }
+
+
 def run_sweep(
     study: Study,
     out: str | Path,
@@ -879,10 +940,12 @@ def run_sweep(
     last = bool(spec and spec.keep == "last_time")
     per = stack(index, results, labels, k, observables, dims, last_time=last)
     for (name, _), path in zip(dims, spec.grid if spec else [], strict=True):
-        per[name].attrs.update(parameter=path)
+        units, long_name = grid_quantity(path)
+        per[name].attrs.update(parameter=path, long_name=long_name, **({"units": units} if units else {}))
     if "N" in per.dims or any(p["N"] for p in params.values()):
         ns = np.array([params[i]["N"] for i in itertools.product(*(range(len(v)) for _, v in dims))])
-        per["n_emitters"] = ([d for d, _ in dims], ns.reshape([len(v) for _, v in dims]))
+        per["n_emitters"] = ([d for d, _ in dims], ns.reshape([len(v) for _, v in dims]),
+                             {"units": "1", "long_name": "number of emitters N"})
     if cmp is not None:
         if cmp.baseline not in labels:
             raise StudyError(f"compare.baseline: {cmp.baseline!r} is not among the study's levels "
@@ -898,6 +961,7 @@ def run_sweep(
                 ds[name] = var
     else:
         ds = per
+    ds.update(_realization_seeds(study, index, k))
     ds.attrs.update(
         study=study.source,
         title=study.title,

@@ -559,3 +559,62 @@ def test_warnings_are_printed_as_one_line_for_the_user(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "beyondmf run: warning: stiff equations: coupling rates up to" in err
     assert "UserWarning" not in err and ".py:" not in err
+
+
+def test_an_unwritable_tasks_directory_of_a_resumed_run_is_refused_before_computing(tmp_path, capsys,
+                                                                                   monkeypatch):
+    """DIR/tasks of an earlier run that can no longer be written (common practice: a read-only mount)."""
+    import beyondmf.sweep
+
+    def no_computing(*a, **k):
+        raise AssertionError("computed before checking DIR/tasks")
+
+    monkeypatch.setattr(beyondmf.sweep, "run_sweep", no_computing)
+    study_file = tmp_path / "small.toml"
+    study_file.write_text(_replace(SMALL, "seed = 3\n", "") + "[sweep]\nrealizations = 1\n")
+    tasks = tmp_path / "out" / "tasks"
+    tasks.mkdir(parents=True)
+    real = cli.tempfile.NamedTemporaryFile
+
+    def read_only_tasks(*a, dir=None, **k):
+        if Path(dir) == tasks:
+            raise PermissionError(13, "Permission denied")
+        return real(*a, dir=dir, **k)
+
+    monkeypatch.setattr(cli.tempfile, "NamedTemporaryFile", read_only_tasks)
+    code, err = _run(["run", study_file, "--out", tmp_path / "out"], capsys)
+    assert code == cli.EXIT_USAGE and len(err.strip().splitlines()) == 1, err
+    assert f"cannot create and write files in {tasks}: Permission denied" in err
+
+
+def test_a_quick_run_says_so_in_its_file_and_removes_figures_it_did_not_make(tmp_path, capsys):
+    study_file = tmp_path / "small.toml"
+    study_file.write_text(_replace(SMALL, "n = 12", "n = 4") + "[quick]\nrun = { points = 11 }\n")
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "corrections.png").write_bytes(b"an earlier run's figure")
+    (out / "notes.png").write_bytes(b"the user's own file")
+    code, err = _run(["run", study_file, "--out", out, "--quick"], capsys)
+    assert code == 0, err
+    ds = beyondmf.load(out / "results.nc")
+    assert ds.attrs["quick"] == 1 and ds.sizes["time"] == 11
+    assert not (out / "corrections.png").exists() and f"removed {out / 'corrections.png'}" in err
+    assert (out / "notes.png").exists()  # not one of our figure names: left alone
+    assert all((out / name).exists() for name in FIGURES)
+    code, err = _run(["run", study_file, "--out", out, "--no-plots"], capsys)
+    assert code == 0, err
+    assert beyondmf.load(out / "results.nc").attrs["quick"] == 0
+    assert not any((out / name).exists() for name in FIGURES)  # they showed the --quick numbers
+
+
+def test_a_refusal_of_the_model_names_the_study_key_it_is_about(tmp_path, capsys):
+    study_file = tmp_path / "s.toml"
+    windows = _replace(SMALL, "rabi = 1.0", "rabi = 1.0\nwindows = [[0, 5], [3, 8]]")
+    study_file.write_text(windows)
+    code, err = _run(["run", study_file, "--out", tmp_path / "a"], capsys)
+    assert code == cli.EXIT_USAGE and "drive.windows: envelope windows (0, 5) and (3, 8) overlap" in err
+    cloud = 'kind = "gaussian"\nn = 12\nwidths = [1.0, 1.0, 0.2]\nseed = 3\nmin_distance = 0.1'
+    points = _replace(SMALL, cloud, 'kind = "points"\npositions = [[0, 0, 0], [0, 0, 0.0001]]')
+    study_file.write_text(points)
+    code, err = _run(["run", study_file, "--out", tmp_path / "b"], capsys)
+    assert code == cli.EXIT_USAGE and "geometry.positions: emitters 0 and 1 are 0.0001 λ0 apart" in err

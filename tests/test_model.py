@@ -118,7 +118,7 @@ def test_memory_need_is_refused_before_allocating(monkeypatch):
     from beyondmf import memory
 
     monkeypatch.setattr(memory, "available_bytes", lambda: 10**6)
-    with pytest.raises(MemoryError, match="about .* GiB needed"):
+    with pytest.raises(MemoryError, match=r"about [0-9.]+ [KMGTPE]?i?B(ytes)? needed"):
         bm.Model(bm.geometry.box_cloud(1000, 10, seed=0))
 
 
