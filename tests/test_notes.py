@@ -6,6 +6,7 @@ code, not at the library's internals, so that the user sees which of their lines
 
 from __future__ import annotations
 
+import functools
 import subprocess
 import sys
 import warnings
@@ -86,3 +87,28 @@ def test_progress_bars_put_stderr_back_whatever_order_they_close_in():
     assert sys.stderr is original
     with _progress_bar(1, 0, False):  # a hidden bar leaves stderr alone
         assert sys.stderr is original
+
+
+def test_on_a_dask_worker_the_warnings_are_recorded_in_the_result_but_not_printed():
+    """A worker's printed warnings cut into the waiting command's progress bar (workflow review); the
+    command reports the recorded ones itself, so the worker only records them."""
+    from beyondmf.executors import _on_worker
+
+    model = bm.Model(CLOSE_PAIR, rabi=0.1)
+    times = np.linspace(0, 0.01, 3)
+    explicit = functools.partial(bm.evolve, solver="tsit5")
+    ds, printed = _caught(lambda: _on_worker(explicit, model, "meanfield", times))
+    assert not printed
+    assert any(STIFF in said for said in ds.attrs["warnings"])
+    ds, printed = _caught(lambda: bm.evolve(model, "meanfield", times, solver="tsit5"))  # elsewhere: printed
+    assert printed and any(STIFF in said for said in ds.attrs["warnings"])
+
+
+def test_memory_sizes_are_given_in_a_readable_unit():
+    from beyondmf.memory import size_text
+
+    assert size_text(512) == "512 bytes"
+    assert size_text(17.6e6) == "16.8 MiB"
+    assert size_text(3.2 * 2**30) == "3.2 GiB"
+    # exact at N = 30 used to say "3298534883328.0 GiB"
+    assert size_text(3298534883328 * 2**30) == "3.07e+03 EiB"

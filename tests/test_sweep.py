@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import textwrap
+import tomllib
 
 import numpy as np
 import pytest
@@ -430,3 +431,20 @@ def test_a_levels_own_diagnostics_reach_the_comparison_per_realization(tmp_path)
     assert np.all(np.isnan(leak.sel(level="meanfield").values))
     assert np.all(np.isfinite(leak.sel(level="qsd_product").values))
     assert "exchange_leak" in bm_load(tmp_path / "out" / "results.nc")
+    # One run can be redone from results.nc alone: each realization's seeds are recorded (rule in
+    # docs/study-files.md), and the position seed redraws exactly the cloud the tasks ran
+    from beyondmf.sweep import realization_seeds
+
+    for k in range(2):
+        pos_seed, samp_seed = realization_seeds(3, k)
+        assert int(ds["position_seed"].sel(realization=k)) == pos_seed
+        assert int(ds["sampling_seed"].sel(realization=k)) == samp_seed
+        geo = _point_study(tomllib.loads(ds.attrs["study"]), {"geometry.density": 0.2}).geometry
+        index, *_ = study_tasks(_study(tmp_path, text))
+        ran = next(t for key, t in index.items() if key[0] == 0 and key[-1] == k)
+        redrawn = type(geo)(geo.kind, {**geo.params, "seed": int(ds["position_seed"][k])}).positions()
+        np.testing.assert_array_equal(redrawn, np.asarray(ran["positions"]).reshape(-1, 3))
+    # grid coordinates carry units; warnings name grid values, not indices
+    assert ds["density"].attrs["units"] == "λ0⁻³" and ds["density"].attrs["parameter"] == "geometry.density"
+    assert ds.attrs["warnings"] and all(w.startswith(("density=0.2, ", "density=2, "))
+                                        for w in ds.attrs["warnings"])
