@@ -139,7 +139,7 @@ class _Stopped(KeyboardInterrupt):
 _FIGURES_TMP = ".figures-"
 
 
-def _prepare_out(out: Path) -> list[Path]:
+def _prepare_out(out: Path, tasks: bool) -> list[Path]:
     """Make sure ``out`` is a directory we can write into, before any computing; return the directories
     this made (so that a run that ends with nothing written can remove them again).
 
@@ -152,8 +152,8 @@ def _prepare_out(out: Path) -> list[Path]:
         raise _UsageError(f"--out: {out} exists and is not a directory; give a directory (it is created "
                           "if missing)")
     created = [d for d in [out, *out.parents] if not d.exists()][::-1]
-    tasks = out / "tasks"  # a resumed task run writes there: checked too, before any computing
-    for where in (out, tasks) if tasks.exists() else (out,):
+    resumed = out / "tasks"  # a resumed task run writes there: checked too, before any computing
+    for where in (out, resumed) if tasks and resumed.exists() else (out,):
         try:
             where.mkdir(parents=True, exist_ok=True)
             with tempfile.NamedTemporaryFile(dir=where, prefix=".beyondmf-write-test-") as probe:
@@ -211,14 +211,18 @@ _OUR_FIGURES = ("emission.png", "intensity.png", "geometry.png", "values.png", "
                 "correction_map.png")
 
 
-def _remove_stale_figures(out: Path, since: float) -> None:
-    """Remove the figures of an earlier run (our names, last written before ``since``) that this run did
-    not write again: they would stand beside a results.nc whose numbers they do not show."""
-    for path in sorted([*(out / n for n in _OUR_FIGURES), *out.glob("convergence_*.png")]):
+def _remove_earlier_outputs(out: Path, convergence: bool) -> None:
+    """Once this run's results.nc is written, remove what an earlier run left beside it: the figures (this
+    run draws its own next; drawn from other numbers, they must not stand beside the new file even if
+    drawing fails) and, for a study without [convergence], convergence.nc. Only our file names."""
+    stale = [*(out / n for n in _OUR_FIGURES), *out.glob("convergence_*.png")]
+    if not convergence:
+        stale.append(out / "convergence.nc")
+    for path in sorted(stale):
         try:
-            if path.is_file() and path.stat().st_mtime < since:
+            if path.is_file():
                 path.unlink()
-                _say(f"removed {path}: a figure of an earlier run in this directory, not made by this one")
+                _say(f"removed {path} (an earlier run's; results.nc is new)")
         except OSError:
             continue
 
@@ -236,14 +240,13 @@ def _cmd_run(args) -> int:
                           "(--out . writes into the current directory)")
     study = read_study(args.study, quick=args.quick)
     out = Path(args.out)
-    created = _prepare_out(out)
+    as_tasks = is_sweep(study) or args.workers is not None or args.scheduler is not None
+    created = _prepare_out(out, tasks=as_tasks)
     tasks_existed = (out / "tasks").exists()
-    t0, started = time.perf_counter(), time.time()
+    t0 = time.perf_counter()
     try:
-        if is_sweep(study) or args.workers is not None or args.scheduler is not None:
-            code = _run_tasks(study, out, args, t0)
-            _remove_stale_figures(out, started)
-            return code
+        if as_tasks:
+            return _run_tasks(study, out, args, t0)
 
         def on_level(name: str, stage: str, seconds: float | None) -> None:
             if stage == "start":
@@ -267,12 +270,12 @@ def _cmd_run(args) -> int:
             _say(f"level {failure.replace(': ', ': failed: ', 1)}")
         kept = f" (levels {', '.join(map(str, ds['level'].values))}; see above for the failed ones)"
         _say(f"wrote {path}" + (kept if failures else ""))
+        _remove_earlier_outputs(out, convergence=False)
         if not args.no_plots:
             try:
                 _write_figures(lambda d: plot_all(ds, d), out)
             except KeyboardInterrupt:
                 raise _Stopped(f"{path} is complete, the figures are not all written") from None
-        _remove_stale_figures(out, started)
         _say(f"done in {time.perf_counter() - t0:.1f} s")
         return EXIT_FAILED if failures else 0
     except BaseException:
@@ -317,6 +320,7 @@ def _report_tasks(study, ds, out: Path, args, t0: float) -> None:
     from .correction_plots import plot_sweep
 
     _say(f"wrote {out / 'results.nc'} ({ds.attrs['tasks']} tasks)")
+    _remove_earlier_outputs(out, convergence="convergence" in study.extra)
     for failure in ds.attrs.get("failures", []):
         _say(f"task failed: {failure}")
     said = ds.attrs.get("warnings", [])
@@ -330,9 +334,9 @@ def _report_tasks(study, ds, out: Path, args, t0: float) -> None:
     if "baseline" in ds.attrs:
         from .compare import verdict_table
 
+        verdict = next(v for name, v in ds.data_vars.items() if name.endswith("_verdict"))
         over = "times, detectors and grid points" if any(
-            d not in ("level", "time", "detector", "realization") for d in ds["emission_rate"].dims) \
-            else "times and detectors"
+            d not in ("level", "time", "detector") for d in verdict.dims) else "times and detectors"
         _say(f"verdicts against {ds.attrs['baseline']} (tolerance {ds.attrs['tolerance']:g}; per observable "
              f"the least favourable over {over}, in results.nc point by point):")
         warned = ds.get("warned_realizations")

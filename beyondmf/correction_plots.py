@@ -18,6 +18,8 @@ import xarray as xr  # noqa: E402
 from matplotlib.ticker import NullFormatter  # noqa: E402
 
 from .compare import summarize  # noqa: E402
+from .plotting import study_title  # noqa: E402
+from .sweep import grid_quantity  # noqa: E402
 
 __all__ = ["plot_sweep"]
 
@@ -26,20 +28,23 @@ _LABEL = {"emission_rate": "emission rate P (Γ0)", "g2_total": "g2 of all light
           "intensity": "intensity (Γ0/sr)", "emission_rate_peak": "peak rate (Γ0)",
           "peak_time": "time of the peak (1/Γ0)", "emitted": "photons emitted"}
 _CLIP = 1.5  # relative corrections are drawn within ±150 %: beyond that the baseline has plainly failed
-_AXIS = {"geometry.density": "density n·λ0³", "drive.saturation": "saturation s", "drive.rabi": "Ω (Γ0)",
-         "drive.detuning": "Δ (Γ0)", "geometry.spacing": "spacing (λ0)", "geometry.n": "N emitters"}
 _COLUMNS = 3  # panels per row
 
 
 def _axis_label(s: xr.Dataset, dim: str) -> str:
     """A grid dimension's axis label: the quantity with its unit where known, else the study path."""
-    path = s[dim].attrs.get("parameter", dim)
-    return _AXIS.get(path, path)
+    return grid_quantity(s[dim].attrs.get("parameter", dim))[2]
+
+
+def _fmt(v) -> str:
+    """A grid value for a label: numbers compactly, anything else (a coupling kind, …) as it is."""
+    numeric = isinstance(v, int | float | np.number) and not isinstance(v, bool | np.bool_)
+    return f"{v:g}" if numeric else str(v)
 
 
 def _log_axis(x: np.ndarray) -> bool:
-    """A positive grid spanning a decade or more is drawn on a logarithmic axis."""
-    return bool(np.all(x > 0) and x.max() / x.min() >= 10)
+    """A positive numeric grid spanning a decade or more is drawn on a logarithmic axis."""
+    return bool(np.issubdtype(x.dtype, np.number) and np.all(x > 0) and x.max() / x.min() >= 10)
 
 
 def _grid_axis(ax, s: xr.Dataset, dim: str) -> np.ndarray:
@@ -50,7 +55,7 @@ def _grid_axis(ax, s: xr.Dataset, dim: str) -> np.ndarray:
     if _log_axis(x):
         ax.set_xscale("log")
         ax.xaxis.set_minor_formatter(NullFormatter())
-        ax.set_xticks(x, [f"{v:g}" for v in x])
+        ax.set_xticks(x, [_fmt(v) for v in x])
     return x
 
 
@@ -66,13 +71,17 @@ def _subplots(n: int):
 
 
 def _summary(ds: xr.Dataset) -> xr.Dataset:
-    if "emission_rate_uncertainty" in ds:
+    """A comparison as it is (whatever observables it compared); per-realization results summarized
+    against their first level."""
+    if any(name.endswith("_uncertainty") for name in ds.data_vars):
         return ds
     return summarize(ds, baseline=str(ds["level"].values[0]))
 
 
 def _grid_dims(s: xr.Dataset) -> list[str]:
-    return [d for d in s["emission_rate"].dims if d not in ("level", "time", "detector")]
+    """The grid dimensions: those of a compared observable other than level, time and detector."""
+    first = next(name.removesuffix("_uncertainty") for name in s.data_vars if name.endswith("_uncertainty"))
+    return [d for d in s[first].dims if d not in ("level", "time", "detector")]
 
 
 def _panels(s: xr.Dataset) -> list[tuple[str, str | None]]:
@@ -125,7 +134,7 @@ def _slices(s: xr.Dataset, dims: list[str]) -> list[tuple[dict, str]]:
     out = []
     for c in combos:
         pairs = list(zip(dims, c, strict=True))
-        out.append((dict(pairs), ", " + ", ".join(f"{d}={v:g}" for d, v in pairs)))
+        out.append((dict(pairs), ", " + ", ".join(f"{d}={_fmt(v)}" for d, v in pairs)))
     return out
 
 
@@ -183,7 +192,7 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
             ax.set_yscale("log")
     tags = [tag.removeprefix(", ") for _sel, tag in _slices(s, grid)] if grid else []
     _legends(axes, time_panels, tags, {"fontsize": 8, "title": "level", "title_fontsize": 8})
-    fig.suptitle(s.attrs.get("title", "") + (" (quick mode)" if s.attrs.get("quick") else ""), fontsize=10)
+    fig.suptitle(study_title(s), fontsize=10)
     return _save(fig, path)
 
 
@@ -272,8 +281,8 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
             for (yi, xi), v in np.ndenumerate(verdict):
                 mark = _MARK.get(str(v), "") + ("!" if warned[yi, xi] else "")
                 ax.text(xi, yi, mark, ha="center", va="center", fontsize=11)
-            ax.set_xticks(range(s.sizes[gx]), [f"{v:g}" for v in s[gx].values], fontsize=7)
-            ax.set_yticks(range(s.sizes[gy]), [f"{v:g}" for v in s[gy].values], fontsize=7)
+            ax.set_xticks(range(s.sizes[gx]), [_fmt(v) for v in s[gx].values], fontsize=7)
+            ax.set_yticks(range(s.sizes[gy]), [_fmt(v) for v in s[gy].values], fontsize=7)
             ax.set_xlabel(_axis_label(s, gx))
             ax.set_ylabel(_axis_label(s, gy))
             at = " at the last time" if "time" in rest else ""

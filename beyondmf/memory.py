@@ -20,12 +20,14 @@ def available_bytes() -> int:
 
 
 def size_text(nbytes: float) -> str:
-    """A memory size for a message, in the largest binary unit below it: '17 MiB', '3.2 GiB', '3.07 EiB'."""
+    """A memory size for a message, in the largest binary unit it reaches 1000 of: '512 bytes', '16.8 MiB',
+    '0.977 GiB', '3.2 GiB', '3,072 EiB'."""
     units = ("bytes", "KiB", "MiB", "GiB", "TiB", "PiB", "EiB")
     k = 0
-    while k < len(units) - 1 and nbytes >= 1024 ** (k + 1):
+    while k < len(units) - 1 and nbytes >= 1000 * 1024**k:
         k += 1
-    return f"{nbytes / 1024**k:.3g} {units[k]}"
+    value = nbytes / 1024**k
+    return f"{value:.3g} {units[k]}" if value < 1000 else f"{value:,.0f} {units[k]}"
 
 
 def require(nbytes: float, what: str, fraction: float = 0.9) -> None:

@@ -17,7 +17,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import xarray as xr  # noqa: E402
 
-__all__ = ["plot_emission", "plot_intensity", "plot_geometry", "plot_all"]
+__all__ = ["plot_emission", "plot_intensity", "plot_geometry", "plot_all", "study_title"]
 
 _RATE = "emission rate P (photons per 1/Γ0)"
 _INTENSITY = "intensity I (photons per 1/Γ0 per sr)"
@@ -32,11 +32,14 @@ def _by_level(ds: xr.Dataset, level: str) -> xr.Dataset:
     return ds.sel(level=level) if "level" in ds.dims else ds
 
 
+def study_title(ds: xr.Dataset) -> str:
+    """The study's title, and "(quick mode)" for a run with the study's [quick] overrides."""
+    return (ds.attrs.get("title") or "") + (" (quick mode)" if ds.attrs.get("quick") else "")
+
+
 def _title(ds: xr.Dataset, what: str) -> str:
     """The figure's title: what it shows, then the study's title (and whether it ran with --quick)."""
-    title = ds.attrs.get("title") or ""
-    if ds.attrs.get("quick"):
-        title += " (quick mode)"
+    title = study_title(ds).strip()
     return f"{what}\n{title}" if title else what
 
 

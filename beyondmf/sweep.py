@@ -82,28 +82,28 @@ _DERIVED = ("geometry.density", "drive.saturation")
 
 # Units and names of the grid coordinates in results.nc (and on the figures' axes); other paths are
 # named by themselves.
-GRID_QUANTITIES = {
-    "geometry.density": ("λ0⁻³", "density n (peak density for a Gaussian cloud)"),
-    "drive.saturation": ("1", "saturation parameter s = 2Ω²/(1 + 4Δ²)"),
-    "drive.rabi": ("Γ0", "Rabi frequency Ω"),
-    "drive.detuning": ("Γ0", "detuning Δ = ω_laser − ω_atom"),
-    "geometry.spacing": ("λ0", "lattice spacing"),
-    "geometry.min_distance": ("λ0", "smallest distance between emitters"),
-    "geometry.n": ("1", "number of emitters N"),
-    "run.t_end": ("1/Γ0", "end time"),
+GRID_QUANTITIES = {  # path → (units, long name, axis label)
+    "geometry.density": ("λ0⁻³", "density n (peak density for a Gaussian cloud)", "density n·λ0³"),
+    "drive.saturation": ("1", "saturation parameter s = 2Ω²/(1 + 4Δ²)", "saturation s"),
+    "drive.rabi": ("Γ0", "Rabi frequency Ω", "Ω (Γ0)"),
+    "drive.detuning": ("Γ0", "detuning Δ = ω_laser − ω_atom", "Δ (Γ0)"),
+    "geometry.spacing": ("λ0", "lattice spacing", "spacing (λ0)"),
+    "geometry.min_distance": ("λ0", "smallest distance between emitters", "min. distance (λ0)"),
+    "geometry.n": ("1", "number of emitters N", "N emitters"),
+    "run.t_end": ("1/Γ0", "end time", "t_end (1/Γ0)"),
 }
 
 
-def grid_quantity(path: str) -> tuple[str | None, str]:
-    """(units or None, long name) of the grid coordinate for study path ``path``."""
+def grid_quantity(path: str) -> tuple[str | None, str, str]:
+    """(units or None, long name, axis label) of the grid coordinate for study path ``path``."""
     if path in GRID_QUANTITIES:
         return GRID_QUANTITIES[path]
     last = path.rsplit(".", 1)[-1]
     if path.startswith("levels.") and last in ("samples", "realizations", "chunk"):
-        return "1", f"{last} ({path})"
+        return "1", f"{last} ({path})", path
     if path.startswith("levels.") and last in ("dt", "settle_time", "window"):
-        return "1/Γ0", f"{last} ({path})"
-    return None, path
+        return "1/Γ0", f"{last} ({path})", f"{path} (1/Γ0)"
+    return None, path, path
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -179,10 +179,13 @@ def stack(
     observables: Sequence[str] = (),
     grid: Sequence[tuple[str, Sequence]] = (),
     last_time: bool = False,
+    grid_values: Sequence[Sequence] | None = None,
 ) -> xr.Dataset:
     """Per-task results into one Dataset with dimensions (grid..., level, realization, time?, detector).
 
     ``last_time`` keeps only the last saved time of a dynamics run (its late-time value).
+    ``grid_values`` (per grid dimension, the values the study gave, where the coordinates are indices of
+    list values such as vectors) name the grid points in messages.
 
     ``index`` maps (grid indices..., label, realization) to the task; per-emitter variables are reduced
     to ``excited_mean`` (mean population) because N may differ across the grid. A failed task (its
@@ -219,8 +222,10 @@ def stack(
     counts = np.full(outer, np.nan)
 
     def where(key_tuple: tuple) -> str:  # a task in words: grid values, level, realization
-        point = [f"{g}={v:g}" if isinstance(v, int | float | np.number) else f"{g}={v}"
-                 for (g, values), i in zip(grid, key_tuple[:-2], strict=True) for v in [values[i]]]
+        given = grid_values or [values for _, values in grid]
+        point = [f"{g}={v:g}" if isinstance(v, int | float | np.number) and not isinstance(v, bool)
+                 else f"{g}={v}"
+                 for (g, _), values, i in zip(grid, given, key_tuple[:-2], strict=True) for v in [values[i]]]
         return ", ".join([*point, str(key_tuple[-2]), f"realization {key_tuple[-1]}"])
 
     for key_tuple, task in index.items():
@@ -938,10 +943,13 @@ def run_sweep(
     results = execute(list(index.values()), out, executor, progress, on_done)
     spec = study.extra.get("sweep")
     last = bool(spec and spec.keep == "last_time")
-    per = stack(index, results, labels, k, observables, dims, last_time=last)
+    per = stack(index, results, labels, k, observables, dims, last_time=last,
+                grid_values=list(spec.grid.values()) if spec else None)
     for (name, _), path in zip(dims, spec.grid if spec else [], strict=True):
-        units, long_name = grid_quantity(path)
+        units, long_name, _label = grid_quantity(path)
         per[name].attrs.update(parameter=path, long_name=long_name, **({"units": units} if units else {}))
+        if any(isinstance(v, list) for v in spec.grid[path]):  # index coordinates: the values they stand for
+            per[name].attrs["values"] = json.dumps(spec.grid[path])
     if "N" in per.dims or any(p["N"] for p in params.values()):
         ns = np.array([params[i]["N"] for i in itertools.product(*(range(len(v)) for _, v in dims))])
         per["n_emitters"] = ([d for d, _ in dims], ns.reshape([len(v) for _, v in dims]),

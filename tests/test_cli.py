@@ -618,3 +618,34 @@ def test_a_refusal_of_the_model_names_the_study_key_it_is_about(tmp_path, capsys
     study_file.write_text(points)
     code, err = _run(["run", study_file, "--out", tmp_path / "b"], capsys)
     assert code == cli.EXIT_USAGE and "geometry.positions: emitters 0 and 1 are 0.0001 λ0 apart" in err
+
+
+def test_a_comparison_of_g2_alone_reports_its_verdicts_and_draws_its_figures(tmp_path, capsys):
+    """A [compare] whose observables leave out the emission rate: the verdict line and the figures read
+    the compared observables (both read emission_rate and failed after results.nc was written)."""
+    study_file = tmp_path / "g2.toml"
+    text = _replace(_replace(SMALL, "n = 12", "n = 3"), "seed = 3\n", "")
+    study_file.write_text(text + '[levels.cumulant2]\n[sweep]\nrealizations = 2\n'
+                          '[compare]\nbaseline = "meanfield"\nobservables = ["g2_total"]\n')
+    code, err = _run(["run", study_file, "--out", tmp_path / "out"], capsys)
+    assert code == 0, err
+    assert "least favourable over times and detectors" in err and "cumulant2: g2_total" in err
+    assert (tmp_path / "out" / "values.png").exists() and (tmp_path / "out" / "corrections.png").exists()
+
+
+def test_a_single_model_run_does_not_need_an_old_tasks_directory_to_be_writable(tmp_path, capsys,
+                                                                                monkeypatch):
+    study_file = tmp_path / "small.toml"
+    study_file.write_text(_replace(SMALL, "n = 12", "n = 3"))
+    tasks = tmp_path / "out" / "tasks"
+    tasks.mkdir(parents=True)
+    real = cli.tempfile.NamedTemporaryFile
+
+    def read_only_tasks(*a, dir=None, **k):
+        if Path(dir) == tasks:
+            raise PermissionError(13, "Permission denied")
+        return real(*a, dir=dir, **k)
+
+    monkeypatch.setattr(cli.tempfile, "NamedTemporaryFile", read_only_tasks)
+    code, err = _run(["run", study_file, "--out", tmp_path / "out", "--no-plots"], capsys)
+    assert code == 0, err  # in process: tasks/ is not written, so not checked

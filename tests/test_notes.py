@@ -108,7 +108,9 @@ def test_memory_sizes_are_given_in_a_readable_unit():
     from beyondmf.memory import size_text
 
     assert size_text(512) == "512 bytes"
+    assert size_text(1023) == "0.999 KiB"
     assert size_text(17.6e6) == "16.8 MiB"
+    assert size_text(1000 * 2**20) == "0.977 GiB"
     assert size_text(3.2 * 2**30) == "3.2 GiB"
     # exact at N = 30 used to say "3298534883328.0 GiB"
-    assert size_text(3298534883328 * 2**30) == "3.07e+03 EiB"
+    assert size_text(3298534883328 * 2**30) == "3,072 EiB"

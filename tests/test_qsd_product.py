@@ -244,3 +244,32 @@ def test_driven_chain_with_weak_exchange_against_the_lindblad_equation():
     assert np.all(np.abs(tot - exc.sum(axis=1)) < 0.05 * exc.sum(axis=1).max() + 4 * tot_se)
     rate_se = ds.emission_rate_stderr.values
     assert np.all(np.abs(ds.emission_rate.values - rate) < 0.05 * rate.max() + 4 * rate_se)
+
+
+def test_laser_on_counts_pulses_between_observation_times_and_takes_traced_envelopes():
+    # Two pulses [0.2, 0.8) and [1.2, 1.8) seen only at t = 0, 1, 2: each interval had the laser on for 0.6
+    # of its length (the mask used to be read at the observation times only, and saw nothing). An envelope
+    # written with lax.cond (a scalar predicate) is evaluated one time at a time, as the solvers do.
+    from beyondmf.levels.qsd_product import laser_on
+
+    pulses = Model(positions=_line(2, 0.3), rabi=0.3, envelope=[(0.2, 0.8), (1.2, 1.8)])
+    assert np.allclose(laser_on(pulses, np.array([0.0, 1.0, 2.0]), steady=False), [0.0, 0.6, 0.6])
+
+    def ramp(t):
+        return jax.lax.cond(t < 0.5, lambda: 0.0, lambda: 1.0)
+
+    ramped = Model(positions=_line(2, 0.3), rabi=0.3, envelope=ramp)
+    assert np.allclose(laser_on(ramped, np.array([0.0, 1.0]), steady=False), [0.0, 0.5])
+    assert np.array_equal(laser_on(Model(positions=_line(2, 0.3)), np.array([0.0, 1.0]), steady=False),
+                          [0.0, 0.0])  # no drive
+    assert np.array_equal(laser_on(pulses, np.array([0.0, 1.0]), steady=True), [1.0, 1.0])
+
+
+def test_the_decayed_tail_of_a_burst_warns_that_its_g2_is_the_product_state_value():
+    # After the burst of an inverted all-to-all cluster the excitation is small and the exact ladder drives
+    # g2 up (Gross & Haroche 1982), which product trajectories cannot follow (docs §5): without drive
+    # decay_leak is not counted, so the weak-excitation rule is what says so.
+    m = Model(positions=_line(4, 0.3), coupling="all-to-all")
+    with pytest.warns(UserWarning, match="hardly fluctuate"):
+        ds = evolve(m, "qsd_product", np.linspace(0, 8, 9), initial="excited", seed=1, samples=100)
+    assert float(ds.excited[-1].mean()) < 0.01
