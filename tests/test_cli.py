@@ -561,6 +561,18 @@ def test_warnings_are_printed_as_one_line_for_the_user(tmp_path, capsys):
     assert "UserWarning" not in err and ".py:" not in err
 
 
+def _read_only(monkeypatch, directory: Path) -> None:
+    """Files cannot be created in ``directory`` (as on a read-only mount); elsewhere they can."""
+    real = cli.tempfile.NamedTemporaryFile
+
+    def probe(*a, dir=None, **k):
+        if Path(dir) == directory:
+            raise PermissionError(13, "Permission denied")
+        return real(*a, dir=dir, **k)
+
+    monkeypatch.setattr(cli.tempfile, "NamedTemporaryFile", probe)
+
+
 def test_an_unwritable_tasks_directory_of_a_resumed_run_is_refused_before_computing(tmp_path, capsys,
                                                                                    monkeypatch):
     """DIR/tasks of an earlier run that can no longer be written (common practice: a read-only mount)."""
@@ -574,14 +586,7 @@ def test_an_unwritable_tasks_directory_of_a_resumed_run_is_refused_before_comput
     study_file.write_text(_replace(SMALL, "seed = 3\n", "") + "[sweep]\nrealizations = 1\n")
     tasks = tmp_path / "out" / "tasks"
     tasks.mkdir(parents=True)
-    real = cli.tempfile.NamedTemporaryFile
-
-    def read_only_tasks(*a, dir=None, **k):
-        if Path(dir) == tasks:
-            raise PermissionError(13, "Permission denied")
-        return real(*a, dir=dir, **k)
-
-    monkeypatch.setattr(cli.tempfile, "NamedTemporaryFile", read_only_tasks)
+    _read_only(monkeypatch, tasks)
     code, err = _run(["run", study_file, "--out", tmp_path / "out"], capsys)
     assert code == cli.EXIT_USAGE and len(err.strip().splitlines()) == 1, err
     assert f"cannot create and write files in {tasks}: Permission denied" in err
@@ -639,13 +644,6 @@ def test_a_single_model_run_does_not_need_an_old_tasks_directory_to_be_writable(
     study_file.write_text(_replace(SMALL, "n = 12", "n = 3"))
     tasks = tmp_path / "out" / "tasks"
     tasks.mkdir(parents=True)
-    real = cli.tempfile.NamedTemporaryFile
-
-    def read_only_tasks(*a, dir=None, **k):
-        if Path(dir) == tasks:
-            raise PermissionError(13, "Permission denied")
-        return real(*a, dir=dir, **k)
-
-    monkeypatch.setattr(cli.tempfile, "NamedTemporaryFile", read_only_tasks)
+    _read_only(monkeypatch, tasks)
     code, err = _run(["run", study_file, "--out", tmp_path / "out", "--no-plots"], capsys)
     assert code == 0, err  # in process: tasks/ is not written, so not checked

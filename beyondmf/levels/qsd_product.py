@@ -243,7 +243,8 @@ class ProductStateDiffusion(SpinSampling):
                 "had errors of order one in the measured driven pairs (−77 % to +250 %, docs/qsd_product.md "
                 "§4)"
                 + (f"; above {DECAY_RATE_WARNING:g} under strong drive (s > 1) the emission rate too, by up "
-                   "to 24 %" if rate else "; the emission rate and the coherences are not affected here")
+                   "to 24 %" if rate
+                   else "; the emission rate and the coherences are not affected by it here")
                 + ". For photon statistics compare with 'cumulant2', 'jumps' or an exact level"
             )
             return
