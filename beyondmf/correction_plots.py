@@ -19,7 +19,7 @@ from matplotlib.ticker import NullFormatter  # noqa: E402
 
 from .compare import summarize  # noqa: E402
 from .plotting import study_title  # noqa: E402
-from .sweep import grid_quantity  # noqa: E402
+from .sweep import format_value, grid_quantity  # noqa: E402
 
 __all__ = ["plot_sweep"]
 
@@ -36,12 +36,6 @@ def _axis_label(s: xr.Dataset, dim: str) -> str:
     return grid_quantity(s[dim].attrs.get("parameter", dim))[2]
 
 
-def _fmt(v) -> str:
-    """A grid value for a label: numbers compactly, anything else (a coupling kind, …) as it is."""
-    numeric = isinstance(v, int | float | np.number) and not isinstance(v, bool | np.bool_)
-    return f"{v:g}" if numeric else str(v)
-
-
 def _log_axis(x: np.ndarray) -> bool:
     """A positive numeric grid spanning a decade or more is drawn on a logarithmic axis."""
     return bool(np.issubdtype(x.dtype, np.number) and np.all(x > 0) and x.max() / x.min() >= 10)
@@ -55,7 +49,7 @@ def _grid_axis(ax, s: xr.Dataset, dim: str) -> np.ndarray:
     if _log_axis(x):
         ax.set_xscale("log")
         ax.xaxis.set_minor_formatter(NullFormatter())
-        ax.set_xticks(x, [_fmt(v) for v in x])
+        ax.set_xticks(x, [format_value(v) for v in x])
     return x
 
 
@@ -134,7 +128,7 @@ def _slices(s: xr.Dataset, dims: list[str]) -> list[tuple[dict, str]]:
     out = []
     for c in combos:
         pairs = list(zip(dims, c, strict=True))
-        out.append((dict(pairs), ", " + ", ".join(f"{d}={_fmt(v)}" for d, v in pairs)))
+        out.append((dict(pairs), ", " + ", ".join(f"{d}={format_value(v)}" for d, v in pairs)))
     return out
 
 
@@ -281,8 +275,8 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
             for (yi, xi), v in np.ndenumerate(verdict):
                 mark = _MARK.get(str(v), "") + ("!" if warned[yi, xi] else "")
                 ax.text(xi, yi, mark, ha="center", va="center", fontsize=11)
-            ax.set_xticks(range(s.sizes[gx]), [_fmt(v) for v in s[gx].values], fontsize=7)
-            ax.set_yticks(range(s.sizes[gy]), [_fmt(v) for v in s[gy].values], fontsize=7)
+            ax.set_xticks(range(s.sizes[gx]), [format_value(v) for v in s[gx].values], fontsize=7)
+            ax.set_yticks(range(s.sizes[gy]), [format_value(v) for v in s[gy].values], fontsize=7)
             ax.set_xlabel(_axis_label(s, gx))
             ax.set_ylabel(_axis_label(s, gy))
             at = " at the last time" if "time" in rest else ""

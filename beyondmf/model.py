@@ -13,10 +13,19 @@ from .couplings import KINDS, _unit, device_couplings, validate_custom
 from .geometry import nearest_distance
 from .memory import require
 
-__all__ = ["Model", "Envelope", "MIN_SEPARATION"]
+__all__ = ["Model", "Envelope", "MIN_SEPARATION", "ModelInputError"]
 
 # Emitters closer than this (λ0) are refused: |J| ~ (3/4)/(2π r)³ exceeds 10⁶ Γ0 and no level is meaningful.
 MIN_SEPARATION = 1e-3
+
+
+class ModelInputError(ValueError):
+    """A refused model input; ``param`` names the argument it is about ("envelope", "positions"), so that a
+    caller with its own names for them (a study file's keys) can point at the right one."""
+
+    def __init__(self, message: str, param: str | None = None) -> None:  # a default: it must unpickle
+        super().__init__(message)
+        self.param = param
 
 
 @dataclass(frozen=True)
@@ -74,13 +83,13 @@ class Envelope:
             ) from err
         for a, b in wins:
             if not (np.isfinite(a) and np.isfinite(b) and b > a):
-                raise ValueError(f"envelope window ({a}, {b}) must have finite t_on < t_off")
+                raise ModelInputError(f"envelope window ({a}, {b}) must have finite t_on < t_off", "envelope")
         ordered = sorted(wins)
         for (a0, b0), (a1, b1) in zip(ordered, ordered[1:], strict=False):
             if a1 < b0:  # the envelope is 1 or 0: overlapping windows would add up to 2
-                raise ValueError(
+                raise ModelInputError(
                     f"envelope windows ({a0:g}, {b0:g}) and ({a1:g}, {b1:g}) overlap; the laser is either on "
-                    f"or off, so give them as one window ({a0:g}, {max(b0, b1):g})"
+                    f"or off, so give them as one window ({a0:g}, {max(b0, b1):g})", "envelope"
                 )
         return cls(windows=wins)
 
@@ -163,10 +172,10 @@ class Model:
             if self.coupling != "all-to-all":
                 dmin, (i, j) = nearest_distance(pos)
                 if dmin < MIN_SEPARATION:
-                    raise ValueError(
+                    raise ModelInputError(
                         f"emitters {i} and {j} are {dmin:.3g} λ0 apart, closer than {MIN_SEPARATION} λ0: "
                         "the couplings diverge there; place them further apart (a random cloud: draw it with "
-                        "a min_distance)"
+                        "a min_distance)", "positions"
                     )
             Jd, Gd = device_couplings(pos, dip, self.coupling)
             kind = self.coupling

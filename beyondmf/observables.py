@@ -18,7 +18,7 @@ import xarray as xr
 from .levels.base import Moments, Probes
 from .model import Model
 
-__all__ = ["assemble", "detector_prefactor"]
+__all__ = ["assemble", "detector_prefactor", "stderr_attrs"]
 
 _UNITS = {
     "excited": ("probability", "excited population ⟨σ_i⁺σ_i⁻⟩"),
@@ -30,6 +30,12 @@ _UNITS = {
     "g2": ("1", "second-order coherence at zero delay, per detector"),
     "g2_total": ("1", "second-order coherence of all emitted light"),
 }
+
+
+def stderr_attrs(attrs: dict) -> dict:
+    """The attributes of ``<name>_stderr`` from those of ``<name>``: the same units, the long name of a
+    sampling error."""
+    return {**attrs, "long_name": f"standard error (sampling) of the {attrs.get('long_name', 'value')}"}
 
 
 def detector_prefactor(model: Model, probes: Probes) -> np.ndarray:
@@ -112,8 +118,7 @@ def assemble(
         if name in ds:
             ds[name].attrs.update(units=unit, long_name=long)
         if f"{name}_stderr" in ds:
-            ds[f"{name}_stderr"].attrs.update(units=unit,
-                                              long_name=f"standard error (sampling) of the {long}")
+            ds[f"{name}_stderr"].attrs.update(stderr_attrs({"units": unit, "long_name": long}))
     if times is not None:
         ds["time"].attrs.update(units="1/Γ0", long_name="time")
     ds["position"].attrs.update(units="λ0", long_name="emitter positions")

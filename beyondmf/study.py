@@ -440,13 +440,13 @@ class Study:
                 envelope=self.drive.windows,
             )
         except ValueError as err:
-            raise StudyError(f"{self._model_key(str(err))}: {err}") from None
+            raise StudyError(f"{self._model_key(getattr(err, 'param', None))}: {err}") from None
 
-    def _model_key(self, message: str) -> str:
-        """The study key a refusal of `Model` is about (its checks that span several keys)."""
-        if message.startswith("envelope"):
+    def _model_key(self, param: str | None) -> str:
+        """The study key a refusal of `Model` about argument ``param`` is about."""
+        if param == "envelope":
             return "drive.windows"
-        if message.startswith("emitters ") and " apart" in message:  # two emitters too close
+        if param == "positions":  # two emitters too close
             if self.geometry.kind == "points":
                 return "geometry.positions"
             return "geometry.spacing" if "spacing" in self.geometry.params else "geometry.min_distance"

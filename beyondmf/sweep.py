@@ -51,6 +51,7 @@ import xarray as xr
 
 from .levels.base import available_levels, detector_directions, get_level
 from .model import Model
+from .observables import stderr_attrs
 from .study import Study, StudyError, parse_table, section, study_check, study_text
 from .tasks import SCALAR_VARIABLES, task_key
 
@@ -68,6 +69,8 @@ __all__ = [
     "level_table",
     "realization_seeds",
     "stack",
+    "grid_quantity",
+    "format_value",
 ]
 
 # Observables a [compare] section may name besides the default ones; the last three exist for dynamics.
@@ -92,6 +95,13 @@ GRID_QUANTITIES = {  # path → (units, long name, axis label)
     "geometry.n": ("1", "number of emitters N", "N emitters"),
     "run.t_end": ("1/Γ0", "end time", "t_end (1/Γ0)"),
 }
+
+
+def format_value(v) -> str:
+    """A grid value for a label or message: numbers compactly, anything else (a coupling kind, a vector)
+    as it is."""
+    numeric = isinstance(v, int | float | np.number) and not isinstance(v, bool | np.bool_)
+    return f"{v:g}" if numeric else str(v)
 
 
 def grid_quantity(path: str) -> tuple[str | None, str, str]:
@@ -191,10 +201,9 @@ def stack(
     to ``excited_mean`` (mean population) because N may differ across the grid. A failed task (its
     level refused the model, or the solve failed) gives NaN and its message in ``failures``. The variable
     ``warnings`` counts the warnings each task's level issued about its own run (NaN for a failed task),
-    and the attribute ``warnings`` lists them as "grid values, level, realization k (task KEY):
-    message". A level's own
-    diagnostics that have the shape of the emission rate (per time, or scalars of a steady state) are
-    kept too, NaN for the other levels.
+    and the attribute ``warnings`` lists them as "grid values, level, realization k (task KEY): message".
+    A level's own diagnostics that have the shape of the emission rate (per time, or scalars of a steady
+    state) are kept too, NaN for the other levels.
     """
     template = next((results[task_key(t)] for t in index.values()
                      if results[task_key(t)].attrs.get("task_status", "done") == "done"
@@ -221,11 +230,11 @@ def stack(
         arrays[name] = (base.dims, np.full(outer + list(base.shape), np.nan, dtype=base.dtype))
     counts = np.full(outer, np.nan)
 
+    given = grid_values or [values for _, values in grid]
+
     def where(key_tuple: tuple) -> str:  # a task in words: grid values, level, realization
-        given = grid_values or [values for _, values in grid]
-        point = [f"{g}={v:g}" if isinstance(v, int | float | np.number) and not isinstance(v, bool)
-                 else f"{g}={v}"
-                 for (g, _), values, i in zip(grid, given, key_tuple[:-2], strict=True) for v in [values[i]]]
+        point = [f"{g}={format_value(values[i])}"
+                 for (g, _), values, i in zip(grid, given, key_tuple[:-2], strict=True)]
         return ", ".join([*point, str(key_tuple[-2]), f"realization {key_tuple[-1]}"])
 
     for key_tuple, task in index.items():
@@ -253,10 +262,8 @@ def stack(
     data = {n: (dims + list(d), a) for n, (d, a) in arrays.items()}
     out = xr.Dataset(data, coords=coords)
     for n in names:
-        out[n].attrs = dict(template[n.removesuffix("_stderr")].attrs)
-        if n.endswith("_stderr"):
-            out[n].attrs["long_name"] = "standard error (sampling) of " + out[n].attrs.get(
-                "long_name", n.removesuffix("_stderr"))
+        base = dict(template[n.removesuffix("_stderr")].attrs)
+        out[n].attrs = stderr_attrs(base) if n.endswith("_stderr") else base
     for n in diagnostics:
         first = next(results[task_key(t)][n] for t in index.values() if n in results[task_key(t)])
         out[n].attrs = dict(first.attrs, role=DIAGNOSTIC)
@@ -855,10 +862,7 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
     if raw is None:
         raw = tomllib.loads(study.source)
     dims = spec.dims()
-    # A study without [sweep] and [compare] (a plain study run as tasks, e.g. with --workers) is one
-    # realization of its own cloud and seed, as `run_study` would run it; a sweep draws realization k
-    # from sweep.seed (`realization_seeds`) and refuses geometry.seed and run.seed.
-    own = "sweep" not in study.extra and "compare" not in study.extra
+    own = _own_draws(study)
     index, labels, params = {}, None, {}
     for idx, point in _grid_points(spec):
         st = _point_study(raw, point)
@@ -890,12 +894,19 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
     return index, labels, spec.realizations, dims, params
 
 
+def _own_draws(study: Study) -> bool:
+    """A study without [sweep] and [compare] (a plain study run as tasks, e.g. with --workers) is one
+    realization of its own cloud and seed, as `run_study` would run it; a sweep draws realization k from
+    sweep.seed (`realization_seeds`) and refuses geometry.seed and run.seed."""
+    return "sweep" not in study.extra and "compare" not in study.extra
+
+
 def _realization_seeds(study: Study, index: Mapping[tuple, Mapping], k: int) -> dict[str, xr.DataArray]:
     """The seeds each realization used, so that one run can be redone from results.nc alone: the seed of
     its position draw (the ``seed`` argument of the `beyondmf.geometry` function) and the sampling seed of
     its stochastic levels (``seed`` of `evolve`/`steady`); −1 where there is none."""
     spec: SweepSpec = study.extra.get("sweep") or SweepSpec({}, 1, 0)
-    own = "sweep" not in study.extra and "compare" not in study.extra
+    own = _own_draws(study)
     random = study.geometry.kind in _RANDOM
     position = [(int(study.geometry.params.get("seed", 0)) if own else realization_seeds(spec.seed, r)[0])
                 if random else -1 for r in range(k)]
