@@ -1,10 +1,18 @@
-"""Memory estimates, checked before anything large is allocated."""
+"""Memory estimates, checked before anything large is allocated.
+
+Estimates may be Python integers of any size (a density matrix of 4^N entries at N = 600): `require` and
+`size_text` never turn them into a float that overflows, so a refusal is the same `MemoryError` at any N.
+"""
 
 from __future__ import annotations
 
+import math
 import os
 
-__all__ = ["available_bytes", "require"]
+__all__ = ["available_bytes", "require", "size_text"]
+
+_DEFAULT_HINT = ("use fewer emitters (for a sampling level, a smaller chunk of samples), or a larger "
+                 "machine")
 
 
 def available_bytes() -> int:
@@ -21,20 +29,27 @@ def available_bytes() -> int:
 
 def size_text(nbytes: float) -> str:
     """A memory size for a message, in the largest binary unit it reaches 1000 of: '512 bytes', '16.8 MiB',
-    '0.977 GiB', '3.2 GiB', '3,072 EiB'."""
+    '0.977 GiB', '3.2 GiB', '3,072 EiB'; beyond a million EiB as a power of ten ('10^331 bytes'),
+    also for integers too large for a float."""
     units = ("bytes", "KiB", "MiB", "GiB", "TiB", "PiB", "EiB")
+    if isinstance(nbytes, float) and math.isinf(nbytes):
+        return "more than 10^308 bytes"
+    if nbytes >= 10**6 * 1024**6:  # compared exactly, also for integers beyond the range of a float
+        return f"10^{math.floor(math.log10(nbytes))} bytes"
     k = 0
     while k < len(units) - 1 and nbytes >= 1000 * 1024**k:
         k += 1
-    value = nbytes / 1024**k
+    value = float(nbytes) / 1024**k
     return f"{value:.3g} {units[k]}" if value < 1000 else f"{value:,.0f} {units[k]}"
 
 
-def require(nbytes: float, what: str, fraction: float = 0.9) -> None:
-    """Raise MemoryError, before allocating, when ``what`` needs more than ``fraction`` of free memory."""
+def require(nbytes: float, what: str, fraction: float = 0.9, hint: str = _DEFAULT_HINT) -> None:
+    """Raise MemoryError, before allocating, when ``what`` needs more than ``fraction`` of free memory.
+
+    ``nbytes`` may be an integer of any size; ``hint`` says what to do instead (the end of the message).
+    """
     have = available_bytes()
-    if nbytes > fraction * have:
+    if nbytes > fraction * have:  # int against float: exact in Python, no overflow
         raise MemoryError(
-            f"{what}: about {size_text(nbytes)} needed, but this machine has {size_text(have)} free; "
-            "use fewer emitters (for a sampling level, a smaller chunk of samples), or a larger machine"
+            f"{what}: about {size_text(nbytes)} needed, but this machine has {size_text(have)} free; {hint}"
         )

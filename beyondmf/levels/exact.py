@@ -104,10 +104,11 @@ def _observe(y, obs_args):
     return {"excited": excited, "coherence": coherence, "field2": f2, "field4": f4, "rate": r2, "rate4": r4}
 
 
-def _memory(n: int) -> float:
-    """Bytes of the solve: ~6 (N, D, D) complex intermediates and ~12 copies of the real state."""
-    d2 = 4.0**n
-    return 16 * d2 * (6 * n + 12)
+def _memory(n: int) -> int:
+    """Bytes of the solve: ~6 (N, D, D) complex intermediates and ~12 copies of the real state.
+
+    An exact integer (4.0**n overflows a float at n ≥ 512), so that `memory.require` refuses at any N."""
+    return 16 * 4**n * (6 * n + 12)
 
 
 def liouvillian_hermitian(rhs, args, n: int) -> np.ndarray:

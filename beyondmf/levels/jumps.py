@@ -176,11 +176,14 @@ class Jumps(Level):
                               f"must be a positive time (1/Γ0), got {options['settle_time']!r}")
 
     def _setup(self, model: Model, probes: Probes, options):
-        n, d = model.n, 2**model.n
+        n, d = model.n, 2**model.n  # d an exact integer: the estimates below never overflow
         samples = int(options["samples"])
+        what = f"quantum-jump trajectories of {model.n} emitters"
+        # first without the jump channels, before finding them costs an N × N eigendecomposition
+        require(16 * d * (8 + 4 * n + 2 * len(probes.names)), what)
         rates, v = jump_channels(model.Gamma)
         per_traj = 16 * d * (8 + 3 * n + len(rates) * n + 2 * len(probes.names))
-        require(per_traj + 16 * d * n, f"quantum-jump trajectories of {model.n} emitters")
+        require(per_traj + 16 * d * n, what)
         chunk = options["chunk"]
         if chunk == "auto":
             budget = min(CHUNK_BYTES, 0.25 * available_bytes())
