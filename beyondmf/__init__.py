@@ -11,6 +11,7 @@ from . import (
     geometry,  # noqa: E402
 )
 from .api import evolve, steady  # noqa: E402
+from .correlations import correlations  # noqa: E402
 from .couplings import couplings  # noqa: E402
 from .levels import Level, Moments, available_levels, get_level, register  # noqa: E402
 from .model import Model  # noqa: E402
@@ -26,6 +27,7 @@ __all__ = [
     "Model",
     "evolve",
     "steady",
+    "correlations",
     "couplings",
     "geometry",
     "available_levels",
