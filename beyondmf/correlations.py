@@ -60,9 +60,9 @@ REFUSED = {
 
 
 def _modules() -> dict[str, Any]:
-    from .twotime import exact, meanfield
+    from .twotime import dicke, exact, meanfield
 
-    return {"exact": exact, "meanfield": meanfield}
+    return {"exact": exact, "dicke": dicke, "meanfield": meanfield}
 
 
 def supported_levels() -> dict[str, str]:
