@@ -21,7 +21,7 @@ from ._notes import warn as _note
 
 __all__ = [
     "ODE_OPTIONS", "SolveError", "solve", "settle", "observe_once", "hermitian_unit_trace", "pick_solver",
-    "per_envelope", "check_ode_options",
+    "per_envelope", "check_ode_options", "stabilized", "RELAX_RATE", "check_bounds", "BOUND_SLACK",
 ]
 
 ODE_OPTIONS: dict[str, Any] = {
@@ -105,6 +105,69 @@ def pick_solver(name: str, size: int, stiffness: float) -> str:
             "min_distance, or use solver='kvaerno5' for small N"
         )
     return name
+
+
+# Rate (Γ0) at which `stabilized` pulls a state back onto its level's physical manifold.
+RELAX_RATE = 1.0
+
+
+@functools.lru_cache(maxsize=64)
+def stabilized(rhs: Callable, project: Callable) -> tuple[Callable, Callable]:
+    """(rhs, observe wrapper) that keep a state on the manifold of an affine projection ``project``.
+
+    For a density matrix, P = `hermitian_unit_trace`: the right-hand side is evaluated at P(y) and the
+    distance from the manifold is damped,
+
+        dy/dt = f(P(y)) − κ (y − P(y)),        κ = RELAX_RATE,
+
+    identical to dy/dt = f(y) on the manifold. Off it, e = y − P(y) obeys de/dt = (1 − Π) f(P(y)) − κe
+    (Π the linear part of P), and (1 − Π) f(P(y)) = 0 because the Lindblad f maps Hermitian unit-trace
+    matrices to Hermitian traceless ones: round-off and solver errors off the manifold decay at rate κ
+    instead of accumulating. Without it the trace is a neutral direction, and a right-hand side that
+    assumes ρ = ρ† (exact's ρH† = (Hρ)†) lets the anti-Hermitian part grow like a polynomial of degree N in
+    t (the jump map alone acts on it, nilpotent and undamped); docs/exact.md, "Long runs".
+    The wrapped ``observe`` reads P(y).
+    """
+    def rhs_p(t, y, args):
+        p = project(y)
+        return rhs(t, p, args) - RELAX_RATE * (y - p)
+
+    def observe_p(observe):
+        return _projected_observe(observe, project)
+
+    return rhs_p, observe_p
+
+
+@functools.lru_cache(maxsize=64)
+def _projected_observe(observe: Callable, project: Callable) -> Callable:
+    return lambda y, obs_args: observe(project(y), obs_args)
+
+
+# A physical bound may be exceeded by this many times (rtol + atol) before a run is warned about.
+BOUND_SLACK = 100.0
+
+
+def check_bounds(what: str, excess: dict[str, float], options: dict[str, Any]) -> float:
+    """Warn when a solution breaks a bound that the exact dynamics keeps, by more than its own error control
+    allows; returns the largest excess.
+
+    ``excess`` maps a bound, in words ("ρ ≥ 0 (smallest eigenvalue)", "|s_i| ≤ 1"), to how far the
+    solution went beyond it (≤ 0: kept). The adaptive solver keeps each step's error below about
+    rtol·|y| + atol; a bound broken by more than `BOUND_SLACK` × (rtol + atol) means errors accumulated
+    over the run beyond that control, and the result is not vouched for.
+    """
+    tol = BOUND_SLACK * (float(options["rtol"]) + float(options["atol"]))
+    worst = max(excess.values(), default=0.0)
+    bad = {k: v for k, v in excess.items() if v > tol}
+    if bad:
+        listed = "; ".join(f"{k} broken by {v:.2g}" for k, v in bad.items())
+        _note(
+            f"{what}: {listed}, beyond what the solver's error control (rtol={options['rtol']:g}, "
+            f"atol={options['atol']:g}) allows ({tol:.2g}): the integration error accumulated over the run "
+            "and the result is not reliable. Lower rtol and atol, or shorten the run (a steady state: use "
+            "steady())"
+        )
+    return worst
 
 
 _COMPILED: dict[tuple, Callable] = {}
@@ -195,9 +258,18 @@ def solve(
     solver: str,
     jump_ts: tuple[float, ...] = (),
     what: str = "solve",
+    project: Callable | None = None,
 ):
-    """Integrate from times[0] to times[-1]; returns (observations at ``times``, final state, stats)."""
+    """Integrate from times[0] to times[-1]; returns (observations at ``times``, final state, stats).
+
+    ``project`` (density-matrix levels: `hermitian_unit_trace`): integrate the `stabilized` equations,
+    observe and return P(y), so that trace and Hermiticity hold at every time to round-off.
+    """
     ts = jnp.asarray(times, dtype=float)
+    if project is not None:
+        rhs, wrap = stabilized(rhs, project)
+        observe = wrap(observe)
+        y0 = project(y0)
     if len(ts) == 1:
         obs = observe_once(observe, y0, obs_args)
         return obs, y0, {"solver": solver, "accepted_steps": 0, "rejected_steps": 0}
@@ -213,6 +285,8 @@ def solve(
         _progress(options["progress"]),
     )
     obs, y_end, code, acc, rej = run(y0, args, ts, obs_args)
+    if project is not None:
+        y_end = project(y_end)
     name = _RESULT_NAMES[int(code)]
     stats = {"solver": solver, "accepted_steps": int(acc), "rejected_steps": int(rej)}
     if name != "successful":
@@ -273,7 +347,7 @@ def settle(
     res = residual(y)
     polished = None  # the polish of the current y, where one was tried
     while res > 1e-7 and t < max_time and stalled < 2:
-        _, y, st = solve(rhs, observe, y, args, obs_args, ts, options, solver, what=what)
+        _, y, st = solve(rhs, observe, y, args, obs_args, ts, options, solver, what=what, project=project)
         t += chunk
         steps += st["accepted_steps"]
         y = P(y)

@@ -36,6 +36,7 @@ import scipy.linalg
 from ..integrate import (
     ODE_OPTIONS,
     SolveError,
+    check_bounds,
     hermitian_unit_trace,
     observe_once,
     per_envelope,
@@ -102,6 +103,19 @@ def _observe(y, obs_args):
     f2, f4 = jax.lax.map(moments, gd)
     r2, r4 = moments(gamma)
     return {"excited": excited, "coherence": coherence, "field2": f2, "field4": f4, "rate": r2, "rate4": r4}
+
+
+def _bound_excess(obs, y_end, what: str, options) -> float:
+    """How far the run broke the bounds a density matrix keeps (warned beyond the solver's control): ρ ≥ 0
+    at the last time (smallest eigenvalue of the Hermitian, unit-trace state `solve` returns), and
+    0 ≤ excited ≤ 1, |coherence| ≤ ½ at every time."""
+    rho = np.asarray(y_end[0]) + 1j * np.asarray(y_end[1])
+    excited, coherence = np.asarray(obs["excited"]), np.asarray(obs["coherence"])
+    return check_bounds(what, {
+        "ρ ≥ 0 (smallest eigenvalue at the last time)": float(-np.linalg.eigvalsh(rho)[0]),
+        "0 ≤ excited ≤ 1": float(max(np.max(-excited), np.max(excited - 1.0))),
+        "|coherence| ≤ 1/2": float(np.max(np.abs(coherence)) - 0.5),
+    }, options)
 
 
 def _memory(n: int) -> int:
@@ -194,10 +208,12 @@ class Exact(Level):
     def evolve(self, model, times, initial, probes, seed, options) -> Moments:
         solver, args, obs_args = self._prepare(model, probes, options)
         rhs = exact_rhs(model.envelope)
-        obs, _, stats = solve(
+        what = "exact density-matrix evolution"
+        obs, y_end, stats = solve(
             rhs, _observe, self._state(initial), args, obs_args, times, options, solver,
-            jump_ts=model.envelope.jumps, what="exact density-matrix evolution",
+            jump_ts=model.envelope.jumps, what=what, project=hermitian_unit_trace,
         )
+        stats["bound_excess"] = _bound_excess(obs, y_end, what, options)
         return Moments(**obs, attrs=stats)
 
     def steady(self, model, probes, seed, options) -> Moments:
