@@ -60,9 +60,9 @@ REFUSED = {
 
 
 def _modules() -> dict[str, Any]:
-    from .twotime import dicke, exact, meanfield
+    from .twotime import cumulant2, dicke, exact, meanfield
 
-    return {"exact": exact, "dicke": dicke, "meanfield": meanfield}
+    return {"exact": exact, "dicke": dicke, "cumulant2": cumulant2, "meanfield": meanfield}
 
 
 def supported_levels() -> dict[str, str]:
@@ -235,8 +235,10 @@ def _assemble(model: Model, probes: Probes, delays, freqs, tt: TwoTime, attrs) -
         }
         if delays is not None:
             data["g1"] = (("detector", "delay"), (tt.G1 / np.sqrt(tt.field2 * tt.field2_tau)).T)
-            data["g2"] = (("detector", "delay"), (tt.G2 / (tt.field2 * tt.field2_tau)).T)
-            data["g2_total"] = (("delay",), tt.G2_total / (tt.rate * tt.rate_tau))
+            if tt.G2 is not None:
+                data["g2"] = (("detector", "delay"), (tt.G2 / (tt.field2 * tt.field2_tau)).T)
+            if tt.G2_total is not None:
+                data["g2_total"] = (("delay",), tt.G2_total / (tt.rate * tt.rate_tau))
             data["intensity_delayed"] = (("detector", "delay"), (pref * tt.field2_tau).T)
         if freqs is not None:
             data["spectrum"] = (("detector", "frequency"), (pref * tt.inelastic).T)

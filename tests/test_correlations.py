@@ -288,3 +288,24 @@ def test_dicke_refuses_detectors_off_the_symmetric_space():
         correlations(symmetric(3, rabi=1.0), "dicke", [0.0], detectors={"side": (1, 0, 0)})
     with pytest.raises(ValueError, match="permutation-symmetric"):
         correlations(cluster(2, rabi=1.0), "dicke", [0.0])
+
+
+def test_cumulant2_equals_exact_for_two_emitters():
+    """Two emitters have no three-emitter moments: cumulant2 is exact for N = 2 (docs/cumulant2.md), and
+    so is its regression (the tangent equations from the fixed-factor moments, docs/correlations.md):
+    g1 at every delay, the spectrum, and g1 at a reference time of the dynamics, against level exact."""
+    m = Model(positions=np.array([[0, 0, 0], [0.21, 0.05, 0.1]]), rabi=1.1, detuning=-0.3)
+    det = {"forward": (0, 0, 1), "side": (0, 1, 0)}
+    tau, freqs = np.linspace(0, 6, 13), np.linspace(-4, 4, 9)
+    with pytest.warns(UserWarning, match="g2"):
+        a = correlations(m, "cumulant2", tau, detectors=det, frequencies=freqs, **TIGHT)
+    b = correlations(m, "exact", tau, detectors=det, frequencies=freqs, **TIGHT)
+    assert np.max(np.abs(a.g1.values - b.g1.values)) < 1e-9
+    assert np.max(np.abs(a.spectrum.values - b.spectrum.values)) < 1e-9 * np.max(b.spectrum.values)
+    assert np.allclose(a.elastic_fraction.values, b.elastic_fraction.values, rtol=1e-10)
+    assert "g2" not in a and "g2_total" not in a
+    with pytest.warns(UserWarning, match="g2"):
+        a = correlations(m, "cumulant2", tau, detectors=det, at=1.5, **TIGHT)
+    b = correlations(m, "exact", tau, detectors=det, at=1.5, **TIGHT)
+    assert np.max(np.abs(a.g1.values - b.g1.values)) < 1e-9
+    assert np.max(np.abs(a.intensity_delayed.values - b.intensity_delayed.values)) < 1e-10

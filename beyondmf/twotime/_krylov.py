@@ -79,7 +79,9 @@ def shifted_resolvent(
             f"the Krylov space reached {m} vectors (of {size}) with relative residual {res:.2g} > {tol:g}"
         )
     F = -beta * (y @ (V[:m] @ u))
-    return F, {"krylov_dimension": m, "krylov_residual": res, "krylov_invariant": bool(invariant)}
+    ritz = float(np.max(np.linalg.eigvals(H[:m, :m]).real))
+    return F, {"krylov_dimension": m, "krylov_residual": res, "krylov_invariant": bool(invariant),
+               "ritz_max_real": ritz}
 
 
 def _solve_shifted(Hm: np.ndarray, freqs: np.ndarray) -> np.ndarray:

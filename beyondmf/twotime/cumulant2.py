@@ -1,0 +1,272 @@
+"""Two-time functions of level "cumulant2": the regression equations under the same closure.
+
+The regression theorem evolves X(τ) = e^{𝓛τ}(ρ E†) with the generator of ρ itself. Split off the part
+along ρ: ρE† = ⟨E†⟩ρ + X, Tr X = 0, so that
+
+    G1(τ) = ⟨E†⟩⟨E⟩(τ) + Tr[E e^{𝓛τ} X].
+
+X is a first-order change of the state, and cumulant2 evolves a state's moments y with ẏ = f(y); the
+regression equations under its closure are therefore the tangent (linearised) equations
+δẏ = (∂f/∂y)(y(t + τ)) δy, started from the moments δy(0) of X. Those moments are ⟨E†O⟩ − ⟨E†⟩⟨O⟩ for
+the variables O of the level (σ_a⁻, n_a, σ_a⁺σ_b⁻, σ_a⁻σ_b⁻, n_aσ_b⁻, n_an_b), three-emitter moments
+evaluated with the level's rule (spin-½ algebra on coincident sites, vanishing third cumulant on distinct
+ones); E† is the fixed factor. X is not Hermitian, while the level's state is the moments of a Hermitian
+operator: X = H1 + iH2 with H1 = (X + X†)/2 and H2 = (X − X†)/2i Hermitian, two real tangents per
+detector (the moments of X† are ⟨O E⟩ − ⟨E⟩⟨O⟩). Derivation and the N = 2 exactness: docs/correlations.md.
+
+The spectrum is −Tr[E(J + iν)⁻¹X]/π with J = ∂f/∂y at the steady state, in one Krylov space
+(`_krylov`); a Ritz value with a positive real part means the closure's steady state is unstable, and is
+warned about. g2(τ) needs the moments of E X E† (four-emitter moments under the closure) and is not
+computed at this level.
+"""
+
+from __future__ import annotations
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .._notes import warn
+from ..estimators_pair import pair_field_moments, pair_rate_moments
+from ..integrate import ODE_OPTIONS, SolveError, per_envelope, pick_solver, settle, solve
+from ..levels.cumulant2 import cumulant2_args, cumulant2_rhs, pack, product_state, unpack
+from ..memory import require
+from ..model import Envelope
+from . import TwoTime
+from ._krylov import shifted_resolvent
+
+__all__ = ["OPTIONS", "SUPPORT", "check", "compute", "fixed_factor_moments"]
+
+OPTIONS = {**ODE_OPTIONS, "spectrum_tol": 1e-9, "krylov_max": 1500}
+SUPPORT = "g1 at every delay and the spectrum (linearised closure); g2(τ) not computed"
+
+_LEFT = {"m": "n", "n": "0", "1": "p", "p": "0"}  # σ⁺·x on one emitter
+_RIGHT = {"p": "n", "n": "0", "1": "m", "m": "0"}  # x·σ⁻ on one emitter
+
+
+def check(model, probes, delays, freqs, at) -> None:
+    if freqs is not None and at is not None:  # the entry point refuses this already
+        raise ValueError("frequencies need the steady state")
+
+
+def _one(x, beta, n):
+    ones = jnp.ones_like(n)
+    return {"p": jnp.conj(beta), "m": beta, "n": n + 0j, "1": ones + 0j, "0": 0 * ones + 0j}[x]
+
+
+def _pair(x, y, beta, n, A, B, Z, D):
+    """⟨x_a y_b⟩ for a ≠ b (zero diagonal); x, y single-emitter operators p = σ⁺, m = σ⁻, n, 1, 0."""
+    size = n.shape[0]
+    off = 1.0 - jnp.eye(size)
+    if "0" in (x, y):
+        return jnp.zeros((size, size), dtype=complex)
+    if x == "1":
+        return off * _one(y, beta, n)[None, :]
+    if y == "1":
+        return off * _one(x, beta, n)[:, None]
+    table = {("p", "m"): A, ("m", "p"): A.T, ("m", "m"): B, ("p", "p"): jnp.conj(B), ("n", "m"): Z,
+             ("m", "n"): Z.T, ("n", "p"): jnp.conj(Z), ("p", "n"): jnp.conj(Z).T, ("n", "n"): D + 0j}
+    return off * table[(x, y)]
+
+
+def fixed_factor_moments(moments, c, f):
+    """The level's variables O with a fixed factor F = Σ_i c_i f_i: ⟨F O⟩ (f = "p", F on the left) or
+    ⟨O F⟩ (f = "m", on the right), as (β-like, n-like, A-like, B-like, Z-like, D-like) arrays.
+
+    Coincident sites by the spin-½ algebra, three distinct sites by the vanishing third cumulant:
+    Σ_{i≠a,b} c_i⟨f_i Q_a R_b⟩ = (S − c_a⟨f_a⟩ − c_b⟨f_b⟩)(⟨Q_aR_b⟩ − 2q_a r_b)
+        + q_a(V^R_b − c_a⟨f_aR_b⟩) + r_b(V^Q_a − c_b⟨f_bQ_a⟩),
+    S = Σ_i c_i⟨f_i⟩, V^X_b = Σ_{i≠b} c_i⟨f_i X_b⟩, q = ⟨Q⟩, r = ⟨R⟩.
+    """
+    beta, n, A, B, Z, D = moments
+    mul = _LEFT if f == "p" else _RIGHT
+
+    def prod(x):  # the single-site product f·x (left) or x·f (right)
+        return mul[x]
+
+    def pair(x, y):
+        return _pair(x, y, beta, n, A, B, Z, D)
+
+    one = lambda x: _one(x, beta, n)  # noqa: E731
+    fv = one(f)
+    S = jnp.sum(c * fv)
+
+    def m1(q):
+        return c * one(prod(q)) + (c @ pair(f, q))
+
+    def m2(q, r):
+        qa, rb = one(q)[:, None], one(r)[None, :]
+        rest = S - (c * fv)[:, None] - (c * fv)[None, :]
+        vr = (c @ pair(f, r))[None, :]
+        vq = (c @ pair(f, q))[:, None]
+        three = (rest * (pair(q, r) - 2 * qa * rb) + qa * (vr - c[:, None] * pair(f, r))
+                 + rb * (vq - c[None, :] * pair(f, q).T))
+        coinc = c[:, None] * pair(prod(q), r) + c[None, :] * pair(q, prod(r))
+        return (coinc + three) * (1.0 - jnp.eye(n.shape[0]))
+
+    return (m1("m"), m1("n"), m2("p", "m"), m2("m", "m"), m2("n", "m"), m2("n", "n"))
+
+
+def _tangents(y, weights):
+    """Real tangents (2D, 5, N, N): the moments of H1 and H2 of X_d = ρE_d† − ⟨E_d†⟩ρ per detector."""
+    mom = unpack(y)
+    beta, n, A, B, Z, D = mom
+    base = (beta, n + 0j, A, B, Z, D + 0j)
+    out = []
+    for w in weights:
+        left = fixed_factor_moments(mom, jnp.conj(w), "p")  # ⟨E† O⟩
+        right = fixed_factor_moments(mom, w, "m")  # ⟨O E⟩
+        e_dag, e = jnp.sum(jnp.conj(w * beta)), jnp.sum(w * beta)
+        mx = [lv - e_dag * b for lv, b in zip(left, base, strict=True)]
+        mxd = [rv - e * b for rv, b in zip(right, base, strict=True)]
+        h1 = [(a + b) / 2 for a, b in zip(mx, mxd, strict=True)]
+        h2 = [(a - b) / 2j for a, b in zip(mx, mxd, strict=True)]
+        for h in (h1, h2):
+            hb, hn, hA, hB, hZ, hD = h
+            out.append(pack(hb, hn.real, hA, hB, hZ, hD.real))
+    return jnp.stack(out)
+
+
+@per_envelope
+def _tangent_rhs(envelope: Envelope):
+    """The tangent equations about a fixed base state (the steady state, in args["base"])."""
+    f = cumulant2_rhs(envelope)
+
+    def rhs(t, y, args):
+        _, lin = jax.linearize(lambda z: f(t, z, args["c2"]), args["base"])
+        return jax.vmap(lin)(y)
+
+    return rhs
+
+
+@per_envelope
+def _joint_rhs(envelope: Envelope):
+    """State and tangents together (a reference time of the dynamics): y[0] the state, y[1:] tangents."""
+    f = cumulant2_rhs(envelope)
+
+    def rhs(t, y, args):
+        fy, lin = jax.linearize(lambda z: f(t, z, args["c2"]), y[0])
+        return jnp.concatenate([fy[None], jax.vmap(lin)(y[1:])])
+
+    return rhs
+
+
+def _observe_tangent(y, obs_args):
+    """G1 − ⟨E†⟩⟨E⟩ = Σ_j w_dj δβ_j of the tangents (H1 + i·H2 per detector)."""
+    return _observe(y, obs_args, False)
+
+
+def _observe_joint(y, obs_args):
+    """The same for y[1:], and ⟨E†E⟩, ⟨E⟩ and P of the state y[0]."""
+    return _observe(y, obs_args, True)
+
+
+def _observe(y, obs_args, joint):
+    weights, gamma = obs_args
+    idx = jnp.arange(y.shape[-1])
+    tangents = y[1:] if joint else y
+    dbeta = tangents[:, 2, idx, idx] + 1j * tangents[:, 3, idx, idx]  # (2D, N)
+    nd = weights.shape[0]
+    per = jnp.einsum("dj,dkj->dk", weights, dbeta.reshape(nd, 2, -1))
+    out = {"G1": per[:, 0] + 1j * per[:, 1]}
+    if joint:
+        beta, n, A, B, Z, D = unpack(y[0])
+        out["field2"] = pair_field_moments(beta, n, A, B, Z, D, weights)[0]
+        out["rate"] = pair_rate_moments(beta, n, A, B, Z, D, gamma)[0]
+        out["field1"] = weights @ beta
+    return out
+
+
+def _trace_only(y, obs_args):
+    return {"n": y[0, 0, 0]}
+
+
+def compute(model, probes, delays, at, initial, freqs, options) -> TwoTime:
+    n, nd = model.n, len(probes.names)
+    require(8 * n**2 * 5 * (2 * nd + 1) * 10, f"the cumulant2 regression of {n} emitters")
+    solver = pick_solver(options["solver"], 5 * n**2 * (2 * nd + 1), model.stiffness())
+    c2 = cumulant2_args(model)
+    weights, gamma = jnp.asarray(probes.weights), jnp.asarray(model.Gamma)
+    if at is None:
+        y0 = product_state(np.tile([0.0, 0.0, -1.0], (n, 1)))
+        y, info = settle(cumulant2_rhs(model.envelope), _trace_only, y0, c2, None, options, solver,
+                         what="cumulant2 steady state")
+    elif at == 0:
+        y, info = product_state(initial), {}
+    else:
+        _, y, stats = solve(cumulant2_rhs(model.envelope), _trace_only, product_state(initial), c2, None,
+                            np.array([0.0, at]), options, solver, jump_ts=model.envelope.jumps,
+                            what=f"cumulant2 evolution to at = {at:g}")
+        info = {f"state_{k}": v for k, v in stats.items()}
+    beta, nn, A, B, Z, D = unpack(y)
+    f2 = np.asarray(pair_field_moments(beta, nn, A, B, Z, D, weights)[0])
+    rate = float(pair_rate_moments(beta, nn, A, B, Z, D, gamma)[0])
+    field1 = np.asarray(weights @ beta)
+    out = TwoTime(field2=f2, field1=field1, rate=rate, attrs={"solver": solver, **info})
+    tan = _tangents(y, weights)
+    if delays is not None:
+        warn("cumulant2 gives g1(τ) and the spectrum; g2(τ) and g2_total(τ) are not computed at this level "
+             "(their start needs the closure's four-emitter moments of E ρ E†): use level 'exact' (small N) "
+             "or 'dicke' (symmetric models) for them")
+        d = np.asarray(delays, dtype=float)
+        t0 = 0.0 if at is None else at
+        ts = t0 + (d if d[0] == 0 else np.concatenate([[0.0], d]))
+        keep = 0 if d[0] == 0 else 1
+        if at is None:
+            obs, _, stats = solve(_tangent_rhs(model.envelope), _observe_tangent, tan,
+                                  {"c2": c2, "base": y}, (weights, gamma), ts, options, solver,
+                                  what="cumulant2 regression")
+            g1 = np.asarray(obs["G1"])[keep:]
+            out.field2_tau = np.broadcast_to(f2, g1.shape)
+            out.G1 = np.conj(field1)[None, :] * field1[None, :] + g1
+        else:
+            joint = jnp.concatenate([y[None], tan])
+            obs, _, stats = solve(_joint_rhs(model.envelope), _observe_joint, joint, {"c2": c2},
+                                  (weights, gamma), ts, options, solver, jump_ts=model.envelope.jumps,
+                                  what="cumulant2 regression")
+            obs = {k: np.asarray(v)[keep:] for k, v in obs.items()}
+            out.field2_tau = obs["field2"]
+            out.G1 = np.conj(field1)[None, :] * obs["field1"] + obs["G1"]
+        out.attrs.update({f"regression_{k}": v for k, v in stats.items() if k != "solver"})
+    if freqs is not None:
+        out.inelastic, kinfo = _spectrum(model, y, tan, c2, probes, freqs, options)
+        out.attrs.update(kinfo)
+    return out
+
+
+def _spectrum(model, y, tan, c2, probes, freqs, options):
+    n = model.n
+    krylov = int(options["krylov_max"])
+    require(16.0 * 5 * n**2 * (krylov + 1), f"the cumulant2 spectrum of {n} emitters (Krylov basis of up to "
+            f"{krylov} vectors; lower krylov_max)")
+    f = cumulant2_rhs(model.envelope)
+    _, lin = jax.linearize(lambda z: f(0.0, z, c2), y)
+    jlin = jax.jit(lambda v: lin(v))
+    shape = y.shape
+
+    def matvec(v):  # the complex-linear extension of the real Jacobian
+        v = v.reshape(shape)
+        return (np.asarray(jlin(jnp.asarray(v.real))) + 1j * np.asarray(jlin(jnp.asarray(v.imag)))).ravel()
+
+    tan = np.asarray(tan)
+    spectra, dims, worst, unstable = [], [], 0.0, 0.0
+    idx = np.arange(n)
+    for k, w in enumerate(probes.weights):
+        b = tan[2 * k] + 1j * tan[2 * k + 1]
+        u = np.zeros(shape, dtype=complex)
+        u[2, idx, idx], u[3, idx, idx] = w, 1j * w  # Σ_j w_j δβ_j
+        try:
+            F, info = shifted_resolvent(matvec, b, u, freqs, tol=options["spectrum_tol"], max_dim=krylov)
+        except RuntimeError as err:
+            raise SolveError(f"cumulant2 spectrum: {err}; raise the option krylov_max, or spectrum_tol") \
+                from None
+        spectra.append(F.real / np.pi)
+        dims.append(info["krylov_dimension"])
+        worst = max(worst, info["krylov_residual"])
+        unstable = max(unstable, info.get("ritz_max_real", -np.inf))
+    if unstable > 1e-9:
+        warn(f"cumulant2 spectrum: the linearised closure has a growing mode (Ritz value with real part "
+             f"{unstable:.3g} Γ0 > 0) about its steady state, which is then unstable; the spectrum is not "
+             "meaningful here: compare with level 'exact' at small N")
+    return np.stack(spectra, axis=1), {"krylov_dimension": dims, "krylov_residual": worst,
+                                       "ritz_max_real": unstable}
