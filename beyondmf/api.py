@@ -8,7 +8,9 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from . import physicality
 from ._notes import collecting
+from ._notes import warn as _note
 from .levels.base import Level, Probes, get_level, is_count
 from .model import Model
 from .observables import assemble
@@ -145,12 +147,14 @@ def evolve(
     probes = Probes.build(model, _detectors(model, detectors))
     lvl.check(model)
     seed = _seed(lvl, seed)
-    with collecting() as said:  # the level's warnings about this run, kept in the result (beyondmf._notes)
-        moments = lvl.evolve(model, ts, bloch, probes, seed, opts)
     named = isinstance(initial, str)
     init = initial if named else "bloch vectors (data variable initial_bloch)"
-    attrs = _attrs(model, lvl, "evolve", opts, seed, {"initial": init, "warnings": said})
-    ds = _with_inputs(model, assemble(model, lvl.name, moments, probes, ts, attrs))
+    with collecting() as said:  # the level's warnings about this run, kept in the result (beyondmf._notes)
+        moments = lvl.evolve(model, ts, bloch, probes, seed, opts)
+        attrs = _attrs(model, lvl, "evolve", opts, seed, {"initial": init})
+        ds = _flag_unphysical(assemble(model, lvl.name, moments, probes, ts, attrs), lvl)
+    ds.attrs["warnings"] = list(said)
+    ds = _with_inputs(model, ds)
     if not named:  # the state itself, so that the file says how to reproduce the run
         ds["initial_bloch"] = (("atom", "axis"), bloch,
                                {"units": "1", "long_name": "initial Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩)"})
@@ -187,5 +191,18 @@ def steady(
     seed = _seed(lvl, seed)
     with collecting() as said:
         moments = lvl.steady(model, probes, seed, opts)
-    attrs = _attrs(model, lvl, "steady", opts, seed, {"warnings": said})
-    return _with_inputs(model, assemble(model, lvl.name, moments, probes, None, attrs))
+        attrs = _attrs(model, lvl, "steady", opts, seed, {})
+        ds = _flag_unphysical(assemble(model, lvl.name, moments, probes, None, attrs), lvl)
+    ds.attrs["warnings"] = list(said)
+    return _with_inputs(model, ds)
+
+
+def _flag_unphysical(ds: xr.Dataset, level: Level) -> xr.Dataset:
+    """Record in ``ds.attrs["unphysical"]`` the observables outside the bounds every physical state obeys,
+    and warn about them (`beyondmf.physicality`)."""
+    flagged, text = physicality.check(ds, level.stochastic)
+    ds.attrs["unphysical"] = flagged
+    if text:
+        _note(f"{level.name}: values no physical state can have: {text}. The approximation of this level "
+              f"fails here; {level.when_unphysical}")
+    return ds

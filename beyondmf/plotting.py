@@ -14,14 +14,16 @@ import matplotlib
 matplotlib.use("Agg")  # files only: never open a window, work without a display
 
 import matplotlib.pyplot as plt  # noqa: E402
+from matplotlib.patches import Patch  # noqa: E402
 import numpy as np  # noqa: E402
 import xarray as xr  # noqa: E402
 
-__all__ = ["plot_emission", "plot_intensity", "plot_geometry", "plot_all", "study_title"]
+__all__ = ["plot_emission", "plot_intensity", "plot_g2", "plot_geometry", "plot_all", "study_title"]
 
 _RATE = "emission rate P (photons per 1/Γ0)"
 _INTENSITY = "intensity I (photons per 1/Γ0 per sr)"
 _TIME = "time t (1/Γ0)"
+_INTENSITIES = ("intensity", "intensity_incoherent")
 
 
 def _levels(ds: xr.Dataset) -> list[str]:
@@ -50,6 +52,33 @@ def _stderr(sub: xr.Dataset, name: str) -> xr.DataArray | None:
 
 
 _BAND = "shaded: ±1 standard error of the sampling levels"
+
+
+def _level_attrs(ds: xr.Dataset, level: str) -> dict:
+    """The attributes of one level's run: per level in a study's result, the Dataset's own otherwise."""
+    return ds.attrs.get("levels", {}).get(level, ds.attrs)
+
+
+def _mark_unphysical(ax, ds: xr.Dataset, levels: list[str], names: tuple[str, ...]) -> None:
+    """Shade the region below zero and name, in the panel, each level whose ``names`` left the physical
+    bounds (`beyondmf.physicality`), so that a figure never shows such values without saying so."""
+    bad = [(lv, [n for n in _level_attrs(ds, lv).get("unphysical", []) if n in names]) for lv in levels]
+    bad = [(lv, ns) for lv, ns in bad if ns]
+    if not bad:
+        return
+    lo, hi = ax.get_ylim()
+    if lo < 0:
+        ax.axhspan(lo, 0, color="red", alpha=0.08, lw=0, zorder=0)
+        ax.set_ylim(lo, hi)
+    # in the legend, which matplotlib places off the data
+    old = ax.get_legend()
+    title = old.get_title().get_text() if old is not None else None
+    handles, labels = ax.get_legend_handles_labels()
+    for lv, ns in bad:
+        handles.append(Patch(facecolor="red", alpha=0.25, edgecolor="darkred"))
+        labels.append(f"{lv}: {', '.join(ns)} out of physical bounds\n(see its warnings)")
+    ax.legend(handles, labels, title=title, fontsize="small", title_fontsize="small", loc="upper left",
+              bbox_to_anchor=(0.0, -0.16))  # below the panel: never over the data
 
 
 def _save(fig, path: Path) -> Path:
@@ -95,6 +124,7 @@ def plot_emission(ds: xr.Dataset, path: str | Path) -> Path:
         _bars(ax, ["steady state"], levels, vals, _RATE, errs)
     ax.set_title(_title(ds, f"Total emission, N = {ds.sizes['atom']}"))
     ax.grid(alpha=0.3)
+    _mark_unphysical(ax, ds, levels, ("emission_rate",))
     return _save(fig, Path(path))
 
 
@@ -129,6 +159,7 @@ def plot_intensity(ds: xr.Dataset, path: str | Path) -> Path:
         _bars(ax, [_angle_label(ds, d) for d in dets], levels, vals, _INTENSITY, errs)
         ax.set_title(_title(ds, "Steady-state intensity per detector"))
         ax.grid(alpha=0.3, axis="y")
+        _mark_unphysical(ax, ds, levels, _INTENSITIES)
         return _save(fig, Path(path))
     fig, axes = plt.subplots(
         1, len(dets), figsize=(4.8 * len(dets), 4.2), layout="constrained", squeeze=False
@@ -152,8 +183,52 @@ def plot_intensity(ds: xr.Dataset, path: str | Path) -> Path:
         ax.set_ylabel(_INTENSITY)
         ax.grid(alpha=0.3)
         ax.legend(fontsize="small")
+        _mark_unphysical(ax, ds, levels, _INTENSITIES)
     fig.suptitle(_title(ds, "Far-field intensity per detector"))
     return _save(fig, Path(path))
+
+
+def plot_g2(ds: xr.Dataset, path: str | Path) -> Path:
+    """g2 at zero delay: one panel per detector and one for all emitted light, against time (bars for a
+    steady state), every level, with the sampling levels' standard errors. The dotted line g2 = 1 is
+    coherent light; values below 0 are impossible and shaded (`beyondmf.physicality`)."""
+    levels = _levels(ds)
+    dets = [str(d) for d in ds["detector"].values]
+    panels = [(_angle_label(ds, d), "g2", d) for d in dets] + [("all emitted light", "g2_total", None)]
+    if "time" not in ds.dims:
+        fig, ax = plt.subplots(figsize=(6.4, 4.2), layout="constrained")
+        vals = np.array([[float(_pick(_by_level(ds, lv), name, d)) for lv in levels] for _, name, d in panels])
+        errs = np.array([[_scalar_err(_by_level(ds, lv), name, d) for lv in levels] for _, name, d in panels])
+        _bars(ax, [label for label, _, _ in panels], levels, vals, "g2(0)", errs)
+        ax.axhline(1.0, color="0.4", ls=":", lw=1)
+        ax.set_title(_title(ds, "Steady-state g2 at zero delay"))
+        ax.grid(alpha=0.3, axis="y")
+        _mark_unphysical(ax, ds, levels, ("g2", "g2_total"))
+        return _save(fig, Path(path))
+    fig, axes = plt.subplots(1, len(panels), figsize=(4.8 * len(panels), 4.2), layout="constrained",
+                             squeeze=False)
+    for ax, (label, name, d) in zip(axes[0], panels, strict=True):
+        for k, lv in enumerate(levels):
+            sub = _by_level(ds, lv)
+            g = _pick(sub, name, d)
+            ax.plot(ds["time"], g, color=f"C{k}", label=lv)
+            err = _stderr(sub, name)
+            if err is not None:
+                err = _pick(sub, f"{name}_stderr", d)
+                ax.fill_between(ds["time"], g - err, g + err, color=f"C{k}", alpha=0.25, lw=0)
+        ax.axhline(1.0, color="0.4", ls=":", lw=1)
+        ax.set_title(label)
+        ax.set_xlabel(_TIME)
+        ax.set_ylabel("g2(0)")
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize="small", title="level")
+        _mark_unphysical(ax, ds, levels, (name,))
+    fig.suptitle(_title(ds, "Second-order coherence at zero delay"))
+    return _save(fig, Path(path))
+
+
+def _pick(sub: xr.Dataset, name: str, detector: str | None) -> xr.DataArray:
+    return sub[name].sel(detector=detector) if detector is not None else sub[name]
 
 
 def plot_geometry(ds: xr.Dataset, path: str | Path) -> Path:
@@ -205,11 +280,12 @@ def plot_geometry(ds: xr.Dataset, path: str | Path) -> Path:
 
 
 def plot_all(ds: xr.Dataset, directory: str | Path) -> list[Path]:
-    """Write emission.png, intensity.png and geometry.png into ``directory``; returns their paths."""
+    """Write emission.png, intensity.png, g2.png and geometry.png into ``directory``; returns their paths."""
     d = Path(directory)
     d.mkdir(parents=True, exist_ok=True)
     return [
         plot_emission(ds, d / "emission.png"),
         plot_intensity(ds, d / "intensity.png"),
+        plot_g2(ds, d / "g2.png"),
         plot_geometry(ds, d / "geometry.png"),
     ]

@@ -40,7 +40,10 @@ def _results(times: bool, laser=(0.0, 0.0, 1.0), quick=0) -> xr.Dataset:
         {"emission_rate": (dims, rate), "emission_rate_stderr": (dims, err),
          "intensity": ((*dims, "detector"), np.stack([rate, rate / 2], -1) / 10),
          "intensity_coherent": ((*dims, "detector"), np.stack([rate, rate / 2], -1) / 20),
-         "intensity_stderr": ((*dims, "detector"), np.stack([err, err], -1) / 10)},
+         "intensity_stderr": ((*dims, "detector"), np.stack([err, err], -1) / 10),
+         "g2": ((*dims, "detector"), np.stack([rate, rate / 2], -1) - 0.5),
+         "g2_stderr": ((*dims, "detector"), np.stack([err, err], -1)),
+         "g2_total": (dims, rate - 0.2), "g2_total_stderr": (dims, err)},
         coords={"level": ["meanfield", "twa"], "detector": ["forward", "side"], "atom": np.arange(3),
                 "axis": ["x", "y", "z"],
                 "position": (("atom", "axis"), [[0, 0, 0], [0.3, 0, 0], [0, 0.3, 0.1]]),
@@ -86,3 +89,33 @@ def test_every_arrow_of_the_set_up_lies_inside_its_panel(figures, tmp_path, lase
         for a in arrows:
             for x, y in (a.xy, a.xyann):
                 assert x0 <= x <= x1 and y0 <= y <= y1, (ax.get_title(), (x, y))
+
+
+@pytest.mark.parametrize("times", [True, False])
+def test_g2_figure_draws_every_detector_and_all_light(figures, tmp_path, times):
+    plotting.plot_all(_results(times=times), tmp_path)
+    fig = figures["g2.png"]
+    if times:
+        assert [ax.get_title() for ax in fig.axes] == ["forward (0° from laser)", "side (90° from laser)",
+                                                         "all emitted light"]
+        assert all(ax.get_ylabel() == "g2(0)" for ax in fig.axes)
+    else:
+        ax = fig.axes[0]
+        assert [t.get_text() for t in ax.get_xticklabels()] == ["forward (0° from laser)",
+                                                               "side (90° from laser)", "all emitted light"]
+
+
+def test_values_out_of_physical_bounds_are_marked_in_the_figures(figures, tmp_path):
+    """A level whose run was flagged (attrs['unphysical'] of its own run, beyondmf.physicality) is named in
+    each panel that shows the flagged observable, and the region below zero is shaded."""
+    ds = _results(times=True)
+    ds["g2"][1, 2:, 1] = -0.4
+    ds.attrs["levels"] = {"meanfield": {"unphysical": []}, "twa": {"unphysical": ["g2"]}}
+    plotting.plot_all(ds, tmp_path)
+    def notes(ax):
+        return [t.get_text() for t in ax.get_legend().get_texts() if "physical bounds" in t.get_text()]
+
+    by_title = {ax.get_title(): notes(ax) for ax in figures["g2.png"].axes}
+    assert by_title["side (90° from laser)"] == ["twa: g2 out of physical bounds\n(see its warnings)"]
+    assert by_title["all emitted light"] == []  # g2_total was not flagged
+    assert all(not notes(ax) for ax in figures["emission.png"].axes)
