@@ -14,9 +14,9 @@ import matplotlib
 matplotlib.use("Agg")  # files only: never open a window, work without a display
 
 import matplotlib.pyplot as plt  # noqa: E402
-from matplotlib.patches import Patch  # noqa: E402
 import numpy as np  # noqa: E402
 import xarray as xr  # noqa: E402
+from matplotlib.patches import Patch  # noqa: E402
 
 __all__ = ["plot_emission", "plot_intensity", "plot_g2", "plot_geometry", "plot_all", "study_title"]
 
@@ -197,7 +197,8 @@ def plot_g2(ds: xr.Dataset, path: str | Path) -> Path:
     panels = [(_angle_label(ds, d), "g2", d) for d in dets] + [("all emitted light", "g2_total", None)]
     if "time" not in ds.dims:
         fig, ax = plt.subplots(figsize=(6.4, 4.2), layout="constrained")
-        vals = np.array([[float(_pick(_by_level(ds, lv), name, d)) for lv in levels] for _, name, d in panels])
+        vals = np.array([[float(_pick(_by_level(ds, lv), name, d)) for lv in levels]
+                         for _, name, d in panels])
         errs = np.array([[_scalar_err(_by_level(ds, lv), name, d) for lv in levels] for _, name, d in panels])
         _bars(ax, [label for label, _, _ in panels], levels, vals, "g2(0)", errs)
         ax.axhline(1.0, color="0.4", ls=":", lw=1)
