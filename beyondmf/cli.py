@@ -84,7 +84,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="run a study file at the levels it lists",
         description="Run a study file (docs/study-files.md) and write into DIR. A study of one model runs "
         "at each level it lists and writes DIR/results.nc (NetCDF, one 'level' dimension; read with "
-        "beyondmf.load) and the figures emission.png, intensity.png and geometry.png. A study with "
+        "beyondmf.load) and the figures emission.png, intensity.png, g2.png and geometry.png. A study with "
         "[sweep] or [compare], or any study run with --workers or --scheduler, runs as tasks: each "
         "finished task is kept in DIR/tasks/ (running the same command again resumes), then it writes "
         "the merged DIR/results.nc and the figures values.png and, with several levels, corrections.png "
@@ -97,6 +97,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="write no figures (only results.nc, and tasks/ and convergence.nc where they apply)")
     r.add_argument("--quick", action="store_true",
                    help="apply the study's [quick] overrides (a CI-sized run)")
+    r.add_argument("--large", action="store_true",
+                   help="run a study beyond the planning limit of 100,000 tasks (the memory check still "
+                   "applies)")
     ex = r.add_mutually_exclusive_group()
     ex.add_argument("--workers", type=int, metavar="N",
                     help="run the tasks on a local dask cluster of N worker processes (loopback only)")
@@ -146,6 +149,7 @@ def _prepare_out(out: Path, tasks: bool) -> list[Path]:
     Writes and removes a probe file: only that shows that files can really be created there (a
     read-only mount, /proc, a full quota...).
     """
+    from .outdir import LOCK, MANIFEST
     from .results import STALE_AFTER_S, remove_stale_parts
 
     if out.exists() and not out.is_dir():
@@ -166,7 +170,8 @@ def _prepare_out(out: Path, tasks: bool) -> list[Path]:
                 why += " (a part of that path is a file)"
             raise _UsageError(f"--out: cannot create and write files in {where}: {why}; give a directory you "
                               "can write to") from None
-    for name in ("results.nc", "convergence.nc"):  # temporaries of a killed run; DIR may hold other files
+    # temporaries of a killed run (of our files only: DIR may hold other files)
+    for name in ("results.nc", "convergence.nc", MANIFEST, LOCK):
         remove_stale_parts(out, name)
     now = time.time()
     for old in out.glob(_FIGURES_TMP + "*"):  # figure temporaries of a killed run
@@ -193,12 +198,17 @@ def _write_figures(make, out: Path) -> list[Path]:
     """Call ``make(directory)`` (it writes figures there and returns their paths) on a temporary directory
     inside ``out``, then move each figure into ``out``: a figure appears whole or not at all, even if the
     command is stopped while drawing it."""
+    from .outdir import NotOurFiles, is_ours, record
+
     tmp = Path(tempfile.mkdtemp(prefix=_FIGURES_TMP, dir=out))
     try:
         written = []
         for path in make(tmp):
             dest = out / Path(path).name
+            if os.path.lexists(dest) and not is_ours(out, dest.name):  # made by someone during the run
+                raise NotOurFiles(out, [dest.name])
             os.replace(path, dest)
+            record(dest)
             written.append(dest)
             _say(f"wrote {dest}")
         return written
@@ -207,81 +217,105 @@ def _write_figures(make, out: Path) -> list[Path]:
 
 
 # The figures `beyondmf run` writes into DIR (convergence_<observable>.png by pattern).
-_OUR_FIGURES = ("emission.png", "intensity.png", "geometry.png", "values.png", "corrections.png",
+_OUR_FIGURES = ("emission.png", "intensity.png", "g2.png", "geometry.png", "values.png", "corrections.png",
                 "correction_map.png")
+_OUR_FILES = ("results.nc", "convergence.nc", *_OUR_FIGURES)
+_OUR_PATTERNS = ("convergence_*.png",)
 
 
 def _remove_earlier_outputs(out: Path, convergence: bool) -> None:
     """Once this run's results.nc is written, remove what an earlier run left beside it: the figures (this
     run draws its own next; drawn from other numbers, they must not stand beside the new file even if
-    drawing fails) and, for a study without [convergence], convergence.nc. Only our file names."""
-    stale = [*(out / n for n in _OUR_FIGURES), *out.glob("convergence_*.png")]
+    drawing fails) and, for a study without [convergence], convergence.nc. Only files that beyondmf wrote
+    there itself (`beyondmf.outdir`; the run refused others of these names before it started)."""
+    from .outdir import remove_ours
+
+    stale = [*_OUR_FIGURES, *(p.name for p in out.glob("convergence_*.png"))]
     if not convergence:
-        stale.append(out / "convergence.nc")
-    for path in sorted(stale):
+        stale.append("convergence.nc")
+    for name in sorted(stale):
         try:
-            if path.is_file():
-                path.unlink()
-                _say(f"removed {path} (an earlier run's; results.nc is new)")
+            if remove_ours(out, name):
+                _say(f"removed {out / name} (an earlier run's; results.nc is new)")
         except OSError:
             continue
 
 
 def _cmd_run(args) -> int:
-    from .plotting import plot_all
-    from .results import save
-    from .study import run_study
-    from .sweep import is_sweep, read_study
+    from .outdir import claim, lock
+    from .study import check_run_size
+    from .sweep import check_plan, is_sweep, read_study
 
     if args.workers is not None and args.workers < 1:
         raise _UsageError(f"--workers: expected a positive number of workers, got {args.workers}")
     if not args.out.strip():  # Path("") is "."; an empty --out is a slip (an unset variable), not "here"
         raise _UsageError("--out: give a directory for results.nc and the figures, e.g. --out out/study "
                           "(--out . writes into the current directory)")
-    study = read_study(args.study, quick=args.quick)
+    study = read_study(args.study, quick=args.quick, large=args.large)
     out = Path(args.out)
     as_tasks = is_sweep(study) or args.workers is not None or args.scheduler is not None
+    # memory of the results, before any directory is made (the task count was checked when read)
+    if as_tasks:
+        check_plan(study, large=True)
+    else:
+        check_run_size(study)
     created = _prepare_out(out, tasks=as_tasks)
     tasks_existed = (out / "tasks").exists()
     t0 = time.perf_counter()
     try:
-        if as_tasks:
-            return _run_tasks(study, out, args, t0)
-
-        def on_level(name: str, stage: str, seconds: float | None) -> None:
-            if stage == "start":
-                _say(f"level {name}: started ({study.run.calculation})")
-            elif stage == "done":
-                _say(f"level {name}: finished in {seconds:.1f} s")
-            else:
-                rest = "; the other levels go on" if len(study.levels) > 1 else ""
-                _say(f"level {name}: failed after {seconds:.1f} s (why: at the end){rest}")
-
-        try:
-            # a level that cannot do this model does not cost the others their results
-            ds = run_study(study, on_level=on_level, keep_going=True)
-            path = save(ds, out / "results.nc")
-        except KeyboardInterrupt:
-            raise _Stopped("nothing was written (a study of one model keeps no partial results: results.nc "
-                           "is written once every level has finished); run the same command again to start "
-                           "over") from None
-        failures = ds.attrs["failures"]
-        for failure in failures:
-            _say(f"level {failure.replace(': ', ': failed: ', 1)}")
-        kept = f" (levels {', '.join(map(str, ds['level'].values))}; see above for the failed ones)"
-        _say(f"wrote {path}" + (kept if failures else ""))
-        _remove_earlier_outputs(out, convergence=False)
-        if not args.no_plots:
-            try:
-                _write_figures(lambda d: plot_all(ds, d), out)
-            except KeyboardInterrupt:
-                raise _Stopped(f"{path} is complete, the figures are not all written") from None
-        _say(f"done in {time.perf_counter() - t0:.1f} s")
-        return EXIT_FAILED if failures else 0
+        with lock(out):  # one run at a time in DIR
+            claim(out, _OUR_FILES, _OUR_PATTERNS)  # files of our names that we did not write: refused
+            if as_tasks:
+                return _run_tasks(study, out, args, t0)
+            return _run_one_model(study, out, args, t0)
     except BaseException:
         # leave no empty directory behind a run that wrote nothing (a scheduler that did not answer...)
         _remove_empty(created if tasks_existed else [*created, out / "tasks"])
         raise
+
+
+def _run_one_model(study, out: Path, args, t0: float) -> int:
+    """A study of one model, in this process: every level, then results.nc and the figures."""
+    from .outdir import record
+    from .plotting import plot_all
+    from .results import save
+    from .study import run_study
+
+    def on_level(name: str, stage: str, seconds: float | None) -> None:
+        if stage == "start":
+            _say(f"level {name}: started ({study.run.calculation})")
+        elif stage == "done":
+            _say(f"level {name}: finished in {seconds:.1f} s")
+        else:
+            rest = "; the other levels go on" if len(study.levels) > 1 else ""
+            _say(f"level {name}: failed after {seconds:.1f} s (why: at the end){rest}")
+
+    try:
+        # a level that cannot do this model does not cost the others their results
+        ds = run_study(study, on_level=on_level, keep_going=True)
+        path = save(ds, out / "results.nc")
+        record(path)
+    except KeyboardInterrupt:
+        raise _Stopped("nothing was written (a study of one model keeps no partial results: results.nc "
+                       "is written once every level has finished); run the same command again to start "
+                       "over") from None
+    failures = ds.attrs["failures"]
+    for failure in failures:
+        _say(f"level {failure.replace(': ', ': failed: ', 1)}")
+    kept = f" (levels {', '.join(map(str, ds['level'].values))}; see above for the failed ones)"
+    _say(f"wrote {path}" + (kept if failures else ""))
+    _remove_earlier_outputs(out, convergence=False)
+    if not args.no_plots:
+        try:
+            _write_figures(lambda d: plot_all(ds, d), out)
+        except KeyboardInterrupt:
+            raise _Stopped(f"{path} is complete, the figures are not all written") from None
+    if failures:
+        n = len(study.levels)
+        _say(f"{len(failures)} of {n} level{'s' * (n != 1)} failed (see above; results.nc holds the "
+             "others)")
+    _say(f"done in {time.perf_counter() - t0:.1f} s")
+    return EXIT_FAILED if failures else 0
 
 
 def _run_tasks(study, out: Path, args, t0: float) -> int:
@@ -291,12 +325,19 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
 
     executor = make_executor(args.workers, args.scheduler)
 
-    def ready(count: int) -> None:  # after every task is built and validated
-        _say(f"{count} task{'s' * (count != 1)} to run {executor.where}; those finished in {out / 'tasks'} "
-             "are reused")
+    def start(to_run: int, total: int) -> None:  # once the finished tasks on disk are known
+        done = total - to_run
+        tasks = f"task{'s' * (total != 1)}"
+        if not to_run:
+            _say(f"all {total} {tasks} are done in {out / 'tasks'}; nothing to run")
+        elif not done:
+            _say(f"running {total} {tasks} {executor.where}")
+        else:
+            _say(f"running {to_run} of {total} {tasks} {executor.where}, {done} done (kept in "
+                 f"{out / 'tasks'})")
 
     try:
-        ds = run_sweep(study, out, executor=executor, progress=True, on_ready=ready)
+        ds = run_sweep(study, out, executor=executor, progress=True, on_start=start)
     except Interrupted as stop:
         if not stop.kept:
             raise _Stopped(f"none of the {stop.total} tasks had finished; run the same command again to "
@@ -312,6 +353,11 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
     except KeyboardInterrupt:
         raise _Stopped(f"all {ds.attrs['tasks']} tasks and {out / 'results.nc'} are written, the figures and "
                        "reports are not all; running the same command again recomputes no task") from None
+    failed = int(ds.attrs.get("tasks_failed", 0))
+    if failed:  # one rule for every executor: a failed task is a failed run
+        _say(f"{failed} of {ds.attrs['tasks']} tasks failed (NaN in {out / 'results.nc'}; their messages "
+             "above and in its attribute 'failures')")
+        return EXIT_FAILED
     return 0
 
 
@@ -352,6 +398,7 @@ def _report_convergence(study, ds, out: Path, plots: bool) -> None:
     import xarray as xr
 
     from .convergence import figure
+    from .outdir import record
     from .results import save
     from .sweep import check_convergence
 
@@ -360,7 +407,7 @@ def _report_convergence(study, ds, out: Path, plots: bool) -> None:
     # the attributes the tables share; each observable's last bound is the last entry of its X_bound
     merged.attrs.update({k: v for k, v in next(iter(tables.values())).attrs.items() if k != "last_bound"})
     merged.attrs["observables"] = list(tables)
-    save(merged, out / "convergence.nc")
+    record(save(merged, out / "convergence.nc"))
     _say(f"wrote {out / 'convergence.nc'}")
     for obs, table in tables.items():
         state = "converged" if bool(table["converged"]) else "NOT converged"
@@ -512,6 +559,7 @@ def _show_warning(command: str):
 
 def _main(args, hard_exit: bool) -> int:
     from .integrate import SolveError
+    from .outdir import DirectoryInUse, NotOurFiles
     from .study import StudyError
 
     try:
@@ -525,6 +573,12 @@ def _main(args, hard_exit: bool) -> int:
     except (StudyError, _UsageError) as err:
         _say(f"beyondmf {args.command}: error: {err}")
         return EXIT_USAGE
+    except NotOurFiles as err:  # --out: a directory holding other people's files of our names
+        _say(f"beyondmf {args.command}: error: --out: {err}")
+        return EXIT_USAGE
+    except DirectoryInUse as err:  # another run on the same --out
+        _say(f"beyondmf {args.command}: failed: {err}")
+        return EXIT_FAILED
     except (ValueError, SolveError, MemoryError, ConnectionError) as err:
         # a level refusing the model, a failed solve, a run too big for this machine, no scheduler
         _say(f"beyondmf {args.command}: failed: {' '.join(str(err).split())}")

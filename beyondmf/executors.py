@@ -18,8 +18,19 @@ from typing import Any
 
 import xarray as xr
 
+from .outdir import lock
 from .results import remove_stale_parts
-from .tasks import TaskFileError, compute, read_task, run_task, task_key, task_path
+from .tasks import (
+    MACHINE,
+    TaskFileError,
+    compute,
+    failed_result,
+    failure_of,
+    read_task,
+    run_task,
+    task_key,
+    task_path,
+)
 
 __all__ = ["InProcess", "Dask", "make_executor", "execute", "Interrupted", "CONNECT_TIMEOUT_S"]
 
@@ -162,9 +173,32 @@ class Dask:
 
         if self._client is None:
             raise RuntimeError("use the Dask executor inside a `with` block")
-        futures = [self._client.submit(_on_worker, fn, item, *args, pure=False) for item in items]
+        futures = {self._client.submit(_on_worker, fn, item, *args, pure=False): item for item in items}
         for fut in as_completed(futures):
-            yield fut.result()
+            try:
+                result = fut.result()
+            except Exception as err:
+                if not _worker_lost(err):
+                    raise
+                yield Lost(futures[fut], err)  # the machine's state, not the task's: the next run retries
+                continue
+            yield result
+
+
+class Lost:
+    """What `Dask.map_unordered` yields for an item whose worker was lost (killed, out of memory, its
+    connection gone) more often than the scheduler retries a task."""
+
+    def __init__(self, item, error: BaseException) -> None:
+        self.item, self.error = item, error
+
+
+def _worker_lost(err: BaseException) -> bool:
+    """Whether a task's exception says that its worker went away rather than that the task failed."""
+    from distributed.comm.core import CommClosedError
+    from distributed.scheduler import KilledWorker
+
+    return isinstance(err, KilledWorker | CommClosedError)
 
 
 def _on_worker(fn: Callable, *args):
@@ -340,25 +374,60 @@ def _wrap_stderr(change: int) -> None:
                 sys.stderr = original
 
 
+def _scan(unique: Mapping[str, Mapping[str, Any]], directory: Path, progress: bool) -> list:
+    """The tasks of ``unique`` that still have to run: no file, a file that is not a valid result of its
+    task (reported and removed), or a failure that depended on the machine's state (run again)."""
+    from tqdm.auto import tqdm
+
+    pending = []
+    # a large run checks thousands of files before its first task: say so after a second of silence
+    with tqdm(total=len(unique), unit="file", desc="checking finished tasks", delay=1.0, leave=False,
+              disable=not progress) as bar:
+        for key, task in unique.items():
+            bar.update()
+            path = task_path(directory, key)
+            if not path.exists():
+                pending.append(task)
+                continue
+            try:
+                ds = read_task(path, task)
+            except TaskFileError as err:
+                warnings.warn(f"recomputing task {key}: {err}", stacklevel=4)  # the caller of execute
+                path.unlink()
+                pending.append(task)
+                continue
+            if failure_of(ds) == MACHINE:  # e.g. refused for lack of free memory: try again
+                pending.append(task)
+    return pending
+
+
 def execute(
     tasks: Sequence[Mapping[str, Any]],
     directory: str | Path | None = None,
     executor: InProcess | Dask | None = None,
     progress: bool = True,
     on_done: Callable[[str, str], None] | None = None,
+    on_start: Callable[[int, int], None] | None = None,
 ) -> dict[str, xr.Dataset]:
     """Run ``tasks`` (skipping finished ones) and return key → results Dataset.
 
     With ``directory``, each task's result is DIR/tasks/<key>.nc; a file that is missing, unreadable,
-    incomplete, or does not match its task's key and checksum is (re)computed. Without ``directory``,
-    tasks run in this process and nothing is written. ``on_done(key, status)`` is called after each
-    task finishes (a hook for progress reporting, and for tests that interrupt a run).
+    incomplete, or does not match its task's key and checksum is (re)computed, and so is a task that
+    failed for a reason of the machine's state (a memory refusal; `beyondmf.tasks.failure_kind`). A task
+    whose dask worker was lost is a failure of that kind too (no file: the next run computes it).
+    DIR holds a run lock meanwhile (`beyondmf.outdir.lock`): a second run on DIR is refused. Without
+    ``directory``, tasks run in this process and nothing is written.
+    ``on_start(to run, total)`` is called once the finished tasks are known, before the first one runs;
+    ``on_done(key, status)`` after each task finishes (a hook for progress reporting, and for tests that
+    interrupt a run).
     """
     unique = {task_key(t): t for t in tasks}
     if directory is None:
         if executor is not None and not isinstance(executor, InProcess):
             raise ValueError("a distributed run needs an output directory: workers write the task files")
         out = {}
+        if on_start:
+            on_start(len(unique), len(unique))
         with _progress_bar(len(unique), 0, progress) as bar:
             for key, task in unique.items():
                 out[key] = compute(task)
@@ -368,27 +437,30 @@ def execute(
         return out
 
     directory = Path(directory)
-    pending = []
-    for key, task in unique.items():
-        path = task_path(directory, key)
-        if not path.exists():
-            pending.append(task)
-            continue
-        try:
-            read_task(path, task)
-        except TaskFileError as err:
-            warnings.warn(f"recomputing task {key}: {err}", stacklevel=2)
-            path.unlink()
-            pending.append(task)
-    executor = executor or InProcess()
-    failed = 0
+    with lock(directory):
+        return _execute_in(unique, directory, executor or InProcess(), progress, on_done, on_start)
+
+
+def _execute_in(unique, directory: Path, executor, progress: bool, on_done, on_start) -> dict:
+    pending = _scan(unique, directory, progress) if (directory / "tasks").is_dir() else list(unique.values())
+    if on_start:
+        on_start(len(pending), len(unique))
+    failed, lost = 0, {}
     try:
         # the tasks directory is made only once the executor is up (a scheduler answered)
         with executor:
             (directory / "tasks").mkdir(parents=True, exist_ok=True)
             remove_stale_parts(directory / "tasks", "*.nc")  # of task files a killed run left
             with _progress_bar(len(unique), len(unique) - len(pending), progress) as bar:
-                for key, status, _seconds in executor.map_unordered(run_task, pending, str(directory)):
+                for result in executor.map_unordered(run_task, pending, str(directory)):
+                    if isinstance(result, Lost):
+                        key, status = task_key(result.item), "failed"
+                        err = result.error
+                        lost[key] = failed_result(
+                            result.item, f"worker lost: the dask worker running this task went away "
+                            f"({type(err).__name__}: {' '.join(str(err).split())})", MACHINE)
+                    else:
+                        key, status, _seconds = result
                     failed += status == "failed"
                     bar.update()
                     bar.set_postfix(failed=failed, refresh=False)
@@ -401,4 +473,5 @@ def execute(
         # a finished task that the next run of the same tasks reuses
         kept = sum(task_path(directory, key).exists() for key in unique)
         raise Interrupted(kept, len(unique), directory) from err
-    return {key: read_task(task_path(directory, key), task) for key, task in unique.items()}
+    return {key: lost[key] if key in lost else read_task(task_path(directory, key), task)
+            for key, task in unique.items()}

@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-__all__ = ["save", "load", "provenance", "remove_stale_parts"]
+__all__ = ["save", "load", "provenance", "remove_stale_parts", "NotAResultsFile"]
 
 _RE, _IM = "__real", "__imag"
 
@@ -210,6 +210,7 @@ def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
     for name in out.variables:
         out[name].attrs = _encode_attrs(dict(out[name].attrs))
     out.attrs = _encode_attrs(dict(ds.attrs))
+    out.attrs[MARK] = FILE_FORMAT  # `load` reads only files that carry it (or those of earlier versions)
     try:
         tmp = _create_part(path)
     except OSError as err:
@@ -231,37 +232,133 @@ def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
     return path
 
 
+class NotAResultsFile(ValueError):
+    """A file that `load` cannot read as one written by `save`: not NetCDF-4, truncated, written by
+    something else, or with attributes or variables it cannot fully decode. The message says which."""
+
+
+# The attribute `save` marks its files with (removed again by `load`): the file format's version.
+MARK = "beyondmf_file_format"
+FILE_FORMAT = 1
+# Attributes that files of earlier versions (before MARK) always carry one of: results of evolve/steady
+# and merged sweeps (provenance), task files, files with list or table attributes.
+_EARLIER = ("beyondmf_version", "task_format", "json_attributes")
+_HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
+
+
+def _file_kind(path: Path) -> str | None:
+    """What the first bytes of ``path`` say it is, where that explains why h5netcdf cannot read it."""
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(8)
+            # HDF5 looks for its signature at 0, 512, 1024, 2048, ... (a user block before it)
+            hdf5 = head == _HDF5_SIGNATURE or any(
+                fh.seek(at) == at and fh.read(8) == _HDF5_SIGNATURE for at in (512, 1024, 2048))
+    except OSError:
+        return None
+    if head[:4] in (b"CDF\x01", b"CDF\x02", b"CDF\x05"):
+        variant = {1: "classic", 2: "64-bit offset", 5: "64-bit data (CDF-5)"}[head[3]]
+        return (f"a NetCDF-3 file ({variant} format), which beyondmf.save never writes; open it with "
+                "xarray.open_dataset")
+    if hdf5:
+        return None  # HDF5: h5netcdf's own message says what is wrong (truncated, ...)
+    if not head:
+        return "an empty file (its writer was stopped before writing anything, or a copy failed): write or " \
+               "copy it again"
+    return f"not a NetCDF-4/HDF5 file at all (it starts with {head[:8]!r})"
+
+
+def _decode_attrs_of(attrs: dict[str, Any], where: str, path: Path) -> dict[str, Any]:
+    """`_decode_attrs`, every failure one `NotAResultsFile` naming the attribute."""
+    out = dict(attrs)
+    listed = out.pop("json_attributes", "[]")
+    try:
+        names = json.loads(listed)
+        if not isinstance(names, list) or not all(isinstance(n, str) for n in names):
+            raise ValueError("not a list of names")
+    except (TypeError, ValueError) as err:
+        raise NotAResultsFile(
+            f"load: {path}: the attribute json_attributes of {where} is not the list of names beyondmf.save "
+            f"writes ({err}): the file was edited or not written by beyondmf; write it again with "
+            "beyondmf.save") from None
+    for key in names:
+        if key not in out:
+            raise NotAResultsFile(
+                f"load: {path}: {where} lists the attribute {key!r} in json_attributes but has no such "
+                "attribute: the file was edited or not written by beyondmf; write it again with "
+                "beyondmf.save")
+        try:
+            out[key] = json.loads(out[key], object_hook=_json_hook)
+        except (TypeError, ValueError, KeyError) as err:
+            raise NotAResultsFile(
+                f"load: {path}: the attribute {key!r} of {where} is not the JSON beyondmf.save writes "
+                f"({type(err).__name__}: {err}): the file was edited or not written by beyondmf; write it "
+                "again with beyondmf.save") from None
+    return out
+
+
 def load(path: str | os.PathLike) -> xr.Dataset:
-    """Read a file written by `save` into memory, with complex variables and attributes restored."""
+    """Read a file written by `save` into memory, with complex variables and attributes restored.
+
+    A file it cannot read whole is refused with one `NotAResultsFile` (a ValueError) saying what is
+    wrong: not NetCDF-4 (a NetCDF-3 file is named as such), truncated, not written by beyondmf, or with
+    an attribute or complex variable it cannot decode; nothing is half-loaded.
+    """
     path = Path(path)
     if path.is_dir():
         raise IsADirectoryError(f"load: {path} is a directory; expected a results file written by "
                                 f"beyondmf.save, e.g. {path / 'results.nc'}")
     if not path.is_file():
         raise FileNotFoundError(f"no results file at {path}")
+    kind = _file_kind(path)
+    if kind is not None:
+        raise NotAResultsFile(f"load: {path} is not a readable results file: expected NetCDF-4 as written by "
+                              f"beyondmf.save, but it is {kind}")
     try:
         with xr.open_dataset(path, engine="h5netcdf") as f:
             raw = f.load()
-    except (OSError, ValueError) as err:  # h5py: "file signature not found", "truncated file", ...
-        raise ValueError(
-            f"load: {path} is not a readable results file: expected NetCDF-4 as written by beyondmf.save "
-            f"(h5netcdf said: {' '.join(str(err).split())}); a truncated file means its writer was stopped "
-            "or a copy is incomplete: write or copy it again"
-        ) from err
+    except (OSError, ValueError, KeyError, TypeError) as err:  # h5py: "truncated file", ...
+        said = " ".join(str(err).split())
+        why = ("it is truncated: its writer was stopped or a copy is incomplete; write or copy it again"
+               if "truncated" in said else "it is damaged or not written by beyondmf.save")
+        raise NotAResultsFile(
+            f"load: {path} is not a readable results file: expected NetCDF-4 as written by beyondmf.save, "
+            f"and {why} (h5netcdf said: {said})") from err
+    marked = raw.attrs.get(MARK)
+    if marked is None and not any(k in raw.attrs for k in _EARLIER):
+        raise NotAResultsFile(
+            f"load: {path} is a NetCDF-4 file, but not one written by beyondmf.save (it has none of the "
+            f"attributes {MARK}, {', '.join(_EARLIER)}); open it with xarray.open_dataset")
+    if marked is not None and marked != FILE_FORMAT:
+        raise NotAResultsFile(
+            f"load: {path} was written by another version of beyondmf (file format {marked!r}, this one "
+            f"reads {FILE_FORMAT}); read it with that version")
     ds = xr.Dataset(coords={k: v for k, v in raw.coords.items()})
     for name in list(raw.data_vars):
         var = raw[name]
-        if name.endswith(_RE) and var.attrs.get("complex_parts") == 1:
-            base = name[: -len(_RE)]
-            attrs = {k: v for k, v in var.attrs.items() if k != "complex_parts"}
-            # set the parts, not re + 1j·im: that turns a real part −0.0 into +0.0, and a non-finite
-            # imaginary part into a NaN real part
-            data = np.empty(var.shape, dtype=complex)
-            data.real, data.imag = var.values, raw[base + _IM].values
-            ds[base] = xr.DataArray(data, dims=var.dims, coords=var.coords, attrs=attrs)
-        elif not name.endswith(_IM):
+        part = name.endswith(_RE) or name.endswith(_IM)
+        if not part or var.attrs.get("complex_parts") != 1:
             ds[name] = var
+            continue
+        base = name[: -len(_RE)]
+        other = base + (_IM if name.endswith(_RE) else _RE)
+        if other not in raw.data_vars or raw[other].attrs.get("complex_parts") != 1:
+            raise NotAResultsFile(
+                f"load: {path}: the complex variable {base!r} has its part {name!r} but not {other!r}: the "
+                "file was edited or not written by beyondmf; write it again with beyondmf.save")
+        if raw[other].shape != var.shape:
+            raise NotAResultsFile(f"load: {path}: the real and imaginary parts of {base!r} differ in shape")
+        if name.endswith(_IM):
+            continue
+        attrs = {k: v for k, v in var.attrs.items() if k != "complex_parts"}
+        # set the parts, not re + 1j·im: that turns a real part −0.0 into +0.0, and a non-finite
+        # imaginary part into a NaN real part
+        data = np.empty(var.shape, dtype=complex)
+        data.real, data.imag = var.values, raw[other].values
+        ds[base] = xr.DataArray(data, dims=var.dims, coords=var.coords, attrs=attrs)
     for name in ds.variables:
-        ds[name].attrs = _decode_attrs(dict(ds[name].attrs))
-    ds.attrs = _decode_attrs(dict(raw.attrs))
+        ds[name].attrs = _decode_attrs_of(dict(ds[name].attrs), f"variable {name!r}", path)
+    attrs = dict(raw.attrs)
+    attrs.pop(MARK, None)
+    ds.attrs = _decode_attrs_of(attrs, "the file", path)
     return ds

@@ -538,6 +538,39 @@ def _fill_missing(datasets: list[xr.Dataset]) -> list[xr.Dataset]:
     return out
 
 
+def emitter_count(geometry: Geometry) -> int:
+    """The number of emitters of a geometry, without drawing it."""
+    p = geometry.params
+    if geometry.kind == "points":
+        return len(p["positions"])
+    if "n" in p:
+        return int(p["n"])
+    return int(np.prod([p[k] for k in ("nx", "ny", "nz") if k in p], dtype=object))
+
+
+def results_bytes(n: int, points: int, detectors: int, levels: int, stochastic: bool, copies: int = 3) -> int:
+    """An estimate of the memory of the results of ``levels`` runs of ``n`` emitters at ``points`` report
+    times: per time, the per-emitter excited and coherence (3N numbers), about 12 numbers per detector and
+    16 more (rates, g2, diagnostics), twice as many with the standard errors of a sampled level; times
+    ``copies`` (a level's output, its Dataset, the merged one). An exact integer (no overflow)."""
+    per_time = 3 * n + 12 * detectors + 16
+    return copies * 8 * int(points) * per_time * (2 if stochastic else 1) * int(levels)
+
+
+def check_run_size(study: Study) -> None:
+    """Refuse (MemoryError, with the estimate) a study of one model whose results would not fit in this
+    machine's free memory, before any array of report times is made (``[run] points = 10⁹`` grew to
+    17 GB before it was killed)."""
+    from .memory import require
+
+    points = 1 if study.run.calculation == "steady" else study.run.points
+    n = emitter_count(study.geometry)
+    stochastic = any(get_level(name).stochastic for name in study.levels)
+    need = results_bytes(n, points, len(study.detectors or {"forward": None}), len(study.levels), stochastic)
+    what = f"the results of {len(study.levels)} level(s) for {n:,} emitters at {points:,} report times"
+    require(need, what, hint="use fewer report times ([run] points) or emitters, or a larger machine")
+
+
 # What a level's run may raise when it cannot do this model (refusal, failed solve, too big): with
 # ``keep_going`` these are recorded and the other levels still run; anything else is a bug and propagates.
 _LEVEL_FAILURES = (ValueError, SolveError, MemoryError)
@@ -562,6 +595,7 @@ def run_study(
     levels that finished, in the study's order, and ``attrs["failures"]`` holds one line
     ``"<level>: <message>"`` per level that did not; if no level finished, the first failure is raised.
     """
+    check_run_size(study)
     model = study.build_model()
     detectors = study.detector_directions()
     results, names, failures, first_error = [], [], [], None

@@ -38,6 +38,8 @@ levels), every grid point's study, and the study with its [quick] overrides (err
 
 from __future__ import annotations
 
+import contextlib
+import contextvars
 import copy
 import itertools
 import json
@@ -53,7 +55,7 @@ from .levels.base import available_levels, detector_directions, get_level
 from .model import Model
 from .observables import stderr_attrs
 from .study import Study, StudyError, parse_table, section, study_check, study_text
-from .tasks import SCALAR_VARIABLES, task_key
+from .tasks import INPUT, MACHINE, SCALAR_VARIABLES, failure_of, task_key
 
 __all__ = [
     "SweepSpec",
@@ -240,7 +242,8 @@ def stack(
     for key_tuple, task in index.items():
         ds = results[task_key(task)]
         if "emission_rate" not in ds:
-            failures.append(f"{where(key_tuple)} (task {task_key(task)}): {ds.attrs.get('error', 'failed')}")
+            failures.append(f"{where(key_tuple)} (task {task_key(task)}): {ds.attrs.get('error', 'failed')}"
+                            + _FAILURE_NOTE.get(failure_of(ds), ""))
             continue
         idx = tuple(key_tuple[:-2]) + (labels.index(key_tuple[-2]), key_tuple[-1])
         for name in names + diagnostics:
@@ -284,6 +287,13 @@ def stack(
     out.attrs["warnings"] = said
     out.attrs.update(shared_parameters(index, labels, results))
     return out
+
+
+# What a failure message in ``failures`` adds about its cause (`beyondmf.tasks.failure_kind`).
+_FAILURE_NOTE = {
+    INPUT: " [caused by the input: kept, a rerun gives the same]",
+    MACHINE: " [caused by the machine's state: not kept, the next run computes it again]",
+}
 
 
 def shared_parameters(index: Mapping[tuple, Mapping[str, Any]], labels: Sequence[str],
@@ -403,6 +413,10 @@ class SweepSpec:
 
     def __init__(self, grid: dict[str, list], realizations: int, seed: int, keep: str = "all") -> None:
         self.grid, self.realizations, self.seed, self.keep = grid, realizations, seed, keep
+
+    def points(self) -> int:
+        """The number of grid points."""
+        return int(np.prod([len(v) for v in self.grid.values()], dtype=object)) if self.grid else 1
 
     def dims(self) -> list[tuple[str, list]]:
         """(dimension name, coordinate values) per grid path: the last path component, or the whole
@@ -542,6 +556,98 @@ _TASK_SECTIONS = ("sweep", "compare", "convergence", "quick")
 TIME_OBSERVABLES = ("emission_rate_peak", "peak_time", "emitted")
 
 
+# Planning limit: a study of more tasks than this is refused unless confirmed (read_study(large=True),
+# `beyondmf run --large`). Checking and building a task takes about a millisecond, its file and its share
+# of the merge more: 10⁵ tasks plan in minutes, 10⁶ in tens of minutes before the first one runs.
+MAX_TASKS = 100_000
+# Memory one task's results take while they are merged, besides their arrays (xarray objects, the task
+# dictionary): measured about 20-40 KiB per task Dataset; an estimate.
+_TASK_OVERHEAD = 48 * 1024
+
+_PLANNING = contextvars.ContextVar("beyondmf_planning", default=(True, False))  # (enforce, large)
+
+
+@contextlib.contextmanager
+def _planning(enforce: bool, large: bool):
+    token = _PLANNING.set((enforce, large))
+    try:
+        yield
+    finally:
+        _PLANNING.reset(token)
+
+
+PLANNING_BAR_DELAY_S = 2.0
+
+
+def _planning_bar(items, total: int, what: str):
+    """``items`` with a progress bar on stderr that appears only after `PLANNING_BAR_DELAY_S` (a large grid
+    takes minutes to check and build; a small one says nothing)."""
+    from tqdm.auto import tqdm
+
+    return tqdm(items, total=total, desc=what, unit="point", delay=PLANNING_BAR_DELAY_S, leave=False)
+
+
+def _largest(study: Study, key: str, base: int) -> int:
+    """The largest value over the grid of the integer at study path ``key`` (``base`` where the grid does
+    not vary it)."""
+    spec: SweepSpec | None = study.extra.get("sweep")
+    values = [v for v in (spec.grid.get(key, []) if spec is not None else [])
+              if isinstance(v, int) and not isinstance(v, bool)]
+    return max([base, *values]) if values else base
+
+
+def plan_estimate(study: Study) -> dict[str, float]:
+    """Estimates of a study before anything is built: ``tasks`` (an upper bound: grid points × levels ×
+    realizations), the largest ``n`` of emitters and ``points`` (report times) over the grid, and
+    ``bytes``: the memory the run's results take while they are merged (every task's results, the
+    stacked arrays and the per-emitter variables; roughly, and rather more than less)."""
+    from .study import emitter_count, results_bytes
+
+    spec: SweepSpec | None = study.extra.get("sweep")
+    points = 1 if study.run.calculation == "steady" else _largest(study, "run.points", study.run.points)
+    params = study.geometry.params
+    if "n" in params:
+        n = _largest(study, "geometry.n", params["n"])
+    else:  # a lattice: nx·ny(·nz), each at its largest; given points
+        n = emitter_count(study.geometry)
+        for axis in ("nx", "ny", "nz"):
+            if axis in params:
+                n = n // params[axis] * _largest(study, f"geometry.{axis}", params[axis])
+    detectors = len(study.detectors or {"forward": None})
+    stochastic = any(get_level(name).stochastic for name in study.levels)
+    tasks = (spec.points() * spec.realizations if spec is not None else 1) * len(study.levels)
+    # every task's results are read back whole, then the per-detector ones stacked (twice: with [compare]
+    # the summary beside the per-realization values)
+    stacked = 2 * 8 * points * (12 * detectors + 16) * (2 if stochastic else 1)
+    whole = results_bytes(n, points, detectors, 1, stochastic, copies=1)
+    per_task = whole + stacked + 24 * n + _TASK_OVERHEAD
+    return {"tasks": tasks, "n": n, "points": points, "bytes": tasks * per_task}
+
+
+def check_plan(study: Study, large: bool = False, enforce: bool = True) -> None:
+    """Refuse a study too large to plan: beyond `MAX_TASKS` tasks without ``large`` (StudyError), or
+    whose estimated results exceed this machine's free memory (MemoryError, with the estimate).
+    ``enforce`` False (the full study of a --quick run, validated but not run) skips both."""
+    from .memory import require
+
+    if not enforce:
+        return
+    est = plan_estimate(study)
+    tasks = est["tasks"]
+    if tasks > MAX_TASKS and not large:
+        spec: SweepSpec | None = study.extra.get("sweep")
+        parts = f"{spec.points():,} grid points × {len(study.levels)} levels × {spec.realizations} " \
+                "realizations" if spec is not None else f"{len(study.levels)} levels"
+        raise StudyError(
+            f"sweep.grid: {parts} = up to {tasks:,} tasks, beyond the planning limit of {MAX_TASKS:,} "
+            "(planning alone would take many minutes, every task is a file); use fewer grid values or "
+            "realizations, or confirm with --large (read_study(..., large=True) in Python)")
+    require(est["bytes"], f"the results of {tasks:,} task{'s' * (tasks != 1)} ({est['n']:,} emitters, "
+            f"{est['points']:,} report times)",
+            hint="use fewer grid values, realizations or report times ([run] points), keep = 'last_time', "
+                 "or a larger machine")
+
+
 def _grid_points(spec: SweepSpec):
     """(indices, {path: value}) of every grid point, in the order of `study_tasks`."""
     paths = list(spec.grid)
@@ -584,7 +690,9 @@ def _check_sections(study: Study, raw: Mapping[str, Any]) -> None:
             if parts[0] == "levels" and parts[1] not in study.levels:
                 raise StudyError(f"{key}: level {parts[1]!r} is not in the study ({', '.join(levels)}); add "
                                  f"[levels.{parts[1]}] to run it, or correct the level's name")
-        for _, point in _grid_points(spec):
+        enforce, large = _PLANNING.get()
+        check_plan(study, large=large, enforce=enforce)  # before the loop: it alone can take minutes
+        for _, point in _planning_bar(_grid_points(spec), spec.points(), "checking grid points"):
             _point_study(raw, point)  # every grid point's study is valid (StudyError naming the point)
     if cmp is not None:
         if cmp.baseline not in levels:
@@ -686,8 +794,12 @@ def _quick_error(err: StudyError, over: Mapping) -> StudyError:
     return StudyError(f"quick: with the [quick] overrides applied, {msg}")
 
 
-def read_study(path: str | Path, quick: bool = False) -> Study:
+def read_study(path: str | Path, quick: bool = False, large: bool = False) -> Study:
     """Read and validate a study file; ``quick`` applies its [quick] overrides (an error if it has none).
+
+    A study of more than `MAX_TASKS` tasks is refused unless ``large`` (``beyondmf run --large``), and
+    one whose estimated results do not fit in this machine's free memory is refused in any case
+    (`check_plan`), before its grid points are validated one by one.
 
     A [quick] table is validated whether or not ``quick`` is set (its errors name ``quick.KEY``), so that
     a broken CI-sized version of a study is found by the study's own runs.
@@ -698,10 +810,10 @@ def read_study(path: str | Path, quick: bool = False) -> Study:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
         raise StudyError(f"not valid TOML: {err}") from None
-    return _study(raw, text, p, quick)
+    return _study(raw, text, p, quick, large)
 
 
-def study_from_table(table: Mapping[str, Any], quick: bool = False) -> Study:
+def study_from_table(table: Mapping[str, Any], quick: bool = False, large: bool = False) -> Study:
     """A study built in Python: ``table`` has the layout of a study file (docs/study-files.md), e.g.
     ``{"geometry": {...}, "drive": {...}, "levels": {...}, "sweep": {"grid": {"geometry.density": [...]}}}``.
 
@@ -716,10 +828,16 @@ def study_from_table(table: Mapping[str, Any], quick: bool = False) -> Study:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:  # a value to_toml writes and TOML cannot hold
         raise StudyError(f"the table cannot be written as a study file: {err}") from None
-    return _study(raw, text, None, quick)
+    return _study(raw, text, None, quick, large)
 
 
-def _study(raw: dict, text: str, path: Path | None, quick: bool) -> Study:
+def _study(raw: dict, text: str, path: Path | None, quick: bool, large: bool = False) -> Study:
+    with _planning(enforce=not quick, large=large):  # the study that runs is held to the planning limit
+        study = _study_checked(raw, text, path, quick, large)
+    return study
+
+
+def _study_checked(raw: dict, text: str, path: Path | None, quick: bool, large: bool) -> Study:
     if quick and "quick" not in raw:
         # running the full study instead could take hours where minutes were asked for
         raise StudyError("--quick: this study has no [quick] table; run it without --quick, or add one "
@@ -731,7 +849,8 @@ def _study(raw: dict, text: str, path: Path | None, quick: bool) -> Study:
     if "quick" in raw:
         merged = _with_quick(raw)
         try:
-            quick_study = parse_table(merged, text, path)
+            with _planning(enforce=quick, large=large):
+                quick_study = parse_table(merged, text, path)
         except StudyError as err:
             raise _quick_error(err, raw["quick"]) from None
         if quick:
@@ -864,7 +983,7 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
     dims = spec.dims()
     own = _own_draws(study)
     index, labels, params = {}, None, {}
-    for idx, point in _grid_points(spec):
+    for idx, point in _planning_bar(_grid_points(spec), spec.points(), "building tasks"):
         st = _point_study(raw, point)
         table = level_table(st.levels)
         labels = labels or list(table)
@@ -932,26 +1051,41 @@ def run_sweep(
     progress: bool = True,
     on_done: Callable[[str, str], None] | None = None,
     on_ready: Callable[[int], None] | None = None,
+    on_start: Callable[[int, int], None] | None = None,
 ) -> xr.Dataset:
     """Run (or resume) every task of ``study`` and write the merged DIR/results.nc.
 
-    ``on_ready(number of tasks)`` is called once every task is built and validated, before any runs.
+    ``on_ready(number of tasks)`` is called once every task is built and validated, before any runs;
+    ``on_start(to run, total)`` once the finished tasks in DIR/tasks are known.
 
+    DIR is locked meanwhile (a second run on it is refused, `beyondmf.outdir`), and a results.nc there
+    that beyondmf did not write is refused before anything is computed (`beyondmf.outdir.NotOurFiles`).
     Without [compare] the result has dimensions (grid..., level, realization, ...); with it, the
     `beyondmf.compare.summarize` reduction (level dimension, corrections, verdicts) plus the
     per-realization values as ``X_realizations``.
     """
+    from .outdir import claim, lock, record
+
+    out = Path(out)
+    check_plan(study, large=True)  # the memory of the results (the task count was checked when read)
+    with lock(out):
+        claim(out, ["results.nc"])
+        ds = _run_sweep_in(study, out, executor, progress, on_done, on_ready, on_start)
+        record(out / "results.nc")
+    return ds
+
+
+def _run_sweep_in(study, out: Path, executor, progress, on_done, on_ready, on_start) -> xr.Dataset:
     from .compare import OBSERVABLES, summarize
     from .executors import execute
     from .results import save
 
-    out = Path(out)
     index, labels, k, dims, params = study_tasks(study)
     cmp: CompareSpec | None = study.extra.get("compare")
     observables = cmp.observables if cmp else OBSERVABLES
     if on_ready:
         on_ready(len({task_key(t) for t in index.values()}))
-    results = execute(list(index.values()), out, executor, progress, on_done)
+    results = execute(list(index.values()), out, executor, progress, on_done, on_start)
     spec = study.extra.get("sweep")
     last = bool(spec and spec.keep == "last_time")
     per = stack(index, results, labels, k, observables, dims, last_time=last,
@@ -986,6 +1120,8 @@ def run_sweep(
         title=study.title,
         quick=int(bool(study.extra.get("quick"))),
         tasks=len({task_key(t) for t in index.values()}),
+        tasks_failed=len({task_key(t) for t in index.values()
+                          if results[task_key(t)].attrs.get("task_status") == "failed"}),
         levels_run=list(labels),
         available_levels=list(available_levels()),
         failures=per.attrs.get("failures", []),

@@ -45,6 +45,10 @@ __all__ = [
     "task_path",
     "SCALAR_VARIABLES",
     "TaskFileError",
+    "failure_kind",
+    "failure_of",
+    "INPUT",
+    "MACHINE",
 ]
 
 FORMAT = 2  # 2: the checksum covers coordinates and attributes too
@@ -234,28 +238,73 @@ def _stamp(ds: xr.Dataset, task: Mapping[str, Any], status: str, seconds: float)
     return ds
 
 
+# Why a task failed, recorded in its file as ``task_failure``:
+INPUT = "input"  # a property of the task (a level refusing the model, a failed solve): kept, a rerun
+# gives the same
+MACHINE = "machine"  # the machine's state (free memory, a lost worker): not kept, the next run retries it
+
+
+def failure_kind(err: BaseException) -> str | None:
+    """``INPUT`` or ``MACHINE`` for an exception a task may end with, None for any other (a bug: it
+    propagates). A memory refusal or an allocation that failed depends on what else the machine runs;
+    ValueError (a level refusing the model or an option) and SolveError (the solver gave up) do not."""
+    from .integrate import SolveError
+
+    if isinstance(err, MemoryError) or (type(err).__name__ == "XlaRuntimeError"
+                                        and "RESOURCE_EXHAUSTED" in str(err)):
+        return MACHINE
+    if isinstance(err, ValueError | SolveError):
+        return INPUT
+    return None
+
+
+def failure_of(ds: xr.Dataset) -> str | None:
+    """The ``task_failure`` of a failed task's results (files of earlier versions: a MemoryError is the
+    machine's), None for a finished task."""
+    if ds.attrs.get("task_status", "done") != "failed":
+        return None
+    kind = ds.attrs.get("task_failure")
+    if kind in (INPUT, MACHINE):
+        return kind
+    return MACHINE if str(ds.attrs.get("error", "")).startswith("MemoryError") else INPUT
+
+
+def failed_result(task: Mapping[str, Any], error: str, kind: str, seconds: float = 0.0) -> xr.Dataset:
+    """The results Dataset of a task that failed with message ``error`` for reason ``kind``."""
+    ds = xr.Dataset(attrs={"level": task["level"], "error": error})
+    ds = _stamp(ds, task, "failed", seconds)
+    ds.attrs["task_failure"] = kind
+    return ds
+
+
 def run_task(task: Mapping[str, Any], directory: str | Path | None = None) -> tuple[str, str, float]:
     """Run one task and write DIR/tasks/<key>.nc atomically (``directory`` None: nothing is written).
 
     A level that refuses the model, or a solve that fails, is a result too (``task_status = "failed"``,
-    the message in ``error``): it is deterministic, so running again would fail the same way. A memory
-    refusal depends on the machine: delete its task file (the key is in the sweep's ``failures``) to
-    retry it on a larger one.
+    ``task_failure = "input"``, the message in ``error``): it is deterministic, so running again would
+    fail the same way, and the file is reused. A refusal for lack of free memory depends on the machine's
+    state (``task_failure = "machine"``): its file says so, and the next run computes the task again.
     Returns (key, status, seconds).
     """
-    from .integrate import SolveError
     from .results import save
 
     start = time.perf_counter()
+    kind = None
     try:
         ds, status = compute(task), "done"
-    except (ValueError, SolveError, MemoryError) as err:
+    except Exception as err:
+        kind = failure_kind(err)
+        if kind is None:
+            raise
         ds = xr.Dataset(attrs={"level": task["level"], "error": f"{type(err).__name__}: {err}"})
         status = "failed"
     seconds = time.perf_counter() - start
     key = task_key(task)
     if directory is not None:
-        save(_stamp(ds, task, status, seconds), task_path(directory, key))
+        stamped = _stamp(ds, task, status, seconds)
+        if kind is not None:
+            stamped.attrs["task_failure"] = kind
+        save(stamped, task_path(directory, key))
     return key, status, seconds
 
 

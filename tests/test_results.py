@@ -174,3 +174,103 @@ def test_a_saved_run_reruns_bit_for_bit_from_its_file_alone(tmp_path, level, opt
     again = bm.evolve(m2, level, times, initial=initial, detectors=detectors, seed=seed, **opts)
     for name in ("excited", "coherence", "emission_rate", "intensity", "g2", "g2_total"):
         np.testing.assert_array_equal(again[name].values, ds[name].values, err_msg=name)
+
+
+def _edited(src, dst, edit):
+    """A copy of the results file ``src`` at ``dst`` with its HDF5 attributes or datasets edited."""
+    import shutil
+
+    import h5py
+
+    shutil.copy(src, dst)
+    with h5py.File(dst, "r+") as f:
+        edit(f)
+    return dst
+
+
+def test_load_refuses_edited_or_foreign_files_with_one_clear_error_naming_what_is_wrong(dataset, tmp_path):
+    """Edited or foreign files gave a raw JSONDecodeError/KeyError, loaded with attributes left undecoded,
+    or were accepted as results; each is now one NotAResultsFile (a ValueError) saying what is wrong."""
+    from beyondmf.results import NotAResultsFile
+
+    whole = bm.save(dataset, tmp_path / "whole.nc")
+    cases = {
+        # an attribute stored as JSON (a table) edited into text that is not JSON
+        r"the attribute 'options' of the file is not the JSON beyondmf.save writes \(JSONDecodeError":
+            lambda f: f.attrs.__setitem__("options", "{rtol: 1e-6"),
+        # an attribute named in json_attributes but deleted
+        r"lists the attribute 'options' in json_attributes but has no such attribute":
+            lambda f: f.attrs.__delitem__("options"),
+        r"the attribute json_attributes of the file is not the list of names":
+            lambda f: f.attrs.__setitem__("json_attributes", "options"),
+        # half of a complex variable: refused, not loaded without it
+        r"the complex variable 'coherence' has its part 'coherence__real' but not 'coherence__imag'":
+            lambda f: f.__delitem__("coherence__imag"),
+    }
+    for k, (message, edit) in enumerate(cases.items()):
+        path = _edited(whole, tmp_path / f"edited{k}.nc", edit)
+        with pytest.raises(NotAResultsFile, match=message):
+            bm.load(path)
+    # a NetCDF-4 file that beyondmf did not write (plain xarray) is not taken for results
+    foreign = tmp_path / "foreign.nc"
+    xr.Dataset({"emission_rate": ("time", np.ones(3))}).to_netcdf(foreign, engine="h5netcdf")
+    with pytest.raises(NotAResultsFile, match=r"a NetCDF-4 file, but not one written by beyondmf\.save"):
+        bm.load(foreign)
+
+
+def test_a_netcdf3_file_is_named_as_such_not_blamed_on_truncation(tmp_path):
+    path = tmp_path / "classic.nc"
+    xr.Dataset({"x": ("t", np.arange(3.0))}).to_netcdf(path, engine="scipy", format="NETCDF3_64BIT")
+    with pytest.raises(ValueError, match=r"expected NetCDF-4 .* but it is a NetCDF-3 file \(64-bit offset "
+                                         r"format\)") as err:
+        bm.load(path)
+    assert "truncated" not in str(err.value)
+
+
+def test_a_file_of_an_earlier_version_without_the_mark_still_loads(dataset, tmp_path):
+    """Task files and results written before the file-format mark stay readable (resumes keep them)."""
+    from beyondmf.results import MARK
+
+    path = _edited(bm.save(dataset, tmp_path / "r.nc"), tmp_path / "old.nc",
+                   lambda f: f.attrs.__delitem__(MARK))
+    xr.testing.assert_identical(bm.load(path), dataset)
+
+
+def test_killing_a_writer_while_it_writes_leaves_the_old_file_whole_and_its_temporary_goes(tmp_path):
+    """kill -9 while results.nc is written: the file there is the previous one, whole; the writer's
+    temporary file is removed by the next run (its process is gone)."""
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from beyondmf.results import remove_stale_parts
+
+    target = tmp_path / "results.nc"
+    code = f"""
+import numpy as np, xarray as xr
+from beyondmf.results import save
+ds = xr.Dataset({{"emission_rate": ("time", np.arange(1e7))}})
+save(ds.isel(time=slice(0, 10)), {str(target)!r})
+print("first written", flush=True)
+while True:
+    save(ds, {str(target)!r})
+"""
+    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
+    try:
+        assert proc.stdout.readline().strip() == "first written"
+        deadline = time.monotonic() + 60
+        while not list(tmp_path.glob(".results.nc.*.part")) and time.monotonic() < deadline:
+            time.sleep(0.01)
+        time.sleep(0.05)
+        os.kill(proc.pid, signal.SIGKILL)
+    finally:
+        proc.kill()
+        proc.wait()
+    back = bm.load(target)  # whole: the first or a later complete write, never a partial one
+    assert back.sizes["time"] in (10, 10**7)
+    left = list(tmp_path.glob(".results.nc.*.part"))
+    assert left, "the writer was killed before it had started a temporary file"
+    assert sorted(remove_stale_parts(tmp_path, "results.nc")) == sorted(left)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["results.nc"]

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import textwrap
 
-import numpy as np
 import pytest
 
 import beyondmf as bm
@@ -30,16 +29,87 @@ def test_every_level_refuses_a_model_too_large_with_a_memory_error_not_an_overfl
 
 
 def test_a_sweep_records_a_memory_refusal_for_its_task_instead_of_aborting(tmp_path):
-    from beyondmf.sweep import run_sweep, study_from_table
+    """The refusal of exact at N = 512 is the failed task's result (the other tasks of a sweep go on, as
+    for any failed task: tests/test_task_failures.py), not an exception that ends the run."""
+    from beyondmf.executors import execute
+    from beyondmf.sweep import build_task
+    from beyondmf.tasks import MACHINE
 
-    study = study_from_table({
-        "geometry": {"kind": "line", "n": 2, "spacing": 0.3},
-        "drive": {"rabi": 1.0}, "run": {"t_end": 0.1, "points": 2}, "levels": ["exact"],
-        "sweep": {"grid": {"geometry.n": [2, 512]}},
-    })
-    ds = run_sweep(study, tmp_path / "out", progress=False)
-    rate = ds["emission_rate"].sel(level="exact").isel(realization=0, time=-1)
-    assert np.isfinite(rate.sel(n=2)) and np.isnan(rate.sel(n=512))
-    (failure,) = ds.attrs["failures"]
-    assert "n=512" in failure and "MemoryError" in failure and "10^" in failure, failure
-    print(failure)
+    task = build_task(bm.geometry.line_array(512, 0.3), {"rabi": 1.0}, {"calculation": "steady"}, None,
+                      {"level": "exact", "options": {}}, seed=0, realization=0)
+    (ds,) = execute([task], tmp_path, progress=False).values()
+    assert ds.attrs["task_status"] == "failed" and ds.attrs["task_failure"] == MACHINE
+    assert ds.attrs["error"].startswith("MemoryError: the exact density matrix of 512 emitters: about "
+                                        "10^312 bytes needed")  # log10(16 · 4^512 · 3084) = 312.9
+
+
+ONE_MODEL = """
+[geometry]
+kind = "line"
+n = 12
+spacing = 0.3
+[drive]
+rabi = 1.0
+[run]
+t_end = 10.0
+points = 201
+[levels.meanfield]
+"""
+
+
+def _study_file(tmp_path, text):
+    path = tmp_path / "s.toml"
+    path.write_text(textwrap.dedent(text))
+    return path
+
+
+def test_a_billion_report_times_are_refused_with_the_estimate_before_anything_is_allocated(tmp_path, capsys):
+    """[run] points = 10⁹ grew to 17 GB before it was killed."""
+    from beyondmf.cli import EXIT_FAILED, main
+    from beyondmf.study import read_study, run_study
+
+    path = _study_file(tmp_path, ONE_MODEL.replace("points = 201", "points = 1_000_000_000"))
+    out = tmp_path / "out"
+    assert main(["run", str(path), "--out", str(out)]) == EXIT_FAILED
+    err = capsys.readouterr().err
+    assert "the results of 1 level(s) for 12 emitters at 1,000,000,000 report times: about" in err
+    assert " TiB needed, but this machine has" in err and "fewer report times ([run] points)" in err
+    assert not out.exists()  # refused before the output directory was made
+    with pytest.raises(MemoryError, match="1,000,000,000 report times"):
+        run_study(read_study(path))
+
+
+def test_a_grid_of_a_million_tasks_is_refused_at_once_and_with_large_by_its_memory(tmp_path, capsys):
+    """A grid of 10⁶ tasks printed nothing for five minutes: refused when read, with the task count
+    (an upper bound: grid points × levels × realizations); --large confirms the count, and then the
+    estimate of the merged results' memory refuses it on this machine."""
+    import time
+
+    from beyondmf.cli import EXIT_FAILED, EXIT_USAGE, main
+    from beyondmf.sweep import MAX_TASKS
+
+    rabi = ", ".join(str(1 + k / 1000) for k in range(1000))
+    detuning = ", ".join(str(k / 1000) for k in range(1000))
+    path = _study_file(tmp_path, ONE_MODEL + f'[sweep]\n[sweep.grid]\n"drive.rabi" = [{rabi}]\n'
+                                             f'"drive.detuning" = [{detuning}]\n')
+    start = time.perf_counter()
+    assert main(["run", str(path), "--out", str(tmp_path / "out")]) == EXIT_USAGE
+    err = capsys.readouterr().err
+    assert (f"sweep.grid: 1,000,000 grid points × 1 levels × 1 realizations = up to 1,000,000 tasks, beyond "
+            f"the planning limit of {MAX_TASKS:,}") in err and "--large" in err
+    assert main(["run", str(path), "--out", str(tmp_path / "out"), "--large"]) == EXIT_FAILED
+    err = capsys.readouterr().err
+    assert "failed: the results of 1,000,000 tasks (12 emitters, 201 report times): about" in err
+    assert time.perf_counter() - start < 30  # both before the grid points are checked one by one
+    assert not (tmp_path / "out").exists()
+
+
+def test_a_large_grid_says_what_it_is_doing_while_it_plans(tmp_path, capsys, monkeypatch):
+    """Checking and building a grid's tasks shows a progress bar once it has taken a while (here at once)."""
+    import beyondmf.sweep as sweep
+
+    monkeypatch.setattr(sweep, "PLANNING_BAR_DELAY_S", 0.0)
+    path = _study_file(tmp_path, ONE_MODEL + '[sweep]\n[sweep.grid]\n"drive.rabi" = [1.0, 2.0, 3.0]\n')
+    sweep.study_tasks(sweep.read_study(path))
+    err = capsys.readouterr().err
+    assert "checking grid points" in err and "building tasks" in err
