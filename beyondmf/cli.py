@@ -1,6 +1,6 @@
 """The `beyondmf` command: run a study file, list the levels, run the benchmarks.
 
-    beyondmf run STUDY.toml --out DIR [--quick] [--workers N | --scheduler ADDRESS]
+    beyondmf run STUDY.toml --out DIR [--quick] [--large] [--workers N | --scheduler ADDRESS]
                                           results.nc and PNG figures in DIR (tasks/ for a sweep)
     beyondmf levels                       the registered levels and their options
     beyondmf bench [--full] [--suite NAME ...] [--out FILE]

@@ -3,7 +3,9 @@
 NetCDF has no complex type, so a complex variable X is stored as X__real and X__imag with the attribute
 ``complex_parts = 1``; attributes that are not plain numbers or strings (lists, dicts, complex numbers)
 are stored as JSON strings and named in the attribute ``json_attributes``. `load` undoes both, so a
-Dataset survives the round trip unchanged.
+Dataset survives the round trip unchanged. `save` marks its files with the attribute
+``beyondmf_file_format``; `load` refuses (`NotAResultsFile`) a file without it (or the attributes of files
+of earlier versions), a NetCDF-3 or truncated file, and any file it cannot decode whole.
 """
 
 from __future__ import annotations
@@ -208,8 +210,9 @@ def save(ds: xr.Dataset, path: str | os.PathLike) -> Path:
         else:
             out[name] = var
     for name in out.variables:
-        out[name].attrs = _encode_attrs(dict(out[name].attrs))
-    out.attrs = _encode_attrs(dict(ds.attrs))
+        # json_attributes always written ("[]" when empty): a file that lacks it was edited
+        out[name].attrs = {"json_attributes": "[]", **_encode_attrs(dict(out[name].attrs))}
+    out.attrs = {"json_attributes": "[]", **_encode_attrs(dict(ds.attrs))}
     out.attrs[MARK] = FILE_FORMAT  # `load` reads only files that carry it (or those of earlier versions)
     try:
         tmp = _create_part(path)
@@ -268,9 +271,15 @@ def _file_kind(path: Path) -> str | None:
     return f"not a NetCDF-4/HDF5 file at all (it starts with {head[:8]!r})"
 
 
-def _decode_attrs_of(attrs: dict[str, Any], where: str, path: Path) -> dict[str, Any]:
-    """`_decode_attrs`, every failure one `NotAResultsFile` naming the attribute."""
+def _decode_attrs_of(attrs: dict[str, Any], where: str, path: Path, marked: bool) -> dict[str, Any]:
+    """`_decode_attrs`, every failure one `NotAResultsFile` naming the attribute. ``marked``: the file
+    carries `MARK`, so `save` wrote json_attributes everywhere (earlier versions only where needed)."""
     out = dict(attrs)
+    if marked and "json_attributes" not in out:
+        raise NotAResultsFile(
+            f"load: {path}: {where} lacks the attribute json_attributes that beyondmf.save writes (the list "
+            "of attributes stored as JSON): the file was edited, and its attributes cannot be decoded; "
+            "write it again with beyondmf.save")
     listed = out.pop("json_attributes", "[]")
     try:
         names = json.loads(listed)
@@ -357,8 +366,9 @@ def load(path: str | os.PathLike) -> xr.Dataset:
         data.real, data.imag = var.values, raw[other].values
         ds[base] = xr.DataArray(data, dims=var.dims, coords=var.coords, attrs=attrs)
     for name in ds.variables:
-        ds[name].attrs = _decode_attrs_of(dict(ds[name].attrs), f"variable {name!r}", path)
+        where = f"variable {name!r}"
+        ds[name].attrs = _decode_attrs_of(dict(ds[name].attrs), where, path, marked is not None)
     attrs = dict(raw.attrs)
     attrs.pop(MARK, None)
-    ds.attrs = _decode_attrs_of(attrs, "the file", path)
+    ds.attrs = _decode_attrs_of(attrs, "the file", path, marked is not None)
     return ds

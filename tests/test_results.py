@@ -203,6 +203,11 @@ def test_load_refuses_edited_or_foreign_files_with_one_clear_error_naming_what_i
             lambda f: f.attrs.__delitem__("options"),
         r"the attribute json_attributes of the file is not the list of names":
             lambda f: f.attrs.__setitem__("json_attributes", "options"),
+        # the list of JSON attributes deleted: they would load as undecoded text
+        r"the file lacks the attribute json_attributes that beyondmf.save writes":
+            lambda f: f.attrs.__delitem__("json_attributes"),
+        r"variable 'emission_rate' lacks the attribute json_attributes":
+            lambda f: f["emission_rate"].attrs.__delitem__("json_attributes"),
         # half of a complex variable: refused, not loaded without it
         r"the complex variable 'coherence' has its part 'coherence__real' but not 'coherence__imag'":
             lambda f: f.__delitem__("coherence__imag"),
