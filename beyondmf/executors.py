@@ -374,12 +374,13 @@ def _wrap_stderr(change: int) -> None:
                 sys.stderr = original
 
 
-def _scan(unique: Mapping[str, Mapping[str, Any]], directory: Path, progress: bool) -> list:
-    """The tasks of ``unique`` that still have to run: no file, a file that is not a valid result of its
-    task (reported and removed), or a failure that depended on the machine's state (run again)."""
+def _scan(unique: Mapping[str, Mapping[str, Any]], directory: Path, progress: bool) -> tuple[list, dict]:
+    """(the tasks of ``unique`` that still have to run, key → results of those that do not). A task runs
+    if it has no file, a file that is not a valid result of its task (reported and removed), or a failure
+    that depended on the machine's state (run again)."""
     from tqdm.auto import tqdm
 
-    pending = []
+    pending, kept = [], {}
     # a large run checks thousands of files before its first task: say so after a second of silence
     with tqdm(total=len(unique), unit="file", desc="checking finished tasks", delay=1.0, leave=False,
               disable=not progress) as bar:
@@ -398,7 +399,9 @@ def _scan(unique: Mapping[str, Mapping[str, Any]], directory: Path, progress: bo
                 continue
             if failure_of(ds) == MACHINE:  # e.g. refused for lack of free memory: try again
                 pending.append(task)
-    return pending
+            else:
+                kept[key] = ds
+    return pending, kept
 
 
 def execute(
@@ -442,7 +445,10 @@ def execute(
 
 
 def _execute_in(unique, directory: Path, executor, progress: bool, on_done, on_start) -> dict:
-    pending = _scan(unique, directory, progress) if (directory / "tasks").is_dir() else list(unique.values())
+    if (directory / "tasks").is_dir():
+        pending, kept = _scan(unique, directory, progress)
+    else:
+        pending, kept = list(unique.values()), {}
     if on_start:
         on_start(len(pending), len(unique))
     failed, lost = 0, {}
@@ -473,5 +479,18 @@ def _execute_in(unique, directory: Path, executor, progress: bool, on_done, on_s
         # a finished task that the next run of the same tasks reuses
         kept = sum(task_path(directory, key).exists() for key in unique)
         raise Interrupted(kept, len(unique), directory) from err
-    return {key: lost[key] if key in lost else read_task(task_path(directory, key), task)
-            for key, task in unique.items()}
+    from tqdm.auto import tqdm
+
+    out = {}
+    with tqdm(total=len(unique), unit="file", desc="reading task results", delay=1.0, leave=False,
+              disable=not progress) as bar:
+        for key, task in unique.items():
+            # (not `lost.get(key) or ...`: a Dataset without data variables, a failure's, is false)
+            if key in lost:
+                out[key] = lost[key]
+            elif key in kept:
+                out[key] = kept[key]
+            else:
+                out[key] = read_task(task_path(directory, key), task)
+            bar.update()
+    return out
