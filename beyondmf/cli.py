@@ -92,7 +92,9 @@ def build_parser() -> argparse.ArgumentParser:
         "convergence_<observable>.png. Ctrl-C stops with exit status 130.",
     )
     r.add_argument("study", metavar="STUDY.toml", help="the study file")
-    r.add_argument("--out", required=True, metavar="DIR", help="directory for results.nc and the figures")
+    r.add_argument("--out", required=True, metavar="DIR",
+                   help="directory for results.nc and the figures (a DIR holding files of those names that "
+                   "beyondmf did not write, or used by another run, is refused)")
     r.add_argument("--no-plots", action="store_true",
                    help="write no figures (only results.nc, and tasks/ and convergence.nc where they apply)")
     r.add_argument("--quick", action="store_true",

@@ -152,3 +152,16 @@ def test_a_lock_taken_by_a_process_killed_with_sigkill_does_not_block_the_next_r
     with outdir.lock(tmp_path):
         pass
     assert not (tmp_path / outdir.LOCK).exists()
+
+
+def test_every_figure_the_command_draws_is_a_name_it_claims_and_removes():
+    """A new figure name must be claimed (a user's file of that name refused) and removed when stale."""
+    import inspect
+    import re
+
+    from beyondmf import cli, correction_plots, plotting
+
+    source = inspect.getsource(plotting) + inspect.getsource(correction_plots)
+    drawn = set(re.findall(r'"([a-z0-9_]+\.png)"', source))
+    assert drawn and drawn <= set(cli._OUR_FIGURES), drawn - set(cli._OUR_FIGURES)
+    assert {"results.nc", "convergence.nc", *cli._OUR_FIGURES} <= set(cli._OUR_FILES)
