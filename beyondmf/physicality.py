@@ -6,6 +6,8 @@ level that leaves these bounds has failed at that point, whatever the rest of it
 
 `check` compares each value with its bound, beyond
 
+- g2 only where there is light: the detector's intensity (the emission rate, for g2_total) above `DARK`
+  times the largest of the run and above 10⁻¹² (at t = 0 from the ground state g2 is 0/0);
 - for a deterministic level, a numerical tolerance: `POPULATION_TOL` for populations, `RELATIVE_TOL` times
   the largest magnitude of the observable in the run for rates and intensities, `G2_TOL` for g2 (a ratio
   of small numbers early in a run: its integration error is larger than that of the moments);
@@ -27,11 +29,13 @@ import numpy as np
 import xarray as xr
 from scipy.special import ndtri
 
-__all__ = ["check", "POPULATION_TOL", "RELATIVE_TOL", "G2_TOL", "FALSE_ALARM", "BOUNDS"]
+__all__ = ["check", "POPULATION_TOL", "RELATIVE_TOL", "G2_TOL", "DARK", "FALSE_ALARM", "BOUNDS"]
 
 POPULATION_TOL = 1e-6
 RELATIVE_TOL = 1e-6
 G2_TOL = 1e-3
+DARK = 1e-9
+DARK_ABSOLUTE = 1e-12  # photons per 1/Γ0 (per sr): rounding of a state with no light at all
 FALSE_ALARM = 0.01
 
 
@@ -61,6 +65,18 @@ def _tolerance(bound: _Bound, values: np.ndarray, ds: xr.Dataset) -> float:
     scale_of = "intensity" if bound.name.startswith("intensity") else bound.name
     scale = np.nanmax(np.abs(ds[scale_of].values)) if ds[scale_of].size else 0.0
     return RELATIVE_TOL * float(scale) if np.isfinite(scale) and scale > 0 else 1e-300
+
+
+def _lit(name: str, ds: xr.Dataset, shape) -> np.ndarray:
+    """Where a g2 is defined: its light (the detector's intensity, or the emission rate for g2_total) above
+    `DARK` times the largest of the run and above `DARK_ABSOLUTE`. With no light g2 is 0/0, and a level's
+    rounding gives any value."""
+    light = {"g2": "intensity", "g2_total": "emission_rate"}.get(name)
+    if light is None or light not in ds:
+        return np.ones(shape, dtype=bool)
+    lv = np.abs(np.asarray(ds[light].values, dtype=float))
+    top = np.nanmax(lv) if lv.size else 0.0
+    return np.broadcast_to(lv > max(DARK * top, DARK_ABSOLUTE), shape)
 
 
 def _where(da: xr.DataArray, flat: int) -> str:
@@ -96,8 +112,9 @@ def check(ds: xr.Dataset, stochastic: bool) -> tuple[list[str], str | None]:
             slack = tol + k * np.nan_to_num(np.asarray(err.values, dtype=float))
         else:
             k, slack = 0.0, np.full_like(x, tol)
-        below = np.where(np.isfinite(x), b.lower - slack - x, -np.inf)
-        above = (np.where(np.isfinite(x), x - slack - b.upper, -np.inf) if b.upper is not None
+        checked = np.isfinite(x) & _lit(b.name, ds, x.shape)
+        below = np.where(checked, b.lower - slack - x, -np.inf)
+        above = (np.where(checked, x - slack - b.upper, -np.inf) if b.upper is not None
                  else np.full_like(x, -np.inf))
         excess = np.maximum(below, above)
         if not np.any(excess > 0):

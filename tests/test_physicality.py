@@ -37,6 +37,14 @@ def test_deterministic_tolerance():
     assert "g2 -0.2" in text and "detector 'forward'" in text
 
 
+def test_g2_without_light_is_not_judged():
+    """At t = 0 from the ground state g2 is 0/0: a sampled level's rounding gave −2.7e16 ± 0 there."""
+    ds = _dataset(-2.7e16, g2_err=0.0)
+    ds["intensity"][:] = 1e-20
+    ds["emission_rate"] = ((), 1e-3)
+    assert physicality.check(ds, stochastic=True) == ([], None)
+
+
 def test_populations_above_one_and_below_zero():
     flagged, text = physicality.check(_dataset(1.0, excited=(1.01, -0.02)), stochastic=False)
     assert flagged == ["excited"]
