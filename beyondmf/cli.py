@@ -220,7 +220,7 @@ def _write_figures(make, out: Path) -> list[Path]:
 
 # The figures `beyondmf run` writes into DIR (convergence_<observable>.png by pattern).
 _OUR_FIGURES = ("emission.png", "intensity.png", "g2.png", "geometry.png", "values.png", "corrections.png",
-                "correction_map.png")
+                "correction_map.png", "correlations.png")
 _OUR_FILES = ("results.nc", "convergence.nc", *_OUR_FIGURES)
 _OUR_PATTERNS = ("convergence_*.png",)
 

@@ -284,6 +284,11 @@ def plot_all(ds: xr.Dataset, directory: str | Path) -> list[Path]:
     """Write emission.png, intensity.png, g2.png and geometry.png into ``directory``; returns their paths."""
     d = Path(directory)
     d.mkdir(parents=True, exist_ok=True)
+    if ds.attrs.get("calculation") == "correlations":  # two-time statistics (beyondmf.correlations)
+        from .twotime.plots import plot_correlations
+
+        return [plot_correlations(ds, d / "correlations.png", study_title(ds)),
+                plot_geometry(ds, d / "geometry.png")]
     return [
         plot_emission(ds, d / "emission.png"),
         plot_intensity(ds, d / "intensity.png"),

@@ -260,7 +260,9 @@ def _parse_detectors(table: dict, where: str) -> dict[str, Detector]:
 
 @dataclass(frozen=True)
 class Run:
-    """What to compute: ``calculation`` "evolve" (times t_start..t_end, ``points`` of them) or "steady"."""
+    """What to compute: ``calculation`` "evolve" (times t_start..t_end, ``points`` of them), "steady", or
+    "correlations" (two-time functions of the steady state: delays 0..delay_end, ``delay_points`` of them,
+    and the spectrum at ``frequency_points`` frequencies in ``frequency_range`` when that is given)."""
 
     calculation: str = "evolve"
     t_start: float = 0.0
@@ -268,20 +270,60 @@ class Run:
     points: int = 201
     initial: str | tuple[float, float, float] = "ground"
     seed: int | None = None
+    delay_end: float = 10.0
+    delay_points: int = 101
+    frequency_range: tuple[float, float] | None = None
+    frequency_points: int = 401
 
     def times(self) -> np.ndarray:
         return np.linspace(self.t_start, self.t_end, self.points)
 
+    def delays(self) -> np.ndarray:
+        return np.linspace(0.0, self.delay_end, self.delay_points)
+
+    def frequencies(self) -> np.ndarray | None:
+        if self.frequency_range is None:
+            return None
+        return np.linspace(*self.frequency_range, self.frequency_points)
+
 
 _EVOLVE_KEYS = ("t_start", "t_end", "points", "initial")
+_CORRELATION_KEYS = ("delay_end", "delay_points", "frequency_range", "frequency_points")
+
+
+def _parse_correlations(table: dict, where: str, seed) -> Run:
+    for k in _EVOLVE_KEYS:
+        if k in table:
+            raise StudyError(f"{where}.{k}: not used by calculation = 'correlations' (the steady state); "
+                             "remove it")
+    end = _number(table.get("delay_end", 10.0), f"{where}.delay_end", low=0.0, strict=True,
+                  what="a delay (1/Γ0) > 0")
+    points = _integer(table.get("delay_points", 101), f"{where}.delay_points", 1, "an integer ≥ 1")
+    rng = table.get("frequency_range")
+    if rng is not None:
+        if not (isinstance(rng, list) and len(rng) == 2 and all(_is_number(v) for v in rng)
+                and rng[0] < rng[1]):
+            raise _fail(f"{where}.frequency_range", "[lowest, highest] frequencies ν = ω − ω_laser (Γ0)", rng)
+        rng = (float(rng[0]), float(rng[1]))
+    elif "frequency_points" in table:
+        raise StudyError(f"{where}.frequency_points: needs frequency_range = [lowest, highest] (Γ0)")
+    fpoints = _integer(table.get("frequency_points", 401), f"{where}.frequency_points", 2, "an integer ≥ 2")
+    return Run(calculation="correlations", seed=seed, delay_end=end, delay_points=points,
+               frequency_range=rng, frequency_points=fpoints)
 
 
 def _parse_run(table: dict, where: str) -> Run:
-    _keys(table, ("calculation", *_EVOLVE_KEYS, "seed"), where)
-    calc = _choice(table.get("calculation", "evolve"), f"{where}.calculation", ("evolve", "steady"))
+    _keys(table, ("calculation", *_EVOLVE_KEYS, *_CORRELATION_KEYS, "seed"), where)
+    calc = _choice(table.get("calculation", "evolve"), f"{where}.calculation",
+                   ("evolve", "steady", "correlations"))
     seed = table.get("seed")
     if seed is not None:
         seed = _integer(seed, f"{where}.seed", 0, "a non-negative integer")
+    if calc == "correlations":
+        return _parse_correlations(table, where, seed)
+    for k in _CORRELATION_KEYS:
+        if k in table:
+            raise StudyError(f"{where}.{k}: used only by calculation = 'correlations'; remove it")
     if calc == "steady":
         for k in _EVOLVE_KEYS:
             if k in table:
@@ -491,8 +533,14 @@ def parse_table(raw: dict[str, Any], text: str = "", path: Path | None = None) -
             extra[name] = parsed
         else:
             fields[sec.field] = parsed
-    if fields["run"].calculation == "steady" and fields["drive"].windows is not None:
+    if fields["run"].calculation in ("steady", "correlations") and fields["drive"].windows is not None:
         raise StudyError("drive.windows: a steady state needs a constant drive; remove the windows")
+    if fields["run"].calculation == "correlations":
+        for name in ("sweep", "compare", "convergence"):
+            if name in raw:
+                raise StudyError(f"{name}: calculation = 'correlations' runs one model at its levels; "
+                                 f"[{name}] is not supported for it (remove [{name}], or run "
+                                 "beyondmf.correlations over the grid from Python)")
     study = Study(**fields, source=text, path=path, extra=extra)
     for check in _CHECKS:
         check(study, raw)
@@ -608,7 +656,14 @@ def run_study(
             on_level(name, "start", None)
         t0 = time.perf_counter()
         try:
-            if study.run.calculation == "steady":
+            if study.run.calculation == "correlations":
+                from .correlations import correlations
+
+                # meanfield has only the elastic line: it runs without delays and frequencies
+                elastic = name == "meanfield"
+                ds = correlations(model, name, None if elastic else study.run.delays(), detectors=detectors,
+                                  frequencies=None if elastic else study.run.frequencies(), **options)
+            elif study.run.calculation == "steady":
                 ds = steady(model, name, detectors=detectors, seed=seed, **options)
             else:
                 ds = evolve(model, name, study.run.times(), initial=study.run.initial, detectors=detectors,

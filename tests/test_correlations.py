@@ -293,19 +293,73 @@ def test_dicke_refuses_detectors_off_the_symmetric_space():
 def test_cumulant2_equals_exact_for_two_emitters():
     """Two emitters have no three-emitter moments: cumulant2 is exact for N = 2 (docs/cumulant2.md), and
     so is its regression (the tangent equations from the fixed-factor moments, docs/correlations.md):
-    g1 at every delay, the spectrum, and g1 at a reference time of the dynamics, against level exact."""
+    g1, g2, g2_total at every delay and the spectrum, in the steady state and at a reference time of the
+    dynamics, against level exact."""
     m = Model(positions=np.array([[0, 0, 0], [0.21, 0.05, 0.1]]), rabi=1.1, detuning=-0.3)
     det = {"forward": (0, 0, 1), "side": (0, 1, 0)}
     tau, freqs = np.linspace(0, 6, 13), np.linspace(-4, 4, 9)
-    with pytest.warns(UserWarning, match="g2"):
-        a = correlations(m, "cumulant2", tau, detectors=det, frequencies=freqs, **TIGHT)
-    b = correlations(m, "exact", tau, detectors=det, frequencies=freqs, **TIGHT)
-    assert np.max(np.abs(a.g1.values - b.g1.values)) < 1e-9
-    assert np.max(np.abs(a.spectrum.values - b.spectrum.values)) < 1e-9 * np.max(b.spectrum.values)
-    assert np.allclose(a.elastic_fraction.values, b.elastic_fraction.values, rtol=1e-10)
-    assert "g2" not in a and "g2_total" not in a
-    with pytest.warns(UserWarning, match="g2"):
-        a = correlations(m, "cumulant2", tau, detectors=det, at=1.5, **TIGHT)
-    b = correlations(m, "exact", tau, detectors=det, at=1.5, **TIGHT)
-    assert np.max(np.abs(a.g1.values - b.g1.values)) < 1e-9
-    assert np.max(np.abs(a.intensity_delayed.values - b.intensity_delayed.values)) < 1e-10
+    for at, fr in ((None, freqs), (1.5, None)):
+        a = correlations(m, "cumulant2", tau, detectors=det, frequencies=fr, at=at, **TIGHT)
+        b = correlations(m, "exact", tau, detectors=det, frequencies=fr, at=at, **TIGHT)
+        for name in ("g1", "g2", "g2_total", "intensity_delayed"):
+            assert np.max(np.abs(a[name].values - b[name].values)) < 1e-9, (name, at)
+        assert np.allclose(a.elastic_fraction.values, b.elastic_fraction.values, rtol=1e-10)
+        if fr is not None:
+            assert np.max(np.abs(a.spectrum.values - b.spectrum.values)) < 1e-9 * np.max(b.spectrum.values)
+
+
+_STUDY = """
+title = "one emitter"
+[geometry]
+kind = "points"
+positions = [[0, 0, 0]]
+[drive]
+rabi = 1.0
+[run]
+calculation = "correlations"
+delay_end = 6.0
+delay_points = 13
+frequency_range = [-4.0, 4.0]
+frequency_points = 9
+[levels.exact]
+[levels.meanfield]
+"""
+
+
+def test_study_file_calculation_and_figure(tmp_path):
+    """calculation = 'correlations' in a study file: exact gives Kimble–Mandel's g2(τ) (as above),
+    meanfield its elastic line (1/(1 + s) for one emitter, where mean field is exact); the figure."""
+    from beyondmf.study import parse_study, run_study
+    from beyondmf.twotime.plots import plot_correlations
+
+    ds = run_study(parse_study(_STUDY), keep_going=True)
+    assert ds.attrs["failures"] == []
+    tau = ds.delay.values
+    op = np.sqrt(1 - 1 / 16)
+    ref = 1 - np.exp(-0.75 * tau) * (np.cos(op * tau) + 0.75 / op * np.sin(op * tau))
+    assert np.max(np.abs(ds.g2.sel(level="exact", detector="forward").values - ref)) < 1e-5
+    assert np.allclose(ds.elastic_fraction.sel(level=["exact", "meanfield"]).values, 1 / 3, atol=1e-7)
+    assert np.all(np.isnan(ds.g2.sel(level="meanfield").values))
+    back = bm.load(bm.save(ds, tmp_path / "r.nc"))
+    np.testing.assert_array_equal(back.g1.values, ds.g1.values)
+    png = plot_correlations(ds, tmp_path / "c.png")
+    assert png.stat().st_size > 10_000
+
+
+@pytest.mark.parametrize("extra,match", [
+    ("t_end = 3.0\n", "run.t_end: not used"),
+    ("frequency_range = [1.0, -1.0]\n", "run.frequency_range"),
+    ("delay_end = -1.0\n", "run.delay_end"),
+])
+def test_study_file_refusals(extra, match):
+    from beyondmf.study import StudyError, parse_study
+
+    text = _STUDY.replace('calculation = "correlations"\n', 'calculation = "correlations"\n' + extra)
+    if "frequency_range = [1.0" in extra:
+        text = text.replace("frequency_range = [-4.0, 4.0]\n", "")
+    if "delay_end = -1" in extra:
+        text = text.replace("delay_end = 6.0\n", "")
+    with pytest.raises(StudyError, match=match):
+        parse_study(text)
+    with pytest.raises(StudyError, match="sweep"):
+        parse_study(_STUDY + '[sweep.grid]\n"drive.rabi" = [1.0, 2.0]\n')

@@ -16,8 +16,11 @@ detector (the moments of X† are ⟨O E⟩ − ⟨E⟩⟨O⟩). Derivation and 
 
 The spectrum is −Tr[E(J + iν)⁻¹X]/π with J = ∂f/∂y at the steady state, in one Krylov space
 (`_krylov`); a Ritz value with a positive real part means the closure's steady state is unstable, and is
-warned about. g2(τ) needs the moments of E X E† (four-emitter moments under the closure) and is not
-computed at this level.
+warned about.
+
+G2 starts from Δ = EρE† − ⟨E†E⟩ρ (Hermitian, trace zero), one real tangent per detector, whose moments
+are those of E·Y with Y = ρE† treated the same way (`_g2_tangent`); all light sums this over the decay
+modes of Γ. Then G2(τ) = ⟨E†E⟩(t)⟨E†E⟩(t + τ) + ⟨E†E⟩ of the tangent at τ.
 """
 
 from __future__ import annotations
@@ -38,7 +41,7 @@ from ._krylov import shifted_resolvent
 __all__ = ["OPTIONS", "SUPPORT", "check", "compute", "fixed_factor_moments"]
 
 OPTIONS = {**ODE_OPTIONS, "spectrum_tol": 1e-9, "krylov_max": 1500}
-SUPPORT = "g1 at every delay and the spectrum (linearised closure); g2(τ) not computed"
+SUPPORT = "g1, g2, g2_total at every delay and the spectrum (tangent equations of the closure)"
 
 _LEFT = {"m": "n", "n": "0", "1": "p", "p": "0"}  # σ⁺·x on one emitter
 _RIGHT = {"p": "n", "n": "0", "1": "m", "m": "0"}  # x·σ⁻ on one emitter
@@ -107,24 +110,63 @@ def fixed_factor_moments(moments, c, f):
     return (m1("m"), m1("n"), m2("p", "m"), m2("m", "m"), m2("n", "m"), m2("n", "n"))
 
 
-def _tangents(y, weights):
-    """Real tangents (2D, 5, N, N): the moments of H1 and H2 of X_d = ρE_d† − ⟨E_d†⟩ρ per detector."""
+def _g1_tangent(y, w):
+    """Real tangents (2, 5, N, N): the moments of H1 and H2 of X = ρE† − ⟨E†⟩ρ, E = Σ_j w_j σ_j⁻."""
     mom = unpack(y)
     beta, n, A, B, Z, D = mom
     base = (beta, n + 0j, A, B, Z, D + 0j)
+    left = fixed_factor_moments(mom, jnp.conj(w), "p")  # ⟨E† O⟩
+    right = fixed_factor_moments(mom, w, "m")  # ⟨O E⟩
+    e_dag, e = jnp.sum(jnp.conj(w * beta)), jnp.sum(w * beta)
+    mx = [lv - e_dag * b for lv, b in zip(left, base, strict=True)]
+    mxd = [rv - e * b for rv, b in zip(right, base, strict=True)]
     out = []
-    for w in weights:
-        left = fixed_factor_moments(mom, jnp.conj(w), "p")  # ⟨E† O⟩
-        right = fixed_factor_moments(mom, w, "m")  # ⟨O E⟩
-        e_dag, e = jnp.sum(jnp.conj(w * beta)), jnp.sum(w * beta)
-        mx = [lv - e_dag * b for lv, b in zip(left, base, strict=True)]
-        mxd = [rv - e * b for rv, b in zip(right, base, strict=True)]
-        h1 = [(a + b) / 2 for a, b in zip(mx, mxd, strict=True)]
-        h2 = [(a - b) / 2j for a, b in zip(mx, mxd, strict=True)]
-        for h in (h1, h2):
-            hb, hn, hA, hB, hZ, hD = h
-            out.append(pack(hb, hn.real, hA, hB, hZ, hD.real))
+    for h in ([(a + b) / 2 for a, b in zip(mx, mxd, strict=True)],
+              [(a - b) / 2j for a, b in zip(mx, mxd, strict=True)]):
+        hb, hn, hA, hB, hZ, hD = h
+        out.append(pack(hb, hn.real, hA, hB, hZ, hD.real))
     return jnp.stack(out)
+
+
+def _g2_tangent(y, w):
+    """Real tangent (5, N, N): the moments of Δ = EρE† − ⟨E†E⟩ρ.
+
+    EρE† = E Y with Y = ρE† = ⟨E†⟩ρ + X, so Tr(O EρE†) = ⟨O E⟩_Y = ⟨E†⟩ R(y) + R′(y)[δy_X], with
+    R(y) = ⟨O E⟩ of the state y (`fixed_factor_moments`, E on the right) and R′ its linearisation in the
+    direction of X's moments (H1 + i·H2): the closure applied to Y as to a first-order change of ρ.
+    """
+    beta, n, A, B, Z, D = unpack(y)
+    base = (beta, n + 0j, A, B, Z, D + 0j)
+    t1, t2 = _g1_tangent(y, w)
+
+    def R(z):
+        return fixed_factor_moments(unpack(z), w, "m")
+
+    r0, d1 = jax.jvp(R, (y,), (t1,))
+    _, d2 = jax.jvp(R, (y,), (t2,))
+    e_dag = jnp.sum(jnp.conj(w * beta))
+    moments = [e_dag * a + b + 1j * c for a, b, c in zip(r0, d1, d2, strict=True)]
+    p = _linear_pair_sum(jnp.conj(w)[:, None] * w[None, :], y)  # Tr(E ρ E†) = ⟨E†E⟩
+    hb, hn, hA, hB, hZ, hD = [m - p * b for m, b in zip(moments, base, strict=True)]
+    return pack(hb, hn.real, hA, hB, hZ, hD.real)
+
+
+def _tangents(y, weights, gamma):
+    """Every tangent the regression evolves: (3D + 1, 5, N, N) real.
+
+    [g1: H1, H2 per detector | G2: one per detector | G2_total: Σ_m over the decay modes of Γ]
+    Γ = U diag(γ) Uᵀ* gives Σ Γ_ij σ_j⁻ρσ_i⁺ = Σ_m L_m ρ L_m†, L_m = √γ_m Σ_j U_jm* σ_j⁻.
+    """
+    g1 = jax.vmap(lambda w: _g1_tangent(y, w))(weights).reshape((-1,) + y.shape)
+    g2 = jax.vmap(lambda w: _g2_tangent(y, w))(weights)
+    gam, U = jnp.linalg.eigh(gamma)
+    modes = (jnp.sqrt(jnp.clip(gam, 0.0, None))[:, None] * jnp.conj(U.T))  # row m: weights of L_m
+
+    def add(total, w):
+        return total + _g2_tangent(y, w), None
+
+    tot, _ = jax.lax.scan(add, jnp.zeros_like(y), modes)
+    return jnp.concatenate([g1, g2, tot[None]])
 
 
 @per_envelope
@@ -161,14 +203,24 @@ def _observe_joint(y, obs_args):
     return _observe(y, obs_args, True)
 
 
+def _linear_pair_sum(G, y):
+    """Σ_j G_jj n_j + Σ_{i≠j} G_ij A_ij of a (tangent) state: ⟨E†E⟩ (G = w*wᵀ) or P (G = Γ), linear."""
+    beta, n, A, B, Z, D = unpack(y)
+    return jnp.real(jnp.sum(jnp.real(jnp.diagonal(G)) * n) + jnp.sum(G * A))
+
+
 def _observe(y, obs_args, joint):
     weights, gamma = obs_args
-    idx = jnp.arange(y.shape[-1])
-    tangents = y[1:] if joint else y
-    dbeta = tangents[:, 2, idx, idx] + 1j * tangents[:, 3, idx, idx]  # (2D, N)
     nd = weights.shape[0]
+    tangents = y[1:] if joint else y
+    idx = jnp.arange(y.shape[-1])
+    t1 = tangents[: 2 * nd]
+    dbeta = t1[:, 2, idx, idx] + 1j * t1[:, 3, idx, idx]  # (2D, N)
     per = jnp.einsum("dj,dkj->dk", weights, dbeta.reshape(nd, 2, -1))
-    out = {"G1": per[:, 0] + 1j * per[:, 1]}
+    gd = jnp.conj(weights)[:, :, None] * weights[:, None, :]
+    out = {"G1": per[:, 0] + 1j * per[:, 1],
+           "dG2": jax.vmap(_linear_pair_sum)(gd, tangents[2 * nd: 3 * nd]),
+           "dG2_total": _linear_pair_sum(gamma, tangents[3 * nd])}
     if joint:
         beta, n, A, B, Z, D = unpack(y[0])
         out["field2"] = pair_field_moments(beta, n, A, B, Z, D, weights)[0]
@@ -183,8 +235,8 @@ def _trace_only(y, obs_args):
 
 def compute(model, probes, delays, at, initial, freqs, options) -> TwoTime:
     n, nd = model.n, len(probes.names)
-    require(8 * n**2 * 5 * (2 * nd + 1) * 10, f"the cumulant2 regression of {n} emitters")
-    solver = pick_solver(options["solver"], 5 * n**2 * (2 * nd + 1), model.stiffness())
+    require(8 * n**2 * 5 * (3 * nd + 2) * 10, f"the cumulant2 regression of {n} emitters")
+    solver = pick_solver(options["solver"], 5 * n**2 * (3 * nd + 2), model.stiffness())
     c2 = cumulant2_args(model)
     weights, gamma = jnp.asarray(probes.weights), jnp.asarray(model.Gamma)
     if at is None:
@@ -202,12 +254,14 @@ def compute(model, probes, delays, at, initial, freqs, options) -> TwoTime:
     f2 = np.asarray(pair_field_moments(beta, nn, A, B, Z, D, weights)[0])
     rate = float(pair_rate_moments(beta, nn, A, B, Z, D, gamma)[0])
     field1 = np.asarray(weights @ beta)
-    out = TwoTime(field2=f2, field1=field1, rate=rate, attrs={"solver": solver, **info})
-    tan = _tangents(y, weights)
+    f4 = np.asarray(pair_field_moments(beta, nn, A, B, Z, D, weights)[1])
+    r4 = float(pair_rate_moments(beta, nn, A, B, Z, D, gamma)[1])
+    # the level's own equal-time g2 (third and fourth cumulants zero), beside the regression's g2(0)
+    attrs = {"solver": solver, **info, "equal_time_g2": [float(v) for v in f4 / f2**2],
+             "equal_time_g2_total": r4 / rate**2}
+    out = TwoTime(field2=f2, field1=field1, rate=rate, attrs=attrs)
+    tan = jax.jit(_tangents)(y, weights, gamma)
     if delays is not None:
-        warn("cumulant2 gives g1(τ) and the spectrum; g2(τ) and g2_total(τ) are not computed at this level "
-             "(their start needs the closure's four-emitter moments of E ρ E†): use level 'exact' (small N) "
-             "or 'dicke' (symmetric models) for them")
         d = np.asarray(delays, dtype=float)
         t0 = 0.0 if at is None else at
         ts = t0 + (d if d[0] == 0 else np.concatenate([[0.0], d]))
@@ -216,17 +270,21 @@ def compute(model, probes, delays, at, initial, freqs, options) -> TwoTime:
             obs, _, stats = solve(_tangent_rhs(model.envelope), _observe_tangent, tan,
                                   {"c2": c2, "base": y}, (weights, gamma), ts, options, solver,
                                   what="cumulant2 regression")
-            g1 = np.asarray(obs["G1"])[keep:]
-            out.field2_tau = np.broadcast_to(f2, g1.shape)
-            out.G1 = np.conj(field1)[None, :] * field1[None, :] + g1
+            obs = {k: np.asarray(v)[keep:] for k, v in obs.items()}
+            out.field2_tau = np.broadcast_to(f2, obs["G1"].shape)
+            out.rate_tau = np.full(obs["G1"].shape[0], rate)
+            out.G1 = np.conj(field1)[None, :] * field1[None, :] + obs["G1"]
         else:
             joint = jnp.concatenate([y[None], tan])
             obs, _, stats = solve(_joint_rhs(model.envelope), _observe_joint, joint, {"c2": c2},
                                   (weights, gamma), ts, options, solver, jump_ts=model.envelope.jumps,
                                   what="cumulant2 regression")
             obs = {k: np.asarray(v)[keep:] for k, v in obs.items()}
-            out.field2_tau = obs["field2"]
+            out.field2_tau, out.rate_tau = obs["field2"], obs["rate"]
             out.G1 = np.conj(field1)[None, :] * obs["field1"] + obs["G1"]
+        # G2(τ) = ⟨E†E⟩(t)·⟨E†E⟩(t + τ) + the tangent's ⟨E†E⟩ (and the same with P for all light)
+        out.G2 = f2[None, :] * out.field2_tau + obs["dG2"]
+        out.G2_total = rate * out.rate_tau + obs["dG2_total"]
         out.attrs.update({f"regression_{k}": v for k, v in stats.items() if k != "solver"})
     if freqs is not None:
         out.inelastic, kinfo = _spectrum(model, y, tan, c2, probes, freqs, options)
@@ -249,10 +307,10 @@ def _spectrum(model, y, tan, c2, probes, freqs, options):
         return (np.asarray(jlin(jnp.asarray(v.real))) + 1j * np.asarray(jlin(jnp.asarray(v.imag)))).ravel()
 
     tan = np.asarray(tan)
-    spectra, dims, worst, unstable = [], [], 0.0, 0.0
+    spectra, dims, worst, unstable = [], [], 0.0, -np.inf
     idx = np.arange(n)
     for k, w in enumerate(probes.weights):
-        b = tan[2 * k] + 1j * tan[2 * k + 1]
+        b = tan[2 * k] + 1j * tan[2 * k + 1]  # the g1 tangents H1 + i·H2 of detector k
         u = np.zeros(shape, dtype=complex)
         u[2, idx, idx], u[3, idx, idx] = w, 1j * w  # Σ_j w_j δβ_j
         try:
