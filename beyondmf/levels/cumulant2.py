@@ -38,6 +38,7 @@ truncation can produce unphysical moments, reported per time in the diagnostics 
 
 from __future__ import annotations
 
+import dataclasses
 from typing import Any
 
 import jax.numpy as jnp
@@ -48,7 +49,8 @@ from ..estimators_pair import pair_field_moments, pair_rate_moments
 from ..integrate import ODE_OPTIONS, observe_once, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
-from .base import Level, Moments, Probes, register
+from . import _cumulant2_near as _near
+from .base import Level, Moments, OptionError, Probes, register
 
 __all__ = ["Cumulant2", "cumulant2_rhs", "cumulant2_args", "product_state", "unpack", "pack",
            "VIOLATION_TOL", "RHS_FLOPS"]
@@ -234,7 +236,18 @@ def _moments(obs, attrs) -> Moments:
 class Cumulant2(Level):
     name = "cumulant2"
     summary = "second-order cumulants (all pair correlations, third cumulants zero); exact for N = 2"
-    options = dict(ODE_OPTIONS)
+    options = {**ODE_OPTIONS, "pair_radius": None, "far_pairs": "first_order"}
+
+    def validate_options(self, options):
+        super().validate_options(options)
+        radius = options.get("pair_radius")
+        if radius is not None and not (isinstance(radius, int | float) and not isinstance(radius, bool)
+                                       and not np.isnan(radius) and radius > 0):
+            raise OptionError("pair_radius", "must be None or inf (every pair dynamical, the dense level) "
+                              f"or a positive distance in λ0, got {radius!r}")
+        if options.get("far_pairs", "first_order") not in _near.FAR_RULES:
+            raise OptionError("far_pairs", f"must be one of {', '.join(_near.FAR_RULES)}, got "
+                              f"{options.get('far_pairs')!r}")
 
     def _prepare(self, model: Model, probes: Probes, options):
         # 2 coupling matrices, the state (5 N²) and ~7 solver stages of it, and ~20 N² temporaries
@@ -244,6 +257,8 @@ class Cumulant2(Level):
         return solver, cumulant2_args(model), (jnp.asarray(probes.weights), gamma)
 
     def evolve(self, model, times, initial, probes, seed, options) -> Moments:
+        if _radius_of(options) is not None:
+            return _near_run(model, probes, options, times, initial)
         solver, args, obs_args = self._prepare(model, probes, options)
         obs, _, stats = solve(
             cumulant2_rhs(model.envelope), _observe, product_state(initial), args, obs_args, times, options,
@@ -252,6 +267,8 @@ class Cumulant2(Level):
         return _moments(obs, stats)
 
     def steady(self, model, probes, seed, options) -> Moments:
+        if _radius_of(options) is not None:
+            return _near_run(model, probes, options, None, None)
         solver, args, obs_args = self._prepare(model, probes, options)
         y0 = product_state(np.tile([0.0, 0.0, -1.0], (model.n, 1)))
         y, info = settle(
@@ -260,3 +277,82 @@ class Cumulant2(Level):
         )
         obs = observe_once(_observe, y, obs_args)
         return _moments(obs, {"solver": solver, **info})
+
+
+# ---- pair radius: near pairs dynamical, far pairs by a rule (beyondmf/levels/_cumulant2_near.py) ----
+
+FAR_SHARE_TOL = 0.5  # far-rule share of the pair correction of the emission rate above which a run warns
+
+
+def _make_near_observe(far: str):
+    def observe(y, obs_args):
+        weights, gamma, args, om, det = obs_args
+        beta, n, A, B, Z, D, fa, near_a = _near.dense_moments(y, args, far, om, det)
+        out = _observe(pack(beta, n, A, B, Z, D), (weights, gamma))
+        g_near = gamma[jnp.arange(n.shape[0])[:, None], args["nbr"]]
+        corr_near = jnp.real(jnp.sum(g_near * near_a))
+        corr_far = jnp.real(jnp.sum(gamma * fa))
+        out["far_share"] = jnp.abs(corr_far) / (jnp.abs(corr_far) + jnp.abs(corr_near) + 1e-300)
+        out["far_rate_correction"] = corr_far
+        return out
+    return observe
+
+
+_NEAR_OBSERVE = {far: _make_near_observe(far) for far in _near.FAR_RULES}
+_NEAR_DIAGNOSTICS = {
+    "far_share": "share of the pair correction of the emission rate carried by the far pairs (first-order "
+                 "rule, |far| / (|far| + |near|)); small when the pair radius is large enough",
+    "far_rate_correction": "Σ_far Γ_ij a_ij: the far pairs' correction to the emission rate by the "
+                           "first-order rule (counted only with far_pairs='first_order')",
+}
+
+
+def _radius_of(options):
+    """The pair radius of a run, None for the dense level (pair_radius None or inf)."""
+    radius = options.get("pair_radius")
+    return None if radius is None or np.isinf(radius) else float(radius)
+
+
+def _near_run(model: Model, probes: Probes, options, times, initial) -> Moments:
+    radius, far = _radius_of(options), options["far_pairs"]
+    if model.complex_couplings:
+        raise ValueError("cumulant2 with pair_radius needs real symmetric couplings J and Γ (the far-pair "
+                         "rule and the neighbour lists assume K_ij = K_ji); use pair_radius=None")
+    if not model.envelope.constant:
+        raise ValueError("cumulant2 with pair_radius needs a constant drive envelope (the far-pair rule of "
+                         "the observables uses the drive at the saved times); use pair_radius=None")
+    n = model.n
+    nbr, mask, _ = _near.neighbours(model.positions, radius)
+    k = nbr.shape[1]
+    dense_obs = 8 * n**2 * (4 * 2 + 30 * 2)  # dense moments and the estimator's temporaries at saved times
+    far_mats = 8 * n**2 * 3 if far == "first_order" else 0
+    require(8 * n * _near.near_size(k) * 10 + far_mats + 8 * n * k * k * 4 + dense_obs,
+            f"cumulant2 (pair_radius {radius:g}) for {n} emitters")
+    args = _near.near_args(model, radius, far)
+    solver = pick_solver(options["solver"], n * _near.near_size(k), model.stiffness())
+    om = jnp.asarray(model.rabi_sites)
+    obs_args = (jnp.asarray(probes.weights), jnp.asarray(model.Gamma), args, om, jnp.asarray(model.detuning))
+    rhs, observe = _near.NEAR_RHS[far](model.envelope), _NEAR_OBSERVE[far]
+    if times is None:
+        y0 = _near.near_product_state(np.tile([0.0, 0.0, -1.0], (n, 1)), nbr, mask)
+        y, info = settle(rhs, observe, y0, args, obs_args, options, solver, what="cumulant2 steady state")
+        obs = observe_once(observe, y, obs_args)
+        stats = {"solver": solver, **info}
+    else:
+        y0 = _near.near_product_state(initial, nbr, mask)
+        obs, _, stats = solve(rhs, observe, y0, args, obs_args, times, options, solver,
+                              jump_ts=model.envelope.jumps, what="cumulant2 evolution")
+    obs = {key: np.asarray(v) for key, v in obs.items()}
+    extra = {key: (("time",), obs.pop(key), {"units": "1" if key == "far_share" else "Γ0", "long_name": text})
+             for key, text in _NEAR_DIAGNOSTICS.items()}
+    share = float(np.max(extra["far_share"][1]))
+    stats = {**stats, "pair_radius": radius, "far_pairs": far, "near_partners_max": k,
+             "max_far_share": share}
+    if share > FAR_SHARE_TOL:
+        _note(
+            f"cumulant2 with pair_radius {radius:g}: the far pairs carry {share:.0%} of the pair correction "
+            f"of the emission rate (far_share; above {FAR_SHARE_TOL:.0%}), so the result depends on the "
+            "far-pair rule: raise pair_radius (or use pair_radius=None, every pair dynamical, at N³ cost)"
+        )
+    m = _moments(obs, stats)
+    return dataclasses.replace(m, diagnostics={**m.diagnostics, **extra})
