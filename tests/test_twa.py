@@ -159,6 +159,7 @@ def test_vacuum_control_measures_the_known_dense_cloud_error_and_warns():
         ds = evolve(m0, "twa", ts, seed=1, samples=50, chunk=50)
     v, e = ds.vacuum_excitation.values, ds.vacuum_excitation_stderr.values
     assert v[0] == 0.0 and np.any(np.abs(v) > 4 * e)
+    # "auto": as many control samples as the run, at least 64
     assert ds.attrs["vacuum_check"] == 64 and ds.attrs["max_vacuum_excitation"] == np.max(np.abs(v))
 
 
@@ -236,3 +237,44 @@ def test_small_dense_clusters_against_the_lindblad_equation(n, spacing):
     assert np.all(np.abs(tot - exc.sum(axis=1)) < 0.1 * n * exc.max() + 4 * tot_se)
     rate_se = ds.emission_rate_stderr.values
     assert np.all(np.abs(ds.emission_rate.values - rate) < 0.15 * rate.max() + 4 * rate_se)
+
+
+def _calibration_cluster(density, seed):
+    """A 6-emitter cluster of the calibration of docs/twa.md §9: a uniform ball of the given n·λ0³."""
+    from beyondmf.geometry import ellipsoid_cloud
+
+    return ellipsoid_cloud(6, (6 / (4 / 3 * np.pi * density)) ** (1 / 3), seed=seed, min_distance=0.08)
+
+
+def test_regime_warning_follows_the_calibration():
+    """Driven at s < 10 in a cluster with ‖iJ + ½Γ‖ ≥ 0.25 (n·λ0³ = 8, seed 11: 0.54) twa warns and names the
+    level to compare with; at Ω = 3 (s = 18), where the calibration found it within 0.7 %, it does not."""
+    from beyondmf.levels.twa import TRUSTED_COUPLING
+
+    pos = _calibration_cluster(8.0, 11)
+    weak = Model(positions=pos, dipole=(1, 0, 0), rabi=1.0)
+    assert weak.coupling_norm() >= TRUSTED_COUPLING
+    with pytest.warns(UserWarning, match="at this coupling strength .* compare with 'cumulant2'"):
+        ds = evolve(weak, "twa", [0.0, 0.5], seed=2, samples=8, chunk=8, vacuum_check=0)
+    assert ds.attrs["coupling_norm"] == pytest.approx(weak.coupling_norm())
+    strong = Model(positions=pos, dipole=(1, 0, 0), rabi=3.0)
+    ds = evolve(strong, "twa", [0.0, 0.5], seed=2, samples=8, chunk=8, vacuum_check=0)
+    assert not any("coupling strength" in w for w in ds.attrs["warnings"])
+
+
+@pytest.mark.slow
+def test_calibration_points_are_reproduced_against_exact():
+    """Two points of the calibration (docs/twa.md §9), steady states against the exact density matrix:
+    n·λ0³ = 8, seed 11, Ω = 1: forward intensity off by more than 5 % and warned; Ω = 3: within 1 % and no
+    regime warning."""
+    pos = _calibration_cluster(8.0, 11)
+    det = {"forward": (0, 0, 1)}
+    for rabi, wrong in ((1.0, True), (3.0, False)):
+        m = Model(positions=pos, dipole=(1, 0, 0), rabi=rabi)
+        ex = steady(m, "exact", detectors=det)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            ds = steady(m, "twa", detectors=det, seed=5)
+        err = abs(float(ds.intensity[0]) / float(ex.intensity[0]) - 1)
+        warned = any("coupling strength" in w for w in ds.attrs["warnings"])
+        assert (err > 0.05) == wrong and warned == wrong, (rabi, err, ds.attrs["warnings"])
