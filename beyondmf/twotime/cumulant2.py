@@ -169,6 +169,9 @@ def _tangents(y, weights, gamma):
     return jnp.concatenate([g1, g2, tot[None]])
 
 
+_tangents_jit = jax.jit(_tangents)
+
+
 @per_envelope
 def _tangent_rhs(envelope: Envelope):
     """The tangent equations about a fixed base state (the steady state, in args["base"])."""
@@ -260,7 +263,7 @@ def compute(model, probes, delays, at, initial, freqs, options) -> TwoTime:
     attrs = {"solver": solver, **info, "equal_time_g2": [float(v) for v in f4 / f2**2],
              "equal_time_g2_total": r4 / rate**2}
     out = TwoTime(field2=f2, field1=field1, rate=rate, attrs=attrs)
-    tan = jax.jit(_tangents)(y, weights, gamma)
+    tan = _tangents_jit(y, weights, gamma)
     if delays is not None:
         d = np.asarray(delays, dtype=float)
         t0 = 0.0 if at is None else at
@@ -292,19 +295,32 @@ def compute(model, probes, delays, at, initial, freqs, options) -> TwoTime:
     return out
 
 
+@per_envelope
+def _jacobian_product(envelope: Envelope):
+    """(∂f/∂y)(y)·v for a batch of real v, compiled once per envelope and shape (the model is an argument)."""
+    f = cumulant2_rhs(envelope)
+
+    @jax.jit
+    def jvp(y, vs, c2):
+        _, lin = jax.linearize(lambda z: f(0.0, z, c2), y)
+        return jax.vmap(lin)(vs)
+
+    return jvp
+
+
 def _spectrum(model, y, tan, c2, probes, freqs, options):
     n = model.n
     krylov = int(options["krylov_max"])
     require(16.0 * 5 * n**2 * (krylov + 1), f"the cumulant2 spectrum of {n} emitters (Krylov basis of up to "
             f"{krylov} vectors; lower krylov_max)")
-    f = cumulant2_rhs(model.envelope)
-    _, lin = jax.linearize(lambda z: f(0.0, z, c2), y)
-    jlin = jax.jit(lambda v: lin(v))
+    jvp = _jacobian_product(model.envelope)
     shape = y.shape
 
     def matvec(v):  # the complex-linear extension of the real Jacobian
         v = v.reshape(shape)
-        return (np.asarray(jlin(jnp.asarray(v.real))) + 1j * np.asarray(jlin(jnp.asarray(v.imag)))).ravel()
+        pair = jnp.asarray(np.stack([v.real, v.imag]))
+        out = np.asarray(jvp(y, pair, c2))
+        return (out[0] + 1j * out[1]).ravel()
 
     tan = np.asarray(tan)
     spectra, dims, worst, unstable = [], [], 0.0, -np.inf

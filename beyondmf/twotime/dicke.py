@@ -102,6 +102,20 @@ def _state(model, probes, at, initial, options):
     return np.asarray(y[0] + 1j * y[1]), solver, args, {f"state_{k}": v for k, v in stats.items()}
 
 
+@per_envelope
+def _apply_flat(envelope: Envelope):
+    """𝓛 on a flat complex vector, compiled once per envelope and size."""
+    rhs = dicke_rhs(envelope)
+
+    @jax.jit
+    def apply(v, args):
+        m1 = args["k"].shape[0]
+        r = rhs(0.0, jnp.stack([v.real, v.imag]).reshape(2, m1, m1), args)
+        return (r[0] + 1j * r[1]).reshape(-1)
+
+    return apply
+
+
 def compute(model, probes, delays, at, initial, freqs, options) -> TwoTime:
     n = model.n
     rho, solver, args, info = _state(model, probes, at, initial, options)
@@ -128,9 +142,7 @@ def compute(model, probes, delays, at, initial, freqs, options) -> TwoTime:
         out.attrs.update({f"regression_{k}": v for k, v in stats.items() if k != "solver"})
     if freqs is not None:
         m1 = n + 1
-        rhs = dicke_rhs(model.envelope)
-        apply = jax.jit(lambda v, a: (lambda r: (r[0] + 1j * r[1]).reshape(-1))(
-            rhs(0.0, jnp.stack([v.real, v.imag]).reshape(2, m1, m1), a)))
+        apply = _apply_flat(model.envelope)
         flat_rho, diag = rho.reshape(-1), np.arange(m1) * (m1 + 1)
 
         def matvec(v):  # 𝓛 − |ρ⟩⟨1| (as at level exact)

@@ -164,10 +164,17 @@ def compute(model: Model, probes, delays, at, initial, freqs, options) -> TwoTim
     return out
 
 
+@jax.jit
+def _apply_flat(v, args):
+    """𝓛 on a flat vector (constant drive), compiled once per size."""
+    dim = args["tab"]["up"].shape[1]
+    return general_lindblad(v.reshape(dim, dim), args, 1.0).reshape(-1)
+
+
 def _spectrum(model, rho, x1, field1, probes, args, freqs, options):
     """S_d(ν) = (1/π) Re F_d(ν), F_d = −Tr[E_d (𝓛 + iν)⁻¹ (ρE_d† − ⟨E_d†⟩ρ)] (module docstring)."""
     dim = 2**model.n
-    apply = jax.jit(lambda v, a: general_lindblad(v.reshape(dim, dim), a, 1.0).reshape(-1))
+    apply = _apply_flat
 
     rho = np.asarray(rho)
     flat_rho = rho.reshape(-1)
