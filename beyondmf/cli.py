@@ -200,7 +200,7 @@ def _write_figures(make, out: Path) -> list[Path]:
     """Call ``make(directory)`` (it writes figures there and returns their paths) on a temporary directory
     inside ``out``, then move each figure into ``out``: a figure appears whole or not at all, even if the
     command is stopped while drawing it."""
-    from .outdir import NotOurFiles, is_ours, record
+    from .outdir import NotOurFiles, is_ours, place
 
     tmp = Path(tempfile.mkdtemp(prefix=_FIGURES_TMP, dir=out))
     try:
@@ -209,8 +209,7 @@ def _write_figures(make, out: Path) -> list[Path]:
             dest = out / Path(path).name
             if os.path.lexists(dest) and not is_ours(out, dest.name):  # made by someone during the run
                 raise NotOurFiles(out, [dest.name])
-            os.replace(path, dest)
-            record(dest)
+            place(path, dest)  # recorded as ours, then renamed into place
             written.append(dest)
             _say(f"wrote {dest}")
         return written
@@ -278,9 +277,8 @@ def _cmd_run(args) -> int:
 
 def _run_one_model(study, out: Path, args, t0: float) -> int:
     """A study of one model, in this process: every level, then results.nc and the figures."""
-    from .outdir import record
+    from .outdir import save_ours
     from .plotting import plot_all
-    from .results import save
     from .study import run_study
 
     def on_level(name: str, stage: str, seconds: float | None) -> None:
@@ -295,8 +293,7 @@ def _run_one_model(study, out: Path, args, t0: float) -> int:
     try:
         # a level that cannot do this model does not cost the others their results
         ds = run_study(study, on_level=on_level, keep_going=True)
-        path = save(ds, out / "results.nc")
-        record(path)
+        path = save_ours(ds, out / "results.nc")
     except KeyboardInterrupt:
         raise _Stopped("nothing was written (a study of one model keeps no partial results: results.nc "
                        "is written once every level has finished); run the same command again to start "
@@ -400,8 +397,7 @@ def _report_convergence(study, ds, out: Path, plots: bool) -> None:
     import xarray as xr
 
     from .convergence import figure
-    from .outdir import record
-    from .results import save
+    from .outdir import save_ours
     from .sweep import check_convergence
 
     tables = check_convergence(study, ds)
@@ -409,7 +405,7 @@ def _report_convergence(study, ds, out: Path, plots: bool) -> None:
     # the attributes the tables share; each observable's last bound is the last entry of its X_bound
     merged.attrs.update({k: v for k, v in next(iter(tables.values())).attrs.items() if k != "last_bound"})
     merged.attrs["observables"] = list(tables)
-    record(save(merged, out / "convergence.nc"))
+    save_ours(merged, out / "convergence.nc")
     _say(f"wrote {out / 'convergence.nc'}")
     for obs, table in tables.items():
         state = "converged" if bool(table["converged"]) else "NOT converged"

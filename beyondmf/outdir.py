@@ -26,7 +26,7 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 __all__ = ["MANIFEST", "LOCK", "OutputDirError", "NotOurFiles", "DirectoryInUse", "claim", "record",
-           "is_ours", "remove_ours", "lock"]
+           "place", "save_ours", "is_ours", "remove_ours", "lock"]
 
 MANIFEST = ".beyondmf-written.json"
 LOCK = ".beyondmf-lock"
@@ -99,8 +99,13 @@ def _entry(path: Path) -> dict:
 
 
 def _matches(path: Path, entry: dict | None) -> bool:
+    """Whether ``path`` is the file of the record ``entry``, or of the one it replaces (``previous``: a
+    run stopped between recording a file and renaming it into place left either)."""
     if entry is None:
         return False
+    previous = entry.get("previous")
+    if isinstance(previous, dict) and _matches(path, {k: v for k, v in previous.items() if k != "previous"}):
+        return True
     try:
         st = path.lstat()
         if not path.is_file() or path.is_symlink() or st.st_size != entry["size"]:
@@ -139,6 +144,37 @@ def record(path: str | os.PathLike) -> None:
     files = _read(path.parent)
     files[path.name] = _entry(path)
     _write(path.parent, files)
+
+
+def place(tmp: str | os.PathLike, dest: str | os.PathLike) -> Path:
+    """Move the file beyondmf wrote at ``tmp`` to ``dest`` (same directory) and record it, so that a kill
+    at any moment leaves ``dest`` recorded as ours: the new file is recorded first, beside the one it
+    replaces, then renamed into place (a rename keeps its inode and times), then the old entry dropped."""
+    tmp, dest = Path(tmp), Path(dest)
+    files = _read(dest.parent)
+    new = _entry(tmp)
+    old = files.get(dest.name)
+    files[dest.name] = {**new, "previous": old if _matches(dest, old) else None}
+    _write(dest.parent, files)
+    os.replace(tmp, dest)
+    files[dest.name] = new
+    _write(dest.parent, files)
+    return dest
+
+
+def save_ours(ds, path: str | os.PathLike) -> Path:
+    """`beyondmf.save` ``ds`` to ``path`` and record it (`place`): written whole under a temporary name
+    that a later run removes if this one is killed (`beyondmf.results.remove_stale_parts`)."""
+    from .results import _create_part, save
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = _create_part(path)
+    try:
+        save(ds, tmp)
+        return place(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
 
 
 def remove_ours(directory: str | os.PathLike, name: str) -> bool:
@@ -208,6 +244,15 @@ def _acquire(directory: Path) -> None:
                 return
             except FileExistsError:
                 pass
+            except OSError:  # a file system without hard links: create it exclusively, then fill it
+                try:
+                    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
+                except FileExistsError:
+                    pass
+                else:
+                    with os.fdopen(fd, "w", encoding="utf-8") as fh:
+                        fh.write(json.dumps(mine) + "\n")
+                    return
         finally:
             tmp.unlink(missing_ok=True)
         try:
@@ -218,9 +263,12 @@ def _acquire(directory: Path) -> None:
         except FileNotFoundError:
             continue  # released meanwhile: try again
         except (OSError, ValueError):
-            if time.time() - path.stat().st_mtime < 5:  # being written (another beyondmf's first moment)
-                time.sleep(0.2)
-                continue
+            with contextlib.suppress(OSError):
+                if time.time() - path.stat().st_mtime < 5:  # being written (another run's first moment)
+                    time.sleep(0.2)
+                    continue
+            if not path.exists():
+                continue  # released meanwhile
             info = {}
         if info and not _stale(info):
             raise DirectoryInUse(

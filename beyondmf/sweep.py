@@ -1065,21 +1065,19 @@ def run_sweep(
     `beyondmf.compare.summarize` reduction (level dimension, corrections, verdicts) plus the
     per-realization values as ``X_realizations``.
     """
-    from .outdir import claim, lock, record
+    from .outdir import claim, lock
 
     out = Path(out)
     check_plan(study, large=True)  # the memory of the results (the task count was checked when read)
     with lock(out):
         claim(out, ["results.nc"])
-        ds = _run_sweep_in(study, out, executor, progress, on_done, on_ready, on_start)
-        record(out / "results.nc")
-    return ds
+        return _run_sweep_in(study, out, executor, progress, on_done, on_ready, on_start)
 
 
 def _run_sweep_in(study, out: Path, executor, progress, on_done, on_ready, on_start) -> xr.Dataset:
     from .compare import OBSERVABLES, summarize
     from .executors import execute
-    from .results import save
+    from .outdir import save_ours
 
     index, labels, k, dims, params = study_tasks(study)
     cmp: CompareSpec | None = study.extra.get("compare")
@@ -1128,5 +1126,5 @@ def _run_sweep_in(study, out: Path, executor, progress, on_done, on_ready, on_st
         failures=per.attrs.get("failures", []),
         warnings=per.attrs.get("warnings", []),
     )
-    save(ds, out / "results.nc")
+    save_ours(ds, out / "results.nc")
     return ds

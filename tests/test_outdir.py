@@ -165,3 +165,37 @@ def test_every_figure_the_command_draws_is_a_name_it_claims_and_removes():
     drawn = set(re.findall(r'"([a-z0-9_]+\.png)"', source))
     assert drawn and drawn <= set(cli._OUR_FIGURES), drawn - set(cli._OUR_FIGURES)
     assert {"results.nc", "convergence.nc", *cli._OUR_FIGURES} <= set(cli._OUR_FILES)
+
+
+def test_a_run_stopped_while_it_replaces_a_file_of_ours_leaves_it_ours(tmp_path, monkeypatch):
+    """results.nc is recorded before it is renamed into place: stopped before the rename (the old file
+    stays) or after it (the new one is there), the next run still knows the file as its own."""
+    dest = tmp_path / "results.nc"
+    dest.write_bytes(b"the first run's results")
+    outdir.record(dest)
+
+    def stop(*args):
+        raise KeyboardInterrupt
+
+    new = tmp_path / "new.part"
+    new.write_bytes(b"the second run's results, longer")
+    monkeypatch.setattr(outdir.os, "replace", stop)  # stopped between recording and renaming
+    with pytest.raises(KeyboardInterrupt):
+        outdir.place(new, dest)
+    monkeypatch.undo()
+    assert dest.read_bytes() == b"the first run's results" and outdir.is_ours(tmp_path, "results.nc")
+    writes = []
+    real = outdir._write
+
+    def stop_at_the_second(directory, files):
+        writes.append(1)
+        if len(writes) == 2:
+            raise KeyboardInterrupt  # stopped after the rename, before the old entry was dropped
+        real(directory, files)
+
+    monkeypatch.setattr(outdir, "_write", stop_at_the_second)
+    with pytest.raises(KeyboardInterrupt):
+        outdir.place(new, dest)
+    monkeypatch.undo()
+    assert dest.read_bytes() == b"the second run's results, longer" and outdir.is_ours(tmp_path, "results.nc")
+    outdir.claim(tmp_path, ["results.nc"])  # no refusal
