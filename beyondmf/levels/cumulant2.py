@@ -29,6 +29,10 @@ evaluation); everything else is O(N²). The state is one real (5, N, N) array: A
 (its symmetric and antisymmetric parts), B as triu(Re B) + tril(Im B), Re Z, Im Z and D, with n, Re β
 and Im β on the otherwise unused diagonals (see `unpack`): 5N² numbers, O(N²) memory.
 
+Option ``pair_radius`` (λ0): pairs closer than it keep these equations in neighbour lists, farther pairs
+follow the first-order rule of `_cumulant2_near` (``far_pairs="first_order"``) or are dropped (``"drop"``);
+None (the default) or inf is this dense level. Diagnostics ``far_share`` and ``far_rate_correction``.
+
 Method: H. Kramer and H. Ritsch, Eur. Phys. J. D 69, 282 (2015); F. Robicheaux and D. A. Suresh,
 Phys. Rev. A 104, 023702 (2021). Exact for N = 2 (no three-emitter moments exist). Trustworthy where
 three-body correlations are weak: moderate densities and drives; in dense, strongly driven clouds the
@@ -257,7 +261,7 @@ class Cumulant2(Level):
         return solver, cumulant2_args(model), (jnp.asarray(probes.weights), gamma)
 
     def evolve(self, model, times, initial, probes, seed, options) -> Moments:
-        if _radius_of(options) is not None:
+        if _radius_of(options, model) is not None:
             return _near_run(model, probes, options, times, initial)
         solver, args, obs_args = self._prepare(model, probes, options)
         obs, _, stats = solve(
@@ -267,7 +271,7 @@ class Cumulant2(Level):
         return _moments(obs, stats)
 
     def steady(self, model, probes, seed, options) -> Moments:
-        if _radius_of(options) is not None:
+        if _radius_of(options, model) is not None:
             return _near_run(model, probes, options, None, None)
         solver, args, obs_args = self._prepare(model, probes, options)
         y0 = product_state(np.tile([0.0, 0.0, -1.0], (model.n, 1)))
@@ -281,7 +285,8 @@ class Cumulant2(Level):
 
 # ---- pair radius: near pairs dynamical, far pairs by a rule (beyondmf/levels/_cumulant2_near.py) ----
 
-FAR_SHARE_TOL = 0.5  # far-rule share of the pair correction of the emission rate above which a run warns
+FAR_SHARE_TOL = 0.5  # far-rule share of the pair correction of the emission rate above which a run warns,
+FAR_RATE_TOL = 0.005  # if the far correction is also at least this fraction of the emission rate
 
 
 def _make_near_observe(far: str):
@@ -307,10 +312,18 @@ _NEAR_DIAGNOSTICS = {
 }
 
 
-def _radius_of(options):
-    """The pair radius of a run, None for the dense level (pair_radius None or inf)."""
+def _radius_of(options, model: Model | None = None):
+    """The pair radius of a run, None for the dense level: pair_radius None or inf, or (given the model) a
+    radius at least the diagonal of the cloud's bounding box, so that every pair is near (the same result,
+    tested to 1e-11, at the dense level's cost; study files cannot hold None or inf in a grid)."""
     radius = options.get("pair_radius")
-    return None if radius is None or np.isinf(radius) else float(radius)
+    if radius is None or np.isinf(radius):
+        return None
+    if model is not None:
+        pos = np.asarray(model.positions)
+        if radius >= float(np.linalg.norm(pos.max(axis=0) - pos.min(axis=0))):
+            return None
+    return float(radius)
 
 
 def _near_run(model: Model, probes: Probes, options, times, initial) -> Moments:
@@ -346,13 +359,16 @@ def _near_run(model: Model, probes: Probes, options, times, initial) -> Moments:
     extra = {key: (("time",), obs.pop(key), {"units": "1" if key == "far_share" else "Γ0", "long_name": text})
              for key, text in _NEAR_DIAGNOSTICS.items()}
     share = float(np.max(extra["far_share"][1]))
+    rate = np.abs(obs["rate"])
+    far_rel = float(np.max(np.abs(extra["far_rate_correction"][1]) / np.where(rate > 0, rate, np.inf)))
     stats = {**stats, "pair_radius": radius, "far_pairs": far, "near_partners_max": k,
-             "max_far_share": share}
-    if share > FAR_SHARE_TOL:
+             "max_far_share": share, "max_far_rate_fraction": far_rel}
+    if share > FAR_SHARE_TOL and far_rel > FAR_RATE_TOL:
         _note(
             f"cumulant2 with pair_radius {radius:g}: the far pairs carry {share:.0%} of the pair correction "
-            f"of the emission rate (far_share; above {FAR_SHARE_TOL:.0%}), so the result depends on the "
-            "far-pair rule: raise pair_radius (or use pair_radius=None, every pair dynamical, at N³ cost)"
+            f"of the emission rate (far_share; above {FAR_SHARE_TOL:.0%}), {far_rel:.1%} of the rate, so the "
+            "result depends on the far-pair rule: raise pair_radius (or use pair_radius=None, every pair "
+            "dynamical, at N³ cost)"
         )
     m = _moments(obs, stats)
     return dataclasses.replace(m, diagnostics={**m.diagnostics, **extra})
