@@ -145,6 +145,7 @@ def evolve(
         raise ValueError("times must be a non-empty, finite, strictly increasing sequence")
     bloch = initial_bloch(model, initial)
     probes = Probes.build(model, _detectors(model, detectors))
+    _check_results_size(model, lvl, len(ts), len(probes.names))
     lvl.check(model)
     seed = _seed(lvl, seed)
     named = isinstance(initial, str)
@@ -159,6 +160,17 @@ def evolve(
         ds["initial_bloch"] = (("atom", "axis"), bloch,
                                {"units": "1", "long_name": "initial Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩)"})
     return ds
+
+
+def _check_results_size(model: Model, lvl, points: int, detectors: int) -> None:
+    """MemoryError, before the level allocates anything, when the results at ``points`` report times
+    would not fit in free memory (`beyondmf.study.results_bytes`, one level)."""
+    from .memory import require
+    from .study import results_bytes
+
+    need = results_bytes(model.n, points, detectors, 1, lvl.stochastic)
+    require(need, f"the results of {model.n:,} emitters at {points:,} report times",
+            hint="ask for fewer report times (or fewer emitters), or use a larger machine")
 
 
 def _with_inputs(model: Model, ds: xr.Dataset) -> xr.Dataset:

@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 import os
 
-__all__ = ["available_bytes", "require", "size_text"]
+__all__ = ["available_bytes", "require", "size_text", "as_memory_error"]
 
 _DEFAULT_HINT = ("use fewer emitters (for a sampling level, a smaller chunk of samples), or a larger "
                  "machine")
@@ -41,6 +41,19 @@ def size_text(nbytes: float) -> str:
         k += 1
     value = float(nbytes) / 1024**k
     return f"{value:.3g} {units[k]}" if value < 1000 else f"{value:,.0f} {units[k]}"
+
+
+def as_memory_error(err: BaseException) -> MemoryError | None:
+    """``err`` as a MemoryError when it is one or an allocation that JAX/XLA could not make
+    (RESOURCE_EXHAUSTED), None for anything else."""
+    if isinstance(err, MemoryError):
+        return err
+    names = {c.__name__ for c in type(err).__mro__}
+    if names & {"XlaRuntimeError", "JaxRuntimeError"} and "RESOURCE_EXHAUSTED" in str(err):
+        first = str(err).strip().splitlines()[0] if str(err).strip() else "RESOURCE_EXHAUSTED"
+        return MemoryError(f"out of memory while computing ({first}); use fewer emitters, report times or "
+                           "samples, or a larger machine")
+    return None
 
 
 def require(nbytes: float, what: str, fraction: float = 0.9, hint: str = _DEFAULT_HINT) -> None:

@@ -668,7 +668,16 @@ def run_study(
             else:
                 ds = evolve(model, name, study.run.times(), initial=study.run.initial, detectors=detectors,
                             seed=seed, **options)
-        except _LEVEL_FAILURES as err:
+        except Exception as err:
+            from .memory import as_memory_error
+
+            oom = as_memory_error(err)  # an XLA allocation failure is a MemoryError like any other
+            if oom is None and not isinstance(err, _LEVEL_FAILURES):
+                raise
+            if oom is not None and oom is not err:
+                err = oom
+                if not keep_going:
+                    raise oom from None
             if not keep_going:
                 raise
             first_error = first_error or err

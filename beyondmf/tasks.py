@@ -249,9 +249,9 @@ def failure_kind(err: BaseException) -> str | None:
     propagates). A memory refusal or an allocation that failed depends on what else the machine runs;
     ValueError (a level refusing the model or an option) and SolveError (the solver gave up) do not."""
     from .integrate import SolveError
+    from .memory import as_memory_error
 
-    if isinstance(err, MemoryError) or (type(err).__name__ == "XlaRuntimeError"
-                                        and "RESOURCE_EXHAUSTED" in str(err)):
+    if as_memory_error(err) is not None:
         return MACHINE
     if isinstance(err, ValueError | SolveError):
         return INPUT
@@ -286,6 +286,7 @@ def run_task(task: Mapping[str, Any], directory: str | Path | None = None) -> tu
     state (``task_failure = "machine"``): its file says so, and the next run computes the task again.
     Returns (key, status, seconds).
     """
+    from .memory import as_memory_error
     from .results import save
 
     start = time.perf_counter()
@@ -296,6 +297,7 @@ def run_task(task: Mapping[str, Any], directory: str | Path | None = None) -> tu
         kind = failure_kind(err)
         if kind is None:
             raise
+        err = as_memory_error(err) or err  # an XLA allocation failure reads as the MemoryError it is
         ds = xr.Dataset(attrs={"level": task["level"], "error": f"{type(err).__name__}: {err}"})
         status = "failed"
     seconds = time.perf_counter() - start

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import textwrap
 
+import numpy as np
 import pytest
 
 import beyondmf as bm
@@ -113,3 +114,26 @@ def test_a_large_grid_says_what_it_is_doing_while_it_plans(tmp_path, capsys, mon
     sweep.study_tasks(sweep.read_study(path))
     err = capsys.readouterr().err
     assert "checking grid points" in err and "building tasks" in err
+
+
+def test_evolve_refuses_report_times_beyond_free_memory_before_the_level_allocates(monkeypatch):
+    """Without the check, 10⁷ report times of 2000 emitters reached JAX, which failed allocating 320 GB."""
+    model = bm.Model(bm.geometry.line_array(2, 0.3), rabi=1.0)
+    monkeypatch.setattr(bm.memory, "available_bytes", lambda: 2**20)  # pretend 1 MiB is free
+    with pytest.raises(MemoryError, match=r"the results of 2 emitters at 100,000 report times: about .* "
+                                          r"needed, but this machine has 1 MiB free"):
+        bm.evolve(model, "meanfield", np.linspace(0, 1, 10**5))
+
+
+def test_an_allocation_that_xla_could_not_make_is_a_memory_failure_of_the_machine():
+    from beyondmf.memory import as_memory_error
+    from beyondmf.tasks import MACHINE, failure_kind
+
+    class JaxRuntimeError(RuntimeError):  # the name jax gives it (jax.errors.JaxRuntimeError)
+        pass
+
+    err = JaxRuntimeError("RESOURCE_EXHAUSTED: Out of memory allocating 320000000000 bytes.")
+    assert isinstance(as_memory_error(err), MemoryError) and failure_kind(err) == MACHINE
+    assert "RESOURCE_EXHAUSTED: Out of memory allocating 320000000000 bytes." in str(as_memory_error(err))
+    assert as_memory_error(JaxRuntimeError("INVALID_ARGUMENT")) is None
+    assert failure_kind(TypeError("a bug")) is None  # propagates: not a failure of the task
