@@ -11,6 +11,7 @@ import xarray as xr
 from . import physicality
 from ._notes import collecting
 from ._notes import warn as _note
+from .levels import _regimes
 from .levels.base import Level, Probes, get_level, is_count
 from .model import Model
 from .observables import assemble
@@ -153,7 +154,7 @@ def evolve(
     with collecting() as said:  # the level's warnings about this run, kept in the result (beyondmf._notes)
         moments = lvl.evolve(model, ts, bloch, probes, seed, opts)
         attrs = _attrs(model, lvl, "evolve", opts, seed, {"initial": init})
-        ds = _flag_unphysical(assemble(model, lvl.name, moments, probes, ts, attrs), lvl)
+        ds = _judge(assemble(model, lvl.name, moments, probes, ts, attrs), model, lvl)
     ds.attrs["warnings"] = list(said)
     ds = _with_inputs(model, ds)
     if not named:  # the state itself, so that the file says how to reproduce the run
@@ -204,14 +205,16 @@ def steady(
     with collecting() as said:
         moments = lvl.steady(model, probes, seed, opts)
         attrs = _attrs(model, lvl, "steady", opts, seed, {})
-        ds = _flag_unphysical(assemble(model, lvl.name, moments, probes, None, attrs), lvl)
+        ds = _judge(assemble(model, lvl.name, moments, probes, None, attrs), model, lvl)
     ds.attrs["warnings"] = list(said)
     return _with_inputs(model, ds)
 
 
-def _flag_unphysical(ds: xr.Dataset, level: Level) -> xr.Dataset:
-    """Record in ``ds.attrs["unphysical"]`` the observables outside the bounds every physical state obeys,
-    and warn about them (`beyondmf.physicality`)."""
+def _judge(ds: xr.Dataset, model: Model, level: Level) -> xr.Dataset:
+    """The level's calibrated regime rule (`levels._regimes`: indicators in the attributes, and its warning),
+    and the observables outside the bounds every physical state obeys, in ``ds.attrs["unphysical"]`` with a
+    warning (`beyondmf.physicality`)."""
+    _regimes.apply(level.name, model, ds.attrs)
     flagged, text = physicality.check(ds, level.stochastic)
     ds.attrs["unphysical"] = flagged
     if text:

@@ -249,7 +249,7 @@ def _calibration_cluster(density, seed):
 def test_regime_warning_follows_the_calibration():
     """Driven at s < 10 in a cluster with ‖iJ + ½Γ‖ ≥ 0.25 (n·λ0³ = 8, seed 11: 0.54) twa warns and names the
     level to compare with; at Ω = 3 (s = 18), where the calibration found it within 0.7 %, it does not."""
-    from beyondmf.levels.twa import TRUSTED_COUPLING
+    from beyondmf.levels._regimes import TRUSTED_COUPLING
 
     pos = _calibration_cluster(8.0, 11)
     weak = Model(positions=pos, dipole=(1, 0, 0), rabi=1.0)

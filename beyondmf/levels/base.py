@@ -175,8 +175,8 @@ class Level(ABC):
     options: ClassVar[dict[str, Any]] = {}
     stochastic: ClassVar[bool] = False
     #: what to do when a run leaves the physical bounds (`beyondmf.physicality`): the end of that warning
-    when_unphysical: ClassVar[str] = ("compare with an exact level ('exact' for N ≲ 9, 'jumps' for N ≲ 12–14) "
-                                      "on a smaller cluster of the same density")
+    when_unphysical: ClassVar[str] = ("compare with an exact level ('exact' for N ≲ 9, 'jumps' for "
+                                      "N ≲ 12–14) on a smaller cluster of the same density")
 
     def check(self, model: Model) -> None:  # noqa: B027 - optional hook
         """Refuse, with a ValueError that says why, a model this level cannot treat."""

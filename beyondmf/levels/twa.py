@@ -46,15 +46,10 @@ from ._spin_sampling import (
 from .base import OptionError, is_count, register
 
 # The batched drift and its arrays (spin_drift, spin_args) are those of every sampled spin level.
-__all__ = ["TruncatedWigner", "auto_dt", "noise_factor", "sample_initial", "VACUUM_SIGMAS", "VACUUM_SHARE",
-           "TRUSTED_COUPLING", "TRUSTED_SATURATION"]
+__all__ = ["TruncatedWigner", "auto_dt", "noise_factor", "sample_initial", "VACUUM_SIGMAS", "VACUUM_SHARE"]
 
 VACUUM_SIGMAS = 4.0  # the vacuum control's drift must be this many standard errors from 0 ...
 VACUUM_SHARE = 0.02  # ... and this share of the run's own total excitation, for a warning
-# A driven run is trusted (no regime warning) below this coupling strength ‖iJ + ½Γ‖₂ (Γ0) or at or above
-# this saturation s: the calibration of docs/twa.md §9 on driven 6-emitter clusters.
-TRUSTED_COUPLING = 0.25
-TRUSTED_SATURATION = 10.0
 
 
 def _population_check(excited, stderr, sigmas: float = 3.0):
@@ -103,21 +98,6 @@ def _transverse_noise(Y, inc):
     return jnp.concatenate([z * inc[:, :S], z * inc[:, S:], jnp.zeros_like(z)], axis=1)
 
 
-def _regime(model, attrs) -> None:
-    """Record the coupling strength ‖iJ + ½Γ‖₂ and the saturation s of the run, and warn for a driven run
-    where the calibration of docs/twa.md §9 found twa's errors beyond 5 % (rates, intensities) or 10 % (g2):
-    ‖iJ + ½Γ‖₂ ≥ `TRUSTED_COUPLING` and 0 < s < `TRUSTED_SATURATION`."""
-    norm, sat = model.coupling_norm(), model.saturation
-    attrs["coupling_norm"], attrs["saturation"] = norm, sat
-    if norm >= TRUSTED_COUPLING and 0 < sat < TRUSTED_SATURATION:
-        _note(
-            f"twa: at this coupling strength (‖iJ + ½Γ‖ = {norm:.2g} Γ0, at least {TRUSTED_COUPLING:g}) and "
-            f"drive (saturation s = {sat:.2g}, below {TRUSTED_SATURATION:g}) the calibration on driven "
-            "6-emitter clusters found twa off by up to 26 % in the forward intensity, 13 % in the emission "
-            "rate and 108 % in g2_total (docs/twa.md §9); compare with 'cumulant2' (or 'exact' for N ≲ 9)"
-        )
-
-
 @register
 class TruncatedWigner(SpinSampling):
     name = "twa"
@@ -141,7 +121,6 @@ class TruncatedWigner(SpinSampling):
     def add_diagnostics(self, run_args, means, stderr, diagnostics, attrs) -> None:
         diagnostics.update(_population_check(means["excited"], stderr["excited"]))
         attrs["max_population_violation"] = float(np.max(diagnostics["population_violation"][1]))
-        _regime(run_args["model"], attrs)
         vac = run_args["options"]["vacuum_check"]
         vac = max(int(run_args["options"]["samples"]), 64) if vac == "auto" else int(vac)
         attrs["vacuum_check"] = vac
