@@ -164,6 +164,8 @@ def test_time_observables_are_refused_without_a_time_axis(tmp_path, obs):
 
 
 # Each: (level, option = value) → the message's key and what it must say.
+_VACUUM_CHOICES = ("'auto' (as many control samples as the run, at least 64), 0 (off) or a number of control "
+                   "samples ≥ 2")
 BAD_OPTIONS = [
     ("twa", "samples = -10", "an integer ≥ 2"),
     ("twa", "samples = 1", "an integer ≥ 2"),
@@ -180,8 +182,8 @@ BAD_OPTIONS = [
     ("twa", "settle_time = -1", "a time ≥ 0"),
     ("jumps", "settle_time = 0", "a positive time"),
     ("twa", "window_points = 0", "an integer ≥ 1"),
-    ("twa", "vacuum_check = 1", "0 (off) or a number of control samples ≥ 2"),
-    ("twa", "vacuum_check = -2", "0 (off) or a number of control samples ≥ 2"),
+    ("twa", "vacuum_check = 1", _VACUUM_CHOICES),
+    ("twa", "vacuum_check = -2", _VACUUM_CHOICES),
     ("meanfield", "rtol = 0", "a positive number"),
     ("cumulant2", "atol = -0.001", "a positive number"),
     ("exact", "max_steps = 0", "a positive integer"),
