@@ -92,17 +92,24 @@ def check_ode_options(options: dict[str, Any], defaults: dict[str, Any]) -> None
         raise OptionError("solver", f"must be 'auto' or one of {known}, got {options.get('solver')!r}")
 
 
-def pick_solver(name: str, size: int, stiffness: float) -> str:
-    """The solver to use: ``name`` unless "auto"; warns when an explicit solver meets a stiff problem."""
+def pick_solver(name: str, size: int, stiffness: float, implicit_ok: bool = True) -> str:
+    """The solver to use: ``name`` unless "auto"; warns when an explicit solver meets a stiff problem.
+
+    ``implicit_ok=False`` (mean field: its stiffness is the oscillation of the exchange J, which implicit
+    steps must follow as closely as explicit ones wherever it is excited; docs/meanfield.md): "auto" is
+    always Tsit5, and the warning does not suggest an implicit solver.
+    """
     if name == "auto":
-        name = "kvaerno5" if (stiffness > STIFF_RATIO and size <= IMPLICIT_MAX_SIZE) else "tsit5"
+        stiff = stiffness > STIFF_RATIO and size <= IMPLICIT_MAX_SIZE and implicit_ok
+        name = "kvaerno5" if stiff else "tsit5"
     if name not in SOLVERS:
         check_ode_options({"solver": name}, {"solver": "auto"})  # raises, naming the known solvers
     if name not in IMPLICIT and stiffness > STIFF_RATIO:
+        advice = "draw the cloud with a larger min_distance" + (
+            ", or use solver='kvaerno5' for small N" if implicit_ok else "")
         _note(
             f"stiff equations: coupling rates up to {stiffness:.3g} Γ0 (close emitters) force explicit "
-            f"steps of ~{1 / stiffness:.2g}/Γ0 with solver {name!r}; draw the cloud with a larger "
-            "min_distance, or use solver='kvaerno5' for small N"
+            f"steps of ~{1 / stiffness:.2g}/Γ0 with solver {name!r}; {advice}"
         )
     return name
 
@@ -198,9 +205,11 @@ def _solver_fn(rhs, observe, solver: str, rtol, atol, max_steps, dtmin, jump_ts,
         def real_rhs(t, y, a):
             return rhs(t, y, jax.tree.map(lambda f, x: x[0] + 1j * x[1] if f else x, flags, a))
 
+        terms, method = diffrax.ODETerm(real_rhs), SOLVERS[solver]()
+
         sol = diffrax.diffeqsolve(
-            diffrax.ODETerm(real_rhs),
-            SOLVERS[solver](),
+            terms,
+            method,
             t0=ts[0],
             t1=ts[-1],
             dt0=None,
@@ -314,6 +323,8 @@ def settle(
     project: Callable | None = None,
     what: str = "steady state",
     linear: bool = False,
+    first_chunk: float | None = None,
+    stability_size: int = 0,
 ):
     """Integrate in chunks of ``chunk`` until the state has settled, then polish it by Newton's method.
 
@@ -330,7 +341,17 @@ def settle(
     ``linear`` (a right-hand side linear in y, as the Lindblad equation is): Newton is tried after every
     chunk from residual 1e-3 on, and the first polish that reaches 1e-10 ends the integration. Newton
     cannot then go astray (one root where the steady state is unique); for nonlinear equations it could
-    land on an unstable fixed point, so they settle first.
+    land on an unstable fixed point, so they settle first, unless ``stability_size`` ≥ the number of
+    unknowns: then Newton (dense Jacobian, step halving) is tried after every chunk too, and its fixed
+    point y* is accepted where the Jacobian there has no eigenvalue with Re λ > 0 and either r < 1e-3 or
+    max|y − y*| < NEAR_FIXED_POINT (the state is in y*'s neighbourhood, while slow modes still move it:
+    mean field of dense clouds relaxes at rates down to 10⁻³ Γ0); an unstable y* with the dynamics still
+    moving (r > 1e-3) ends the search with an error (a limit cycle).
+
+    Never runs unannounced for long: the chunks together may take at most ``options["max_steps"]``
+    accepted steps (more raises `SolveError` naming the budget and what to do), and a residual above 1e-3
+    that has not halved over three chunks ends the search with an error (a limit cycle, chaos or a mode
+    slower than the chunks). ``first_chunk`` (default ``chunk``) shortens the first integration.
 
     Returns (y, info) with the residual before and after the polish in ``info``. Raises SolveError when the
     dynamics does not settle by ``max_time`` (a limit cycle or a slow mode). Records a warning (through
@@ -338,28 +359,63 @@ def settle(
     """
     fns = _settle_fns(rhs, project)
     P = fns.project
+    size = int(np.prod(np.shape(y0)))
+    stable_check = 0 < size <= stability_size
+    budget = int(options["max_steps"])
 
     def residual(y):
         return float(fns.rate(y, args)) / max(1.0, float(jnp.max(jnp.abs(y))))
 
     y, t, steps, stalled = P(y0), 0.0, 0, 0
-    ts = np.array([0.0, chunk])
     res = residual(y)
+    history = [res]
     polished = None  # the polish of the current y, where one was tried
+    growth = None  # largest Re λ of the Jacobian at the last accepted fixed point (stability_size)
     while res > 1e-7 and t < max_time and stalled < 2:
-        _, y, st = solve(rhs, observe, y, args, obs_args, ts, options, solver, what=what, project=project)
-        t += chunk
+        span = first_chunk if (t == 0.0 and first_chunk) else chunk
+        _, y, st = solve(rhs, observe, y, args, obs_args, np.array([0.0, span]), options, solver, what=what,
+                         project=project)
+        t += span
         steps += st["accepted_steps"]
         y = P(y)
         new = residual(y)
         stalled = stalled + 1 if (new > 0.5 * res and new < 1e-4) else 0
         res = new
+        history.append(res)
         polished = None
-        if linear and res < 1e-3:
-            polished = P(_newton(fns, y, args, tol))
-            if residual(polished) < 1e-10:
-                return polished, {"settle_time": t, "settle_steps": steps, "residual_settled": res,
-                                  "residual": residual(polished)}
+        if (linear and res < 1e-3) or stable_check:
+            candidate = _dense_newton(rhs, y, args, tol) if stable_check else P(_newton(fns, y, args, tol))
+            if residual(candidate) < 1e-10:
+                if not stable_check:
+                    return candidate, {"settle_time": t, "settle_steps": steps, "residual_settled": res,
+                                       "residual": residual(candidate)}
+                growth = _growth_rate(rhs, candidate, args)
+                near = float(jnp.max(jnp.abs(candidate - y))) < NEAR_FIXED_POINT
+                if growth <= 1e-9 and (res < 1e-3 or near):
+                    return candidate, {"settle_time": t, "settle_steps": steps, "residual_settled": res,
+                                       "residual": residual(candidate), "stability_growth_rate": growth}
+                if growth > 1e-9 and res > 1e-3:
+                    raise SolveError(
+                        f"{what}: the dynamics had not settled after t = {t:g}/Γ0 (residual {res:.2g}), and "
+                        f"the fixed point Newton's method finds from there is unstable (a mode grows at rate "
+                        f"{growth:.3g} Γ0): these equations most likely oscillate (a limit cycle or chaos) "
+                        "and have no steady state here. Use evolve() to follow the dynamics (a level with "
+                        "correlations, e.g. cumulant2 or exact, may settle where this one does not)"
+                    )
+                if growth <= 1e-9:
+                    polished = candidate
+        if len(history) > 3 and res > 1e-3 and res > 0.5 * history[-4]:
+            raise SolveError(
+                f"{what}: the dynamics is not settling (residual {res:.2g} at t = {t:g}/Γ0, "
+                f"{history[-4]:.2g} three chunks earlier): a limit cycle, chaos, or a mode slower than "
+                f"{chunk:g}/Γ0. Use evolve() to look at the dynamics"
+            )
+        if steps > budget:
+            raise SolveError(
+                f"{what}: {steps} accepted steps by t = {t:g}/Γ0 (residual {res:.2g}) exceed the budget "
+                f"max_steps = {budget}: the equations are stiff (close emitters force small steps) or settle "
+                "slowly. Raise max_steps to wait longer, or use evolve() to look at the dynamics"
+            )
     if res > 1e-4:
         raise SolveError(
             f"{what}: the dynamics had not settled after t = {t:g}/Γ0 (residual {res:.2g}); the system may "
@@ -376,7 +432,65 @@ def settle(
             "accurate to about this residual divided by the slowest relaxation rate. Lower rtol and atol "
             "to settle closer before the polish"
         )
-    return y, {"settle_time": t, "settle_steps": steps, "residual_settled": res_before, "residual": res}
+    info = {"settle_time": t, "settle_steps": steps, "residual_settled": res_before, "residual": res}
+    if stable_check:
+        info["stability_growth_rate"] = _growth_rate(rhs, y, args)
+    return y, info
+
+
+# A stable fixed point this close (max norm) to the integrated state is taken as its limit even while
+# slow modes still move the state (`settle(stability_size=...)`).
+NEAR_FIXED_POINT = 0.05
+
+_JAC_COMPILED: dict[Callable, tuple[Callable, Callable]] = {}
+
+
+def _dense_fns(rhs: Callable) -> tuple[Callable, Callable]:
+    """(f(y) flattened, its dense Jacobian), compiled once per right-hand side (small systems only)."""
+    fns = _JAC_COMPILED.get(rhs)
+    if fns is None:
+        def flat(y, a):
+            return rhs(0.0, y, a).reshape(-1)
+
+        def jac(y, a):
+            return jax.jacfwd(lambda v: flat(v.reshape(y.shape), a))(y.reshape(-1))
+
+        fns = _JAC_COMPILED[rhs] = (jax.jit(flat), jax.jit(jac))
+    return fns
+
+
+def _growth_rate(rhs: Callable, y, args) -> float:
+    """The largest real part of the eigenvalues of the dense Jacobian ∂f/∂y at y (small systems only)."""
+    _, jac = _dense_fns(rhs)
+    return float(np.max(np.linalg.eigvals(np.asarray(jac(y, args))).real))
+
+
+def _dense_newton(rhs: Callable, y, args, tol: float, iterations: int = 30):
+    """Newton's method with the dense Jacobian and step halving on max|f| (small systems): the fixed point
+    near y, or the best point reached."""
+    f, jac = _dense_fns(rhs)
+    shape = y.shape
+    v = np.asarray(y, dtype=float).reshape(-1)
+    r = np.asarray(f(jnp.asarray(v.reshape(shape)), args))
+    size = float(np.max(np.abs(r)))
+    for _ in range(iterations):
+        if size < tol:
+            break
+        try:
+            d = np.linalg.solve(np.asarray(jac(jnp.asarray(v.reshape(shape)), args)), -r)
+        except np.linalg.LinAlgError:
+            break
+        lam = 1.0
+        while lam > 1e-3:
+            w = v + lam * d
+            rw = np.asarray(f(jnp.asarray(w.reshape(shape)), args))
+            if np.all(np.isfinite(rw)) and np.max(np.abs(rw)) < size:
+                break
+            lam /= 2
+        else:
+            break
+        v, r, size = w, rw, float(np.max(np.abs(rw)))
+    return jnp.asarray(v.reshape(shape))
 
 
 def hermitian_unit_trace(y):

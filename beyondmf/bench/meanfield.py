@@ -86,8 +86,8 @@ def _rhs_rows(n: int, machine: Machine) -> list[Row]:
 
 
 def reference_meanfield(
-    model: Model, times: np.ndarray, rtol: float = RTOL, atol: float = ATOL
-) -> np.ndarray:
+    model: Model, times: np.ndarray, rtol: float = RTOL, atol: float = ATOL, stats: bool = False
+):
     """The emission rate P(t) from the ground state, as a user would compute it without beyondmf.
 
     The mean-field equations of docs/meanfield.md with complex β and a NumPy right-hand side,
@@ -97,7 +97,7 @@ def reference_meanfield(
         dβ/dt = (iΔ − ½)β + (i/2)Ω_i z + zφ,   dn/dt = −n − Im(Ω_i* β) − 2 Re(β* φ)
         P = β†Γβ + Σ_i (n_i − |β_i|²)
 
-    Real couplings only; the drive is constant.
+    Real couplings only; the drive is constant. ``stats``: return (P, number of evaluations).
     """
     n = model.n
     K = 1j * model.J + 0.5 * (model.Gamma - np.eye(n))
@@ -120,7 +120,8 @@ def reference_meanfield(
     beta = sol.y[:n] + 1j * sol.y[n : 2 * n]
     pop = sol.y[2 * n :]
     coherent = np.real(np.einsum("it,ij,jt->t", np.conj(beta), model.Gamma, beta))
-    return coherent + (pop - np.abs(beta) ** 2).sum(axis=0)
+    rate = coherent + (pop - np.abs(beta) ** 2).sum(axis=0)
+    return (rate, int(sol.nfev)) if stats else rate
 
 
 def _timed_evolve(model: Model, times: np.ndarray, **options):

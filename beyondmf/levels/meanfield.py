@@ -21,7 +21,15 @@ import jax.numpy as jnp
 import numpy as np
 
 from ..estimators import product_field_moments, product_rate_moments
-from ..integrate import ODE_OPTIONS, observe_once, per_envelope, pick_solver, settle, solve
+from ..integrate import (
+    ODE_OPTIONS,
+    check_bounds,
+    observe_once,
+    per_envelope,
+    pick_solver,
+    settle,
+    solve,
+)
 from ..memory import require
 from ..model import Envelope, Model
 from .base import Level, Moments, Probes, register
@@ -97,7 +105,8 @@ class MeanField(Level):
         # beyond the model's own J and Γ: real/imag splits of complex ones, one N×N temporary per save
         extra = 5 if model.complex_couplings else 1
         require(8 * model.n**2 * extra, f"mean field for {model.n} emitters")
-        solver = pick_solver(options["solver"], 3 * model.n, model.stiffness())
+        # "auto" is Tsit5: mean field's stiffness is the oscillation of J (docs/meanfield.md, Numerics)
+        solver = pick_solver(options["solver"], 3 * model.n, model.stiffness(), implicit_ok=False)
         args = coupling_args(model)
         gamma = args["G"] + 1j * args["Gi"] if "Gi" in args else args["G"]
         return solver, args, (jnp.asarray(probes.weights), gamma)
@@ -105,16 +114,34 @@ class MeanField(Level):
     def evolve(self, model, times, initial, probes, seed, options) -> Moments:
         solver, args, obs_args = self._prepare(model, probes, options)
         rhs = meanfield_rhs(model.envelope)
+        what = "mean-field evolution"
         obs, _, stats = solve(
             rhs, _observe, bloch_to_state(initial), args, obs_args, times, options, solver,
-            jump_ts=model.envelope.jumps, what="mean-field evolution",
+            jump_ts=model.envelope.jumps, what=what,
         )
+        stats["bound_excess"] = _bound_excess(obs, what, options)
         return Moments(**obs, attrs=stats)
 
     def steady(self, model, probes, seed, options) -> Moments:
         solver, args, obs_args = self._prepare(model, probes, options)
         rhs = meanfield_rhs(model.envelope)
         y0 = bloch_to_state(np.tile([0.0, 0.0, -1.0], (model.n, 1)))
-        y, info = settle(rhs, _observe, y0, args, obs_args, options, solver, what="mean-field steady state")
+        y, info = settle(rhs, _observe, y0, args, obs_args, options, solver, what="mean-field steady state",
+                         first_chunk=STEADY_FIRST_CHUNK, stability_size=STABILITY_SIZE)
         obs = observe_once(_observe, y, obs_args)
         return Moments(**obs, attrs={"solver": solver, **info})
+
+
+# The steady state integrates this long first (Γ0⁻¹), then looks for the fixed point by Newton's method
+# and, up to STABILITY_SIZE unknowns, checks its stability (`integrate.settle`).
+STEADY_FIRST_CHUNK = 20.0
+STABILITY_SIZE = 1500
+
+
+def _bound_excess(obs, what: str, options) -> float:
+    """Mean field keeps every Bloch vector in the unit ball, |s_k|² = 4|β_k|² + (2n_k − 1)² ≤ 1 (each
+    emitter obeys Bloch equations with a real decay and an effective drive, docs/meanfield.md); a run that
+    leaves it by more than its error control allows warns (`integrate.check_bounds`)."""
+    n, beta = np.asarray(obs["excited"]), np.asarray(obs["coherence"])
+    length = np.sqrt(4 * np.abs(beta) ** 2 + (2 * n - 1) ** 2)
+    return check_bounds(what, {"|s_k| ≤ 1 (Bloch ball)": float(np.max(length) - 1.0)}, options)
