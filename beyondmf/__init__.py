@@ -16,6 +16,7 @@ from .couplings import couplings  # noqa: E402
 from .levels import Level, Moments, available_levels, get_level, register  # noqa: E402
 from .model import Model  # noqa: E402
 from .results import load, save  # noqa: E402
+from .sweep import read_study  # noqa: E402
 
 
 def level_options(level: str) -> dict:
@@ -38,4 +39,5 @@ __all__ = [
     "Moments",
     "save",
     "load",
+    "read_study",
 ]

@@ -214,7 +214,8 @@ def _judge(ds: xr.Dataset, model: Model, level: Level) -> xr.Dataset:
     """The level's calibrated regime rule (`levels._regimes`: indicators in the attributes, and its warning),
     and the observables outside the bounds every physical state obeys, in ``ds.attrs["unphysical"]`` with a
     warning (`beyondmf.physicality`)."""
-    _regimes.apply(level.name, model, ds.attrs)
+    excitation = float(ds.excited.isel(time=0).mean()) if "time" in ds.dims else None
+    _regimes.apply(level.name, model, ds.attrs, excitation)
     flagged, text = physicality.check(ds, level.stochastic)
     ds.attrs["unphysical"] = flagged
     if text:

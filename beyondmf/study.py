@@ -547,10 +547,13 @@ def parse_table(raw: dict[str, Any], text: str = "", path: Path | None = None) -
     return study
 
 
-def read_study(path: str | Path) -> Study:
-    """Read and validate the study file at ``path``."""
-    p = Path(path)
-    return parse_study(study_text(p), p)
+def read_study(path: str | Path, quick: bool = False, large: bool = False) -> Study:
+    """Read and validate the study file at ``path``, every section of it ([sweep], [compare],
+    [convergence] and [quick] included); ``quick`` applies its [quick] overrides, ``large`` confirms a study
+    of more tasks than the planning limit. The one reader of study files, also ``beyondmf.read_study``."""
+    from . import sweep  # the task sections are defined there, on top of this module
+
+    return sweep.read_study(path, quick=quick, large=large)
 
 
 def study_text(p: Path) -> str:

@@ -37,7 +37,8 @@ Method: H. Kramer and H. Ritsch, Eur. Phys. J. D 69, 282 (2015); F. Robicheaux a
 Phys. Rev. A 104, 023702 (2021). Exact for N = 2 (no three-emitter moments exist). Trustworthy where
 three-body correlations are weak: moderate densities and drives; in dense, strongly driven clouds the
 truncation can produce unphysical moments, reported per time in the diagnostics ``population_violation``,
-``pair_violation`` and ``g2_violation`` (a warning is raised above `VIOLATION_TOL`).
+``pair_violation`` and ``g2_violation`` (pair_violation warns above `VIOLATION_TOL`; populations and g2
+outside their bounds are warned by `beyondmf.physicality`, as for every level).
 """
 
 from __future__ import annotations
@@ -224,13 +225,14 @@ def _moments(obs, attrs) -> Moments:
     diagnostics = {k: (("time",), obs.pop(k), {"units": "1", "long_name": text})
                    for k, text in _DIAGNOSTICS.items()}
     worst = {k: float(np.max(d[1])) for k, d in diagnostics.items()}
-    bad = {k: v for k, v in worst.items() if v > VIOLATION_TOL}
-    if bad:
-        text = ", ".join(f"{k} = {v:.3g}" for k, v in bad.items())
+    # Populations outside [0, 1] and negative g2 are judged for every level by beyondmf.physicality (with
+    # its standard of what is dark light); the Cauchy–Schwarz bound of a pair is this level's own check.
+    if worst["pair_violation"] > VIOLATION_TOL:
         _note(
-            f"cumulant2 produced unphysical moments ({text}; tolerance {VIOLATION_TOL:g}): the second-order "
-            "truncation is not trustworthy here (dense or strongly driven cloud); compare with 'exact' at "
-            "small N, or use a sampling level"
+            f"cumulant2 produced pair moments no physical state has (|⟨σ_i⁺σ_j⁻⟩|² exceeds n_i n_j by "
+            f"{worst['pair_violation']:.3g}, pair_violation; tolerance {VIOLATION_TOL:g}): the second-order "
+            "truncation is not trustworthy here; compare with 'exact' (N ≲ 9) or 'jumps' on a smaller "
+            "cluster of the same density"
         )
     attrs = {**attrs, **{f"max_{k}": v for k, v in worst.items()}}
     return Moments(**obs, diagnostics=diagnostics, attrs=attrs)
@@ -241,6 +243,9 @@ class Cumulant2(Level):
     name = "cumulant2"
     summary = "second-order cumulants (all pair correlations, third cumulants zero); exact for N = 2"
     options = {**ODE_OPTIONS, "pair_radius": None, "far_pairs": "first_order"}
+    when_unphysical = ("the pair truncation fails here (typically the subradiant tail of a dense cluster's "
+                       "decay, docs/cumulant2.md); compare with 'exact' (N ≲ 9) or 'jumps' (N ≲ 12–14) on a "
+                       "smaller cluster of the same density")
 
     def validate_options(self, options):
         super().validate_options(options)
