@@ -77,6 +77,9 @@ def build_parser() -> argparse.ArgumentParser:
         description="Light emitted by dense, laser-driven clouds of two-level emitters, at successive levels "
         "of correlation. Units: lengths in λ0, rates in Γ0, times in 1/Γ0.",
     )
+    from . import __version__
+
+    p.add_argument("--version", action="version", version=f"beyondmf {__version__}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND", parser_class=_SubParser)
 
     r = sub.add_parser(
@@ -99,6 +102,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="write no figures (only results.nc, and tasks/ and convergence.nc where they apply)")
     r.add_argument("--quick", action="store_true",
                    help="apply the study's [quick] overrides (a CI-sized run)")
+    r.add_argument("-q", "--quiet", action="store_true",
+                   help="no progress bars and no status lines (errors, failures, warnings and verdicts still "
+                   "print)")
     r.add_argument("--large", action="store_true",
                    help="run a study beyond the planning limit of 100,000 tasks (the memory check still "
                    "applies)")
@@ -131,6 +137,14 @@ def build_parser() -> argparse.ArgumentParser:
 
 def _say(msg: str) -> None:
     print(msg, file=sys.stderr, flush=True)
+
+
+def _status(msg: str) -> None:
+    """A line about what the command is doing (not an error, failure, warning or verdict); --quiet: none."""
+    from . import _config
+
+    if not _config.QUIET:
+        _say(msg)
 
 
 class _Stopped(KeyboardInterrupt):
@@ -211,7 +225,7 @@ def _write_figures(make, out: Path) -> list[Path]:
                 raise NotOurFiles(out, [dest.name])
             place(path, dest)  # recorded as ours, then renamed into place
             written.append(dest)
-            _say(f"wrote {dest}")
+            _status(f"wrote {dest}")
         return written
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
@@ -237,7 +251,7 @@ def _remove_earlier_outputs(out: Path, convergence: bool) -> None:
     for name in sorted(stale):
         try:
             if remove_ours(out, name):
-                _say(f"removed {out / name} (an earlier run's; results.nc is new)")
+                _status(f"removed {out / name} (an earlier run's; results.nc is new)")
         except OSError:
             continue
 
@@ -283,9 +297,9 @@ def _run_one_model(study, out: Path, args, t0: float) -> int:
 
     def on_level(name: str, stage: str, seconds: float | None) -> None:
         if stage == "start":
-            _say(f"level {name}: started ({study.run.calculation})")
+            _status(f"level {name}: started ({study.run.calculation})")
         elif stage == "done":
-            _say(f"level {name}: finished in {seconds:.1f} s")
+            _status(f"level {name}: finished in {seconds:.1f} s")
         else:
             rest = "; the other levels go on" if len(study.levels) > 1 else ""
             _say(f"level {name}: failed after {seconds:.1f} s (why: at the end){rest}")
@@ -302,7 +316,7 @@ def _run_one_model(study, out: Path, args, t0: float) -> int:
     for failure in failures:
         _say(f"level {failure.replace(': ', ': failed: ', 1)}")
     kept = f" (levels {', '.join(map(str, ds['level'].values))}; see above for the failed ones)"
-    _say(f"wrote {path}" + (kept if failures else ""))
+    _status(f"wrote {path}" + (kept if failures else ""))
     _remove_earlier_outputs(out, convergence=False)
     if not args.no_plots:
         try:
@@ -313,7 +327,7 @@ def _run_one_model(study, out: Path, args, t0: float) -> int:
         n = len(study.levels)
         _say(f"{len(failures)} of {n} level{'s' * (n != 1)} failed (see above; results.nc holds the "
              "others)")
-    _say(f"done in {time.perf_counter() - t0:.1f} s")
+    _status(f"done in {time.perf_counter() - t0:.1f} s")
     return EXIT_FAILED if failures else 0
 
 
@@ -328,11 +342,11 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
         done = total - to_run
         tasks = f"task{'s' * (total != 1)}"
         if not to_run:
-            _say(f"all {total} {tasks} are done in {out / 'tasks'}; nothing to run")
+            _status(f"all {total} {tasks} are done in {out / 'tasks'}; nothing to run")
         elif not done:
-            _say(f"running {total} {tasks} {executor.where}")
+            _status(f"running {total} {tasks} {executor.where}")
         else:
-            _say(f"running {to_run} of {total} {tasks} {executor.where}, {done} done (kept in "
+            _status(f"running {to_run} of {total} {tasks} {executor.where}, {done} done (kept in "
                  f"{out / 'tasks'})")
 
     try:
@@ -364,7 +378,7 @@ def _report_tasks(study, ds, out: Path, args, t0: float) -> None:
     """After a task run: what was written, failures, warnings, figures, convergence, verdicts."""
     from .correction_plots import plot_sweep
 
-    _say(f"wrote {out / 'results.nc'} ({ds.attrs['tasks']} tasks)")
+    _status(f"wrote {out / 'results.nc'} ({ds.attrs['tasks']} tasks)")
     _remove_earlier_outputs(out, convergence="convergence" in study.extra)
     for failure in ds.attrs.get("failures", []):
         _say(f"task failed: {failure}")
@@ -389,7 +403,7 @@ def _report_tasks(study, ds, out: Path, args, t0: float) -> None:
             k = 0 if warned is None else int(warned.sel(level=level).sum())
             note = f"  [{k} of its runs warned about themselves: treat these verdicts with care]" if k else ""
             _say(f"  {level}: " + ", ".join(f"{k} {v}" for k, v in row.items()) + note)
-    _say(f"done in {time.perf_counter() - t0:.1f} s")
+    _status(f"done in {time.perf_counter() - t0:.1f} s")
 
 
 def _report_convergence(study, ds, out: Path, plots: bool) -> None:
@@ -406,7 +420,7 @@ def _report_convergence(study, ds, out: Path, plots: bool) -> None:
     merged.attrs.update({k: v for k, v in next(iter(tables.values())).attrs.items() if k != "last_bound"})
     merged.attrs["observables"] = list(tables)
     save_ours(merged, out / "convergence.nc")
-    _say(f"wrote {out / 'convergence.nc'}")
+    _status(f"wrote {out / 'convergence.nc'}")
     for obs, table in tables.items():
         state = "converged" if bool(table["converged"]) else "NOT converged"
         _say(f"convergence of {obs} in {table.attrs['parameter']}: {state} "
@@ -465,7 +479,7 @@ def _cmd_bench(args) -> int:
             os.replace(tmp, out)  # whole or not at all
         finally:
             tmp.unlink(missing_ok=True)
-        _say(f"wrote {out}")
+        _status(f"wrote {out}")
     return 0
 
 
@@ -537,6 +551,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     Python, the tests) it returns 130 instead.
     """
     args = build_parser().parse_args(argv)
+    from . import _config
+
+    quiet_before, _config.QUIET = _config.QUIET, bool(getattr(args, "quiet", False)) or _config.QUIET
     previous_hook = sys.unraisablehook
     sys.unraisablehook = _redeliver_interrupt(previous_hook)
     try:
@@ -546,6 +563,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _main(args, hard_exit=argv is None)
     finally:
         sys.unraisablehook = previous_hook
+        _config.QUIET = quiet_before
 
 
 def _show_warning(command: str):

@@ -8,7 +8,6 @@ no storage of the full state history), and turns a failed solve into an error th
 from __future__ import annotations
 
 import functools
-import sys
 from collections.abc import Callable
 from typing import Any, NamedTuple
 
@@ -251,9 +250,9 @@ def observe_once(observe: Callable, y, obs_args):
 
 
 def _progress(opt) -> bool:
-    if opt == "auto":
-        return sys.stderr.isatty()
-    return bool(opt)
+    from ._config import show_progress
+
+    return show_progress(opt)
 
 
 def solve(

@@ -19,7 +19,8 @@ seed : the sampling seed of a stochastic level (absent for deterministic levels,
 
 The key hashes the task with model arguments and options equal to their defaults left out and the
 defaults listed once (`canonical`), so spelling a default out or leaving it implicit is one task, and a
-default changed between versions is another.
+default changed between versions is another. Presentation options (`PRESENTATION_OPTIONS`: the progress
+bar) are left out of it altogether.
 """
 
 from __future__ import annotations
@@ -125,9 +126,16 @@ def _without_defaults(task: Mapping[str, Any]) -> dict[str, Any]:
     if out.get("options") is not None and "level" in out:
         level_defaults = get_level(out["level"]).options
         out["options"] = {k: v for k, v in out["options"].items()
-                          if not (k in level_defaults and _plain(v) == _plain(level_defaults[k]))}
-        out["defaults"]["options"] = dict(level_defaults)
+                          if k not in PRESENTATION_OPTIONS
+                          and not (k in level_defaults and _plain(v) == _plain(level_defaults[k]))}
+        out["defaults"]["options"] = {k: v for k, v in level_defaults.items()
+                                      if k not in PRESENTATION_OPTIONS}
     return out
+
+
+# Options that change how a run is shown, never its numbers: not part of a task's identity, so switching a
+# progress bar on or off never recomputes a sweep.
+PRESENTATION_OPTIONS = ("progress",)
 
 
 def canonical(task: Mapping[str, Any]) -> str:

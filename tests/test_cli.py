@@ -652,3 +652,16 @@ def test_a_single_model_run_does_not_need_an_old_tasks_directory_to_be_writable(
     _read_only(monkeypatch, tasks)
     code, err = _run(["run", study_file, "--out", tmp_path / "out", "--no-plots"], capsys)
     assert code == 0, err  # in process: tasks/ is not written, so not checked
+
+
+def test_quiet_run_prints_no_status_lines_and_version_names_the_package(tmp_path, capsys):
+    """--quiet keeps errors, failures, warnings and verdicts but drops status lines (common practice of
+    command-line tools); --version prints the installed version and exits 0."""
+    code, err = _run(["run", QUICKSTART, "--out", tmp_path, "--quiet", "--no-plots"], capsys)
+    assert code == 0, err
+    assert "started" not in err and "finished" not in err and "wrote" not in err, err
+    assert (tmp_path / "results.nc").is_file()
+    with pytest.raises(SystemExit) as stop:
+        cli.main(["--version"])
+    assert stop.value.code == 0
+    assert capsys.readouterr().out.strip() == f"beyondmf {beyondmf.__version__}"

@@ -141,6 +141,16 @@ def test_task_keys_are_stable_across_number_spellings(tmp_path):
     assert keys[0] == keys[1]
 
 
+def test_a_progress_bar_is_not_part_of_a_tasks_identity(tmp_path):
+    # issue: switching a progress bar on recomputed a sweep; presentation never changes the numbers
+    # (common practice: a cache key holds only what determines the result)
+    plain = _study(tmp_path)
+    shown = _study(tmp_path, STUDY.replace("[levels.meanfield]\n", "[levels.meanfield]\nprogress = true\n"))
+    keys = [[task_key(t) for t in study_tasks(s)[0].values()] for s in (plain, shown)]
+    assert keys[0] == keys[1]
+    assert any(t["options"].get("progress") is True for t in study_tasks(shown)[0].values())
+
+
 def test_a_task_from_a_study_file_and_the_same_task_from_python_share_their_key(tmp_path, monkeypatch):
     """The study reader writes every model argument (complex dipole, default coupling and detuning); the
     Python API only those given. Values equal to their defaults and real numbers written as complex

@@ -22,13 +22,23 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._config import show_progress
 from .._notes import warn as _note
 from ..estimators import product_field_moments, product_rate_moments
 from ..integrate import SolveError
 from ..memory import require
 from ..model import Envelope, Model
 from ._sampling import UNSETTLED_SIGMAS, amplitude_sums, coherent_statistics
-from .base import Level, Moments, OptionError, Probes, check_sampling_options, is_count, is_real_number
+from .base import (
+    Level,
+    Moments,
+    OptionError,
+    Probes,
+    SampleProgress,
+    check_sampling_options,
+    is_count,
+    is_real_number,
+)
 
 __all__ = ["SpinEquations", "SpinSampling", "auto_dt", "noise_factor", "spin_args", "spin_drift"]
 
@@ -266,7 +276,7 @@ def _runner(envelope: Envelope, steady: bool, equations: SpinEquations):
 
 
 def _sampled_sums(run, sampler, bloch, seed, samples, chunk, args, obs_args, t_obs, n_sub, steady,
-                  streams=(0, 1)):
+                  streams=(0, 1), bar=None):
     """Sums over ``samples`` samples (in chunks of ``chunk``) of every estimator, and the failed count.
 
     Sample k uses the key fold_in(PRNGKey(seed), k); its initial draw (``sampler(bloch, keys)`` → (N, 3, S))
@@ -289,6 +299,8 @@ def _sampled_sums(run, sampler, bloch, seed, samples, chunk, args, obs_args, t_o
         failed += nbad
         sums = {k: np.asarray(v) for k, v in sums.items()}
         tot = sums if tot is None else {k: tot[k] + sums[k] for k in tot}
+        if bar is not None:
+            bar.update(min(chunk, samples - start))
     return tot, failed
 
 
@@ -365,6 +377,7 @@ class SpinSampling(Level):
         "window": 40.0,
         "window_points": 80,
         "chunk": "auto",
+        "progress": "auto",
     }
     stochastic = True
 
@@ -417,6 +430,8 @@ class SpinSampling(Level):
         chunk = options["chunk"]
         if chunk == "auto":
             chunk = int(max(1, min(samples, CHUNK_BYTES // per_sample)))
+            if show_progress(options.get("progress", "auto")):  # a bar needs several chunks to move
+                chunk = min(chunk, max(1, -(-samples // 20)))
         return samples, frac, dt, int(chunk), args, obs_args
 
     def _run(self, model, t_obs, n_sub, initial, seed, options, probes, steady: bool):
@@ -428,8 +443,12 @@ class SpinSampling(Level):
         n = model.n
         require(chunk * (8 * (14 * 3 * n + 6 * n)),
                 f"a chunk of {chunk} '{self.name}' samples of {n} emitters")
-        tot, failed = _sampled_sums(run, self.initial_samples, bloch, seed, samples, chunk, args, obs_args,
-                                    t_obs, n_sub, steady)
+        bar = SampleProgress(options.get("progress", "auto"), samples, self.name)
+        try:
+            tot, failed = _sampled_sums(run, self.initial_samples, bloch, seed, samples, chunk, args,
+                                        obs_args, t_obs, n_sub, steady, bar=bar)
+        finally:
+            bar.close()
         if failed > frac * samples:
             raise SolveError(
                 f"{self.title}: {failed} of {samples} samples diverged or became non-finite, more than "

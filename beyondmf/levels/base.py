@@ -8,6 +8,7 @@ level never computes an observable itself, so `intensity` means the same at ever
 from __future__ import annotations
 
 import numbers
+import sys
 from abc import ABC, abstractmethod
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -161,6 +162,35 @@ def check_sampling_options(options: dict[str, Any]) -> None:
     chunk = options["chunk"]
     if chunk != "auto" and not is_count(chunk, 1):
         raise OptionError("chunk", f"must be 'auto' or an integer ≥ 1 (samples at once), got {chunk!r}")
+    progress = options.get("progress", "auto")
+    if not (isinstance(progress, bool) or progress == "auto"):
+        raise OptionError("progress", f"must be 'auto', true or false, got {progress!r}")
+
+
+class SampleProgress:
+    """A bar of the samples done (stderr, only where `beyondmf._config.show_progress` says so), updated
+    after each chunk; a no-op otherwise. Progress is presentation: never part of a task's identity."""
+
+    def __init__(self, option, samples: int, what: str) -> None:
+        from .._config import show_progress
+
+        self._bar = None
+        if show_progress(option):
+            from tqdm.auto import tqdm
+
+            self._bar = tqdm(total=int(samples), unit="sample", desc=what, leave=False, file=sys.stderr)
+
+    @property
+    def shown(self) -> bool:
+        return self._bar is not None
+
+    def update(self, done: int) -> None:
+        if self._bar is not None:
+            self._bar.update(int(done))
+
+    def close(self) -> None:
+        if self._bar is not None:
+            self._bar.close()
 
 
 class Level(ABC):

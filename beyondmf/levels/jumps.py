@@ -29,12 +29,22 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._config import show_progress
 from .._notes import warn as _note
 from ..memory import available_bytes, require
 from ..model import Envelope, Model
 from . import _qubits as q
 from ._sampling import UNSETTLED_SIGMAS, amplitude_sums, coherent_statistics
-from .base import Level, Moments, OptionError, Probes, check_sampling_options, is_real_number, register
+from .base import (
+    Level,
+    Moments,
+    OptionError,
+    Probes,
+    SampleProgress,
+    check_sampling_options,
+    is_real_number,
+    register,
+)
 
 __all__ = ["Jumps", "jump_channels"]
 
@@ -166,7 +176,7 @@ def _runner(envelope: Envelope, dt: float):
 class Jumps(Level):
     name = "jumps"
     summary = "quantum-jump trajectories (exact in the limit of many samples; N up to ~14)"
-    options = {"samples": 1000, "dt": "auto", "chunk": "auto", "settle_time": 40.0}
+    options = {"samples": 1000, "dt": "auto", "chunk": "auto", "settle_time": 40.0, "progress": "auto"}
     stochastic = True
 
     def validate_options(self, options) -> None:
@@ -188,6 +198,8 @@ class Jumps(Level):
         if chunk == "auto":
             budget = min(CHUNK_BYTES, 0.25 * available_bytes())
             chunk = int(max(1, min(samples, budget // per_traj, 256)))
+            if show_progress(options.get("progress", "auto")):  # a bar needs several chunks to move
+                chunk = min(chunk, max(1, -(-samples // 20)))
         c = model.J - model.detuning * np.eye(n) - 0.5j * model.Gamma
         dt = _auto_dt(model, c) if options["dt"] == "auto" else float(options["dt"])  # validate_options
         args = {
@@ -212,6 +224,7 @@ class Jumps(Level):
         p_plus = (1 + length) / 2
         tot = tot2 = crs = None
         ts = jnp.asarray(ts, dtype=float)
+        bar = SampleProgress(options.get("progress", "auto"), samples, self.name)
         for start in range(0, samples, chunk):
             idx = np.arange(start, start + chunk)
             use = jnp.asarray(idx < samples, dtype=float)  # the last chunk is padded: one shape, one compile
@@ -221,6 +234,10 @@ class Jumps(Level):
             signs = jnp.where(u < jnp.asarray(p_plus), 1.0, -1.0)
             part = run(keys, signs, use, ts, args)
             tot, tot2, crs = part if tot is None else jax.tree.map(jnp.add, (tot, tot2, crs), part)
+            if bar.shown:  # count the chunk when it is done, not when it is dispatched
+                jax.block_until_ready(tot)
+                bar.update(min(chunk, samples - start))
+        bar.close()
         tot, tot2, crs = jax.tree.map(np.asarray, (tot, tot2, crs))
         mean = {k: v / samples for k, v in tot.items()}
         var = {k: np.maximum(tot2[k] / samples - np.abs(mean[k]) ** 2, 0) * samples / (samples - 1)
