@@ -211,6 +211,17 @@ def verdict_table(summary: xr.Dataset) -> dict[str, dict[str, str]]:
     return table
 
 
+def _plain_model_args(model) -> dict:
+    """The Model arguments as the plain values a task file holds (a beam as its table, arrays as lists)."""
+    plain = dict(model or {})
+    beam = plain.get("beam")
+    if beam is not None and hasattr(beam, "describe"):
+        plain["beam"] = beam.describe()
+    if np.ndim(plain.get("detuning", 0.0)) > 0:
+        plain["detuning"] = [float(d) for d in np.asarray(plain["detuning"], dtype=float).reshape(-1)]
+    return plain
+
+
 def compare_levels(
     positions: np.ndarray | Sequence[np.ndarray] | Callable[[int], np.ndarray],
     levels: Sequence[str] | Mapping[str, Mapping[str, Any]],
@@ -287,10 +298,11 @@ def compare_levels(
                          "a comparison averages over draws of one cloud, so give every draw the same N")
     run = {"calculation": "steady"} if times is None else {
         "calculation": "evolve", "times": np.asarray(times, dtype=float).tolist(), "initial": initial}
+    plain = _plain_model_args(model)
     index = {}
     for label, spec in table.items():
         for r in range(k):
-            index[(label, r)] = build_task(draws[r], dict(model or {}), run, detectors, spec, seed, r)
+            index[(label, r)] = build_task(draws[r], plain, run, detectors, spec, seed, r)
     results = execute(list(index.values()), out, executor, progress)
     per = stack(index, results, list(table), k, observables)
     summary = summarize(per, baseline, tolerance, confidence, observables)

@@ -9,6 +9,7 @@ from typing import Any
 import jax.numpy as jnp
 import numpy as np
 
+from .beam import GaussianBeam, mode_overlap_factor, photon_flux
 from .couplings import KINDS, _unit, device_couplings, validate_custom
 from .geometry import nearest_distance
 from .memory import require
@@ -107,12 +108,33 @@ def _finite_scalar(value, name: str, complex_ok: bool = False):
     return v
 
 
+def _detunings(value, n: int):
+    """One detuning (a float) or N of them (a read-only float array; a float again if they are all equal)."""
+    if np.ndim(value) == 0:
+        return _finite_scalar(value, "detuning")
+    try:
+        arr = np.array(value, dtype=float)
+    except (TypeError, ValueError) as err:
+        raise ValueError(
+            f"detuning must be a number or an array of N = {n} numbers (Γ0), got {value!r:.80}") from err
+    if arr.shape != (n,):
+        raise ValueError(f"detuning must be a number or one per emitter, shape ({n},); got shape {arr.shape}")
+    if not np.all(np.isfinite(arr)):
+        bad = int(np.argwhere(~np.isfinite(arr))[0, 0])
+        raise ValueError(f"detuning has NaN or infinite values (emitter {bad})")
+    if np.all(arr == arr[0]):
+        return float(arr[0])
+    arr.setflags(write=False)
+    return arr
+
+
 @dataclass(frozen=True, eq=False)
 class Model:
-    """N two-level emitters driven by a plane-wave laser, in the units of conventions.md.
+    """N two-level emitters driven by a laser, in the units of conventions.md.
 
-    H = Σ_i [−Δ σ_i⁺σ_i⁻ + ½(Ω_i σ_i⁺ + h.c.)] + Σ_{i≠j} J_ij σ_i⁺σ_j⁻, Ω_i = Ω(t) e^{i2π l̂·r_i},
-    with collective decay Γ_ij. Immutable; validated once on construction.
+    H = Σ_i [−Δ_i σ_i⁺σ_i⁻ + ½(Ω_i σ_i⁺ + h.c.)] + Σ_{i≠j} J_ij σ_i⁺σ_j⁻, Ω_i = Ω(t) e^{i2π l̂·r_i} (a plane
+    wave) or Ω(t) u(r_i) (a Gaussian beam, beyondmf.beam), with collective decay Γ_ij. Immutable; validated
+    once on construction.
 
     Parameters
     ----------
@@ -120,8 +142,11 @@ class Model:
     dipole : transition dipole unit vector ê (complex allowed; normalised).
     coupling : "vector", "scalar", "all-to-all", or a (J, Gamma) pair of (N, N) arrays.
     rabi : Rabi frequency Ω in Γ0 (complex allowed: a phase of the laser).
-    detuning : Δ = ω_laser − ω_atom in Γ0.
+    detuning : Δ = ω_laser − ω_atom in Γ0: one number, or an (N,) array Δ_i of static per-emitter detunings
+        (inhomogeneous broadening: Doppler shifts frozen during a run, docs/transmission.md).
     laser : propagation direction l̂ (normalised).
+    beam : None (a plane wave) or a `GaussianBeam` (waist, focus) along l̂; Ω is then the Rabi frequency at
+        the focus and the results carry the probe's transmission.
     envelope : None (constant), a list of (t_on, t_off) windows, or a JAX-traceable function of t.
     """
 
@@ -132,6 +157,7 @@ class Model:
     detuning: float = 0.0
     laser: Sequence[float] = (0, 0, 1)
     envelope: Any = None
+    beam: Any = None
     J: np.ndarray = field(init=False, repr=False)
     Gamma: np.ndarray = field(init=False, repr=False)
     _device: tuple = field(init=False, repr=False)
@@ -160,8 +186,12 @@ class Model:
             raise ValueError("laser must be a real propagation direction")
         las = las.real
         rabi = _finite_scalar(self.rabi, "rabi", complex_ok=True)
-        det = _finite_scalar(self.detuning, "detuning")
+        det = _detunings(self.detuning, len(pos))
         env = Envelope.parse(self.envelope)
+        beam = GaussianBeam.parse(self.beam)
+        if beam is not None and mode_overlap_factor(dip, las) < 1e-6:
+            raise ValueError("a beam along the dipole cannot drive it (its field is transverse); turn the "
+                             "dipole or the laser direction")
 
         require(2 * 8 * len(pos) ** 2 * 1.1, f"the couplings of {len(pos)} emitters")
         if isinstance(self.coupling, str):
@@ -195,6 +225,7 @@ class Model:
         set_(self, "laser", las)
         set_(self, "rabi", rabi)
         set_(self, "detuning", det)
+        set_(self, "beam", beam)
         set_(self, "envelope", env)
         set_(self, "coupling", kind)
         set_(self, "_device", (Jd, Gd))
@@ -219,14 +250,33 @@ class Model:
         return np.exp(2j * np.pi * self.positions @ self.laser)
 
     @property
+    def drive_profile(self) -> np.ndarray:
+        """Ω_i/Ω: e^{i 2π l̂·r_i} for a plane wave, the beam's mode u(r_i) for a Gaussian beam."""
+        if self.beam is None:
+            return self.drive_phases
+        return self.beam.mode(self.positions, self.laser)
+
+    @property
     def rabi_sites(self) -> np.ndarray:
-        """Ω_i = Ω e^{i 2π l̂·r_i} (at envelope 1)."""
-        return self.rabi * self.drive_phases
+        """Ω_i = Ω e^{i 2π l̂·r_i} or Ω u(r_i) (at envelope 1)."""
+        return self.rabi * self.drive_profile
+
+    @property
+    def detunings(self) -> np.ndarray:
+        """Δ_i of every emitter, an (N,) array (all equal unless the model was given per-emitter ones)."""
+        if np.ndim(self.detuning) == 0:
+            return np.full(self.n, float(self.detuning))
+        return self.detuning
+
+    @property
+    def uniform_detuning(self) -> bool:
+        return np.ndim(self.detuning) == 0
 
     @property
     def saturation(self) -> float:
-        """Single-emitter saturation parameter s = 2|Ω|²/(1 + 4Δ²)."""
-        return 2 * abs(self.rabi) ** 2 / (1 + 4 * self.detuning**2)
+        """Single-emitter saturation parameter s = 2|Ω_i|²/(1 + 4Δ_i²), the largest over the emitters (a
+        plane wave: 2|Ω|²/(1 + 4Δ²))."""
+        return float(np.max(2 * np.abs(self.rabi_sites) ** 2 / (1 + 4 * self.detunings**2)))
 
     def stiffness(self) -> float:
         """Gershgorin bound on the coupling rates, max_i Σ_j |J_ij| + |Γ_ij|/2, in Γ0.
@@ -270,7 +320,9 @@ class Model:
             "dipole": [complex(c) for c in self.dipole],
             "laser": [float(c) for c in self.laser],
             "rabi": complex(self.rabi),
-            "detuning": float(self.detuning),
+            "detuning": float(self.detuning) if self.uniform_detuning else [float(d) for d in self.detuning],
+            "drive_beam": self.beam.describe() if self.beam is not None else {"kind": "plane wave"},
+            **({"probe_photon_flux": photon_flux(self.beam, self)} if self.beam is not None else {}),
             "saturation": self.saturation,
             "envelope": self.envelope.describe(),
             # the exact windows (the description rounds them to 6 digits); empty: constant or a function

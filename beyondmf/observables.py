@@ -29,6 +29,9 @@ _UNITS = {
     "intensity_incoherent": ("photons per 1/Γ0 per steradian", "incoherent part of I(n̂)"),
     "g2": ("1", "second-order coherence at zero delay, per detector"),
     "g2_total": ("1", "second-order coherence of all emitted light"),
+    "transmission": ("1", "coherent amplitude t transmitted into the probe beam's mode"),
+    "transmission_power": ("1", "power transmission |t|² of the probe beam's mode"),
+    "optical_depth": ("1", "optical depth −ln|t|² of the probe beam's mode"),
 }
 
 
@@ -49,6 +52,23 @@ def _ratio_stderr(a, b, sa, sb, cab):
     with np.errstate(divide="ignore", invalid="ignore"):
         var = sa**2 / b**4 + 4 * a**2 * sb**2 / b**6 - 4 * a * cab / b**5
     return np.sqrt(np.maximum(var, 0))
+
+
+def _transmission(model: Model, coherence: np.ndarray, times) -> dict:
+    """t, |t|² and −ln|t|² of the probe's mode (docs/transmission.md), from the coherences alone, so the
+    same at every level; NaN where the probe is off."""
+    from .beam import transmission
+
+    if times is None or model.envelope.constant:
+        env = np.ones(len(coherence))
+    else:
+        env = np.asarray(model.envelope(np.asarray(times, dtype=float)), dtype=float).reshape(-1)
+    t = transmission(model.beam, model, coherence, env)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        power = np.abs(t) ** 2
+        depth = -np.log(power)
+    return {"transmission": (("time",), t), "transmission_power": (("time",), power),
+            "optical_depth": (("time",), depth)}
 
 
 def assemble(
@@ -101,6 +121,8 @@ def assemble(
         )
     for name, (dims, arr, *described) in m.diagnostics.items():
         data[name] = (dims, arr, *described)
+    if model.beam is not None:
+        data.update(_transmission(model, m.coherence, times))
 
     coords = {
         "atom": np.arange(model.n),

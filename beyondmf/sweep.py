@@ -75,9 +75,10 @@ __all__ = [
     "format_value",
 ]
 
-# Observables a [compare] section may name besides the default ones; the last three exist for dynamics.
-EXTRA_OBSERVABLES = ("intensity_coherent", "intensity_incoherent", "excited_mean", "emission_rate_peak",
-                     "peak_time", "emitted")
+# Observables a [compare] section may name besides the default ones; the transmission ones exist for a beam
+# drive, the last three for dynamics.
+EXTRA_OBSERVABLES = ("intensity_coherent", "intensity_incoherent", "transmission_power", "optical_depth",
+                     "excited_mean", "emission_rate_peak", "peak_time", "emitted")
 _SIZE_KEYS = {"gaussian": "widths", "ellipsoid": "semi_axes", "box": "sides"}
 _RANDOM = tuple(_SIZE_KEYS)
 # The attribute `role` of a level's own diagnostic kept by `stack` (vacuum_excitation, exchange_leak, …).
@@ -990,6 +991,8 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
         labels = labels or list(table)
         model = {"dipole": list(st.emitters.dipole), "coupling": st.emitters.coupling, "rabi": st.drive.rabi,
                  "detuning": st.drive.detuning, "laser": list(st.drive.laser)}
+        if st.drive.beam() is not None:
+            model["beam"] = st.drive.beam()
         if st.drive.windows is not None:
             model["envelope"] = [list(w) for w in st.drive.windows]
         if st.run.calculation == "steady":
@@ -1006,8 +1009,10 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
                 pos = geo.positions()
             except ValueError as err:
                 raise StudyError(f"geometry: {err} (grid point {point})") from None
+            drawn = dict(model, detuning=st.drive.detunings(len(pos), geo.params.get("seed", 0) if own
+                                                             else realization_seeds(spec.seed, r)[0]))
             for label, lv in table.items():
-                task = build_task(pos, model, run, dets, lv, spec.seed, r)
+                task = build_task(pos, drawn, run, dets, lv, spec.seed, r)
                 if own and "seed" in task and st.run.seed is not None:
                     task["seed"] = st.run.seed
                 index[(*idx, label, r)] = task

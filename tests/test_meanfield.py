@@ -136,7 +136,6 @@ def test_stiff_pair_auto_is_explicit_and_agrees_with_scipy():
     np.testing.assert_allclose(ds.emission_rate.values, ref, rtol=2e-6, atol=1e-9)
 
 
-@pytest.mark.skip(reason="known failure, open: fails in the full suite after the settle rewrite (issue 21, point 9)")
 def test_stiff_pair_steady_state_is_a_stable_fixed_point():
     """The steady state of the same cloud is a root of the equations (residual) where no mode grows
     (stability_growth_rate < 0, from the dense Jacobian's eigenvalues), and the t → ∞ limit of evolve

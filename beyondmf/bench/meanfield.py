@@ -102,7 +102,7 @@ def reference_meanfield(
     n = model.n
     K = 1j * model.J + 0.5 * (model.Gamma - np.eye(n))
     om = model.rabi_sites
-    det = model.detuning
+    det = model.detunings
 
     def rhs(_t, y):
         beta = y[:n] + 1j * y[n : 2 * n]

@@ -93,7 +93,7 @@ def near_args(model: Model, radius: float, far: str):
         "nbr": jnp.asarray(nbr), "rev": jnp.asarray(rev), "mask": jnp.asarray(mask),
         "Knr": jnp.asarray(Kn.real), "Kni": jnp.asarray(Kn.imag),
         "omega": jnp.asarray(np.stack([om.real, om.imag])),
-        "detuning": jnp.asarray(model.detuning),
+        "detuning": jnp.asarray(model.detunings),
     }
     s, w = quadrature()
     args["quad"] = jnp.asarray(np.stack([s, w]))  # the rule is evaluated for the indicator in any case
@@ -303,12 +303,13 @@ def near_derivative(t, y, args, envelope, far):
     dn = -n - jnp.imag(jnp.conj(om) * beta) - 2 * jnp.real(p)
 
     C = 0.5j * oma * (2 * Z - bb) + Y * ut + 2 * bb * rt + (2 * na - 1) * KB
-    dB = (2j * det - 1) * B + C + tr(C)
+    detb = det[nbr]
+    dB = (1j * (det[:, None] + detb) - 1) * B + C + tr(C)
     M = (-0.5 * A - 0.5j * jnp.conj(oma) * (2 * Z - bb) + jnp.conj(Kn) * (2 * D - nbb)
          + Y * jnp.conj(ut) + 2 * bb * jnp.conj(rt) + (2 * na - 1) * KcA)
-    dA = M + jnp.conj(tr(M))
+    dA = M + jnp.conj(tr(M)) + 1j * (detb - det[:, None]) * A
     dZ = (
-        (1j * det - 1.5) * Z - 0.5j * oma * A + 0.5j * jnp.conj(oma) * B + 0.5j * omb * (2 * D - na)
+        (1j * detb - 1.5) * Z - 0.5j * oma * A + 0.5j * jnp.conj(oma) * B + 0.5j * omb * (2 * D - na)
         - jnp.conj(Kn) * Zba - 2 * bb * jnp.real(pt) - ba * KcA - jnp.conj(ba) * KB
         - (B - 2 * ba * bb) * jnp.conj(ut) - (A - 2 * jnp.conj(ba) * bb) * ut
         + 2 * (D - 2 * na * nbb) * utT + (2 * nbb - 1) * ZKt + 2 * na * rtT

@@ -72,7 +72,7 @@ def auto_dt(model: Model) -> float:
     ‖iJ + ½Γ‖₂ (`Model.coupling_norm`) bounds the fastest coupled rate whatever the signs of a sample's
     z_i, so the fastest mode turns by at most 0.05 rad per step.
     """
-    scale = max(model.coupling_norm(), abs(model.rabi), abs(model.detuning), 1.0)
+    scale = max(model.coupling_norm(), abs(model.rabi), float(np.max(np.abs(model.detunings))), 1.0)
     return min(0.01, 0.05 / scale)
 
 
@@ -122,7 +122,7 @@ def spin_args(model: Model) -> dict[str, Any]:
         "B": jnp.asarray(noise_factor(gamma)),
         "gdiag": jnp.asarray(np.diag(gamma))[:, None],
         "omega": jnp.asarray(np.stack([om.real, om.imag])),
-        "detuning": jnp.asarray(model.detuning),
+        "detuning": jnp.asarray(model.detunings)[:, None],
     }
 
 

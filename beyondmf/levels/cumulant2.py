@@ -117,7 +117,7 @@ def cumulant2_args(model: Model) -> dict[str, Any]:
         "Kr": jnp.asarray(K.real),
         "Ki": jnp.asarray(K.imag),
         "omega": jnp.asarray(np.stack([om.real, om.imag])),
-        "detuning": jnp.asarray(model.detuning),
+        "detuning": jnp.asarray(model.detunings),
     }
 
 
@@ -153,7 +153,7 @@ def cumulant2_rhs(envelope: Envelope):
         dn = -n - jnp.imag(jnp.conj(om) * beta) - 2 * jnp.real(p)
 
         C = 0.5j * om[:, None] * (2 * Z - bb) + Y * ut + 2 * bb * rt + (2 * nn - 1) * KB
-        dB = (2j * det - 1) * B + C + C.T
+        dB = (1j * (det[:, None] + det[None, :]) - 1) * B + C + C.T
 
         M = (
             -0.5 * A
@@ -163,11 +163,11 @@ def cumulant2_rhs(envelope: Envelope):
             + 2 * bb * jnp.conj(rt)
             + (2 * nn - 1) * KcA
         )
-        dA = M + jnp.conj(M.T)
+        dA = M + jnp.conj(M.T) + 1j * (det[None, :] - det[:, None]) * A
 
         ba = beta[:, None]
         dZ = (
-            (1j * det - 1.5) * Z
+            (1j * det[None, :] - 1.5) * Z
             - 0.5j * om[:, None] * A
             + 0.5j * jnp.conj(om)[:, None] * B
             + 0.5j * om[None, :] * (2 * D - nn)
@@ -349,7 +349,7 @@ def _near_run(model: Model, probes: Probes, options, times, initial) -> Moments:
     args = _near.near_args(model, radius, far)
     solver = pick_solver(options["solver"], n * _near.near_size(k), model.stiffness())
     om = jnp.asarray(model.rabi_sites)
-    obs_args = (jnp.asarray(probes.weights), jnp.asarray(model.Gamma), args, om, jnp.asarray(model.detuning))
+    obs_args = (jnp.asarray(probes.weights), jnp.asarray(model.Gamma), args, om, jnp.asarray(model.detunings))
     rhs, observe = _near.NEAR_RHS[far](model.envelope), _NEAR_OBSERVE[far]
     if times is None:
         y0 = _near.near_product_state(np.tile([0.0, 0.0, -1.0], (n, 1)), nbr, mask)

@@ -66,9 +66,13 @@ def symmetry_breaks(model: Model, atol: float = 1e-10) -> list[str]:
     om = model.rabi_sites
     if not np.allclose(om, om[0], atol=atol * max(1.0, abs(om[0]))):
         broken.append(
-            "the drive is not uniform (Ω_i = Ω e^{i2π l̂·r_i} differs between emitters: put every emitter in "
-            "the same plane l̂·r = const mod 1, e.g. all at the origin)"
+            "the drive is not uniform (Ω_i = Ω e^{i2π l̂·r_i}, or a beam's Ω u(r_i), differs between "
+            "emitters: put every emitter in the same plane l̂·r = const mod 1, e.g. all at the origin, with a "
+            "plane wave)"
         )
+    if not model.uniform_detuning:
+        broken.append("the detuning differs between emitters (inhomogeneous broadening breaks the exchange "
+                      "symmetry of the Dicke space; use 'exact', 'jumps' or 'cumulant2')")
     return broken
 
 

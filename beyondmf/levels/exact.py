@@ -57,7 +57,7 @@ NULL_TOL = 1e-9  # relative singular-value threshold of the stationary space
 
 def _model_args(model: Model) -> dict[str, Any]:
     """The arrays the right-hand side reads: C = J − Δ I − (i/2)Γ, Γ, Ω_i, and the site tables."""
-    c = model.J - model.detuning * np.eye(model.n) - 0.5j * model.Gamma
+    c = model.J - np.diag(model.detunings) - 0.5j * model.Gamma
     return {
         "C": jnp.asarray(c),
         "G": jnp.asarray(model.Gamma),

@@ -200,7 +200,7 @@ class Jumps(Level):
             chunk = int(max(1, min(samples, budget // per_traj, 256)))
             if show_progress(options.get("progress", "auto")):  # a bar needs several chunks to move
                 chunk = min(chunk, max(1, -(-samples // 20)))
-        c = model.J - model.detuning * np.eye(n) - 0.5j * model.Gamma
+        c = model.J - np.diag(model.detunings) - 0.5j * model.Gamma
         dt = _auto_dt(model, c) if options["dt"] == "auto" else float(options["dt"])  # validate_options
         args = {
             "C": jnp.asarray(c),

@@ -85,7 +85,7 @@ def coupling_args(model: Model) -> dict[str, Any]:
         args = {"J": J, "G": G}
     om = model.rabi_sites
     args["omega"] = jnp.asarray(np.stack([om.real, om.imag]))
-    args["detuning"] = jnp.asarray(model.detuning)
+    args["detuning"] = jnp.asarray(model.detunings)
     return args
 
 

@@ -47,7 +47,7 @@ def check(model, probes, delays, freqs, at) -> None:
 
 
 def _args(model: Model) -> dict:
-    c = model.J - model.detuning * np.eye(model.n) - 0.5j * model.Gamma
+    c = model.J - np.diag(model.detunings) - 0.5j * model.Gamma
     return {"C": jnp.asarray(c), "G": jnp.asarray(model.Gamma),
             "omega": jnp.asarray(model.rabi_sites.astype(complex)), "tab": q.site_tables(model.n)}
 
