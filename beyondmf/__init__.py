@@ -10,7 +10,8 @@ from . import (
     _config,  # noqa: F401,E402  (64-bit JAX before anything else touches JAX)
     geometry,  # noqa: E402
 )
-from .api import evolve, steady  # noqa: E402
+from .api import drive_scan, evolve, steady  # noqa: E402
+from .beam import GaussianBeam  # noqa: E402
 from .correlations import correlations  # noqa: E402
 from .couplings import couplings  # noqa: E402
 from .levels import Level, Moments, available_levels, get_level, register  # noqa: E402
@@ -28,6 +29,8 @@ __all__ = [
     "Model",
     "evolve",
     "steady",
+    "drive_scan",
+    "GaussianBeam",
     "correlations",
     "couplings",
     "geometry",

@@ -17,7 +17,7 @@ from .model import Model
 from .observables import assemble
 from .results import provenance
 
-__all__ = ["evolve", "steady", "initial_bloch"]
+__all__ = ["evolve", "steady", "drive_scan", "initial_bloch"]
 
 
 def initial_bloch(model: Model, initial) -> np.ndarray:
@@ -222,3 +222,96 @@ def _judge(ds: xr.Dataset, model: Model, level: Level) -> xr.Dataset:
         _note(f"{level.name}: values no physical state can have: {text}. The approximation of this level "
               f"fails here; {level.when_unphysical}")
     return ds
+
+
+def _scan_values(detuning, rabi):
+    given = [(name, v) for name, v in (("detuning", detuning), ("rabi", rabi)) if v is not None]
+    if len(given) != 1:
+        raise ValueError("drive_scan takes exactly one of detuning=[...] (laser detunings Δ, Γ0) or "
+                         "rabi=[...] (Rabi frequencies Ω, Γ0)")
+    name, values = given[0]
+    try:
+        arr = np.asarray(values, dtype=float)
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"{name} must be a 1-D sequence of numbers (Γ0), got {values!r:.80}") from err
+    if arr.ndim != 1 or arr.size == 0 or not np.all(np.isfinite(arr)):
+        raise ValueError(
+            f"{name} must be a non-empty 1-D sequence of finite numbers (Γ0), got {values!r:.80}")
+    if name == "rabi" and np.any(arr < 0):
+        raise ValueError("rabi values must be non-negative (a phase of the laser goes into the model's rabi)")
+    return name, arr
+
+
+def drive_scan(
+    model: Model,
+    level: str,
+    detuning=None,
+    rabi=None,
+    times=None,
+    initial="ground",
+    detectors: Mapping[str, Any] | None = None,
+    seed: int | None = None,
+    **options,
+) -> xr.Dataset:
+    """The same cloud under a grid of drives, as one solve where the level can batch them.
+
+    ``detuning``: laser detunings Δ_k (Γ0); per-emitter detunings of the model keep their spread,
+    Δ_i → Δ_k + (Δ_i − mean Δ). ``rabi``: Rabi frequencies Ω_k (Γ0), the model's laser phase kept. Exactly
+    one of them. ``times`` None: steady states; else a dynamics from ``initial`` as in `evolve`.
+
+    `meanfield` and `cumulant2` (dense) integrate the whole grid as one system whose couplings act on all
+    drives at once (matrix-matrix products in place of matrix-vector ones; docs/transmission.md, Spectra),
+    in groups that fit in memory; every other level runs one solve per drive. The result has a leading
+    dimension named ``detuning`` or ``rabi``, each entry the Dataset `evolve`/`steady` would give (its
+    warnings in ``warnings_per_drive``).
+    """
+    _check_model(model)
+    name, values = _scan_values(detuning, rabi)
+    lvl = get_level(level)
+    opts = _options(lvl, options)
+    if name == "detuning":
+        spread = model.detunings - float(np.mean(model.detunings))
+        models = [model.with_drive(detuning=v + spread if not model.uniform_detuning else v) for v in values]
+    else:
+        phase = model.rabi / abs(model.rabi) if abs(model.rabi) > 0 else 1.0
+        models = [model.with_drive(rabi=v * phase) for v in values]
+    probes = Probes.build(model, _detectors(model, detectors))
+    lvl.check(model)
+    for m in models:
+        lvl.check(m)
+    seed = _seed(lvl, seed)
+    if times is None:
+        if not model.envelope.constant:
+            raise ValueError(
+                "steady needs a constant drive: build the model with envelope=None, or give times")
+        kind, ts, extra = "steady", None, {}
+    else:
+        ts = np.asarray(times, dtype=float)
+        if ts.ndim != 1 or ts.size == 0 or not np.all(np.isfinite(ts)) or np.any(np.diff(ts) <= 0):
+            raise ValueError("times must be a non-empty, finite, strictly increasing sequence")
+        _check_results_size(model, lvl, len(ts) * len(models), len(probes.names))
+        bloch = initial_bloch(model, initial)
+        extra = {"initial": initial if isinstance(initial, str) else "bloch vectors"}
+        kind = "evolve"
+    with collecting() as said:
+        if ts is None:
+            moments = lvl.steady_batch(models, probes, seed, opts)
+        else:
+            moments = lvl.evolve_batch(models, ts, bloch, probes, seed, opts)
+    parts, notes = [], []
+    for m, mom in zip(models, moments, strict=True):
+        with collecting() as own:
+            attrs = _attrs(m, lvl, kind, opts, seed, extra)
+            parts.append(_judge(assemble(m, lvl.name, mom, probes, ts, attrs), m, lvl))
+        notes.append(list(own))
+    ds = xr.concat(parts, dim=name, combine_attrs="override")
+    ds = ds.assign_coords({name: values})
+    long = "laser detuning Δ" if name == "detuning" else "Rabi frequency Ω"
+    ds[name].attrs.update(units="Γ0", long_name=long)
+    ds.attrs[name] = [float(v) for v in values]
+    ds.attrs["scanned"] = name
+    ds.attrs["saturation"] = [float(p.attrs["saturation"]) for p in parts]
+    ds.attrs["warnings"] = list(said) + sorted({w for n in notes for w in n})
+    ds.attrs["warnings_per_drive"] = notes
+    ds.attrs["unphysical"] = sorted({u for p in parts for u in p.attrs.get("unphysical", [])})
+    return _with_inputs(model, ds)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import copy
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -234,6 +235,16 @@ class Model:
         # zero-copy read-only NumPy views of the device arrays (on the CPU)
         set_(self, "J", np.asarray(Jd))
         set_(self, "Gamma", np.asarray(Gd))
+
+    def with_drive(self, rabi=None, detuning=None) -> Model:
+        """The same emitters and couplings under another Rabi frequency and/or detuning(s), without
+        computing the couplings again (a scan over the drive, `beyondmf.drive_scan`)."""
+        other = copy.copy(self)
+        if rabi is not None:
+            object.__setattr__(other, "rabi", _finite_scalar(rabi, "rabi", complex_ok=True))
+        if detuning is not None:
+            object.__setattr__(other, "detuning", _detunings(detuning, self.n))
+        return other
 
     @property
     def n(self) -> int:

@@ -143,13 +143,13 @@ def _slab(n_density, radius, length, seed):
     return np.stack([r * np.cos(phi), r * np.sin(phi), rng.uniform(-length / 2, length / 2, count)], 1)
 
 
-@pytest.mark.slow
 def test_dilute_slab_follows_beer_lambert_with_a_lorentzian_line():
     """A dilute slab (n·λ0³ = 0.03, length 30 λ0, wider than a beam of waist 4 λ0) weakly probed at mean field
     (the coupled-dipole linear response): the optical depth −ln|t|² averaged over 12 draws is n σ0 L
-    (Beer–Lambert with σ0 = 3λ0²/2π: Foot, Atomic Physics, §7.5), and in every draw OD(Δ)/OD(0) is the
-    Lorentzian 1/(1 + 4Δ²) of full width Γ0 (Steck). Tolerances: three standard errors of the mean over the
-    draws plus 4 % for the dilute medium's collective corrections (order n·λ0³; measured 1–3 % here)."""
+    (Beer–Lambert with σ0 = 3λ0²/2π: Foot, Atomic Physics, §7.5), and OD(Δ)/OD(0) averaged over the draws
+    is the Lorentzian 1/(1 + 4Δ²) of full width Γ0 (Steck). Tolerances: three standard errors of the mean
+    over the draws (single draws scatter by up to 8 %: speckle of the random multiple scattering) plus 4 %
+    (OD) and 2 % (line) for the dilute medium's collective corrections, of order n·λ0³."""
     n_density, length, w0 = 0.03, 30.0, 4.0
     od0 = n_density * SIGMA0 * length
     ods, ratios = [], []
@@ -161,9 +161,11 @@ def test_dilute_slab_follows_beer_lambert_with_a_lorentzian_line():
             od[det] = float(_quiet(bm.steady, m, "meanfield").optical_depth)
         ods.append(od[0.0])
         ratios.append(od[0.5] / od[0.0])
+    print("optical depths", np.round(ods, 4), "ratios", np.round(ratios, 4), "Beer-Lambert", od0)
     mean, se = np.mean(ods), np.std(ods, ddof=1) / np.sqrt(len(ods))
     assert abs(mean - od0) < 3 * se + 0.04 * od0, (mean, se, od0)
-    np.testing.assert_allclose(ratios, 1 / (1 + 4 * 0.5**2), rtol=0.06)
+    r_mean, r_se = np.mean(ratios), np.std(ratios, ddof=1) / np.sqrt(len(ratios))
+    assert abs(r_mean - 0.5) < 3 * r_se + 0.02 * 0.5, (r_mean, r_se)
 
 
 def test_doppler_broadened_dilute_cloud_has_the_voigt_line():
@@ -312,3 +314,50 @@ def test_a_focus_without_a_waist_is_refused(tmp_path):
     path.write_text(DOPPLER_STUDY.replace("beam_waist = 4.0", "beam_focus = [0, 0, 1]"))
     with pytest.raises(StudyError, match="beam_focus: give drive.beam_waist"):
         read_study(path)
+
+
+# ---- spectra as one solve ----
+
+def _scan_cloud():
+    pos = bm.geometry.gaussian_cloud(6, 0.4, seed=1, min_distance=0.15)
+    return bm.Model(pos, rabi=0.8, beam=GaussianBeam(1.5), detuning=np.linspace(-0.3, 0.3, 6))
+
+
+@pytest.mark.parametrize("level", ["meanfield", "cumulant2"])
+def test_a_batched_drive_scan_equals_one_solve_per_drive(level):
+    """drive_scan integrates every detuning as one system (common practice: a block-diagonal system
+    solved together gives each block's solution within the shared error control)."""
+    m = _scan_cloud()
+    dets = np.array([-1.0, 0.0, 0.7, 2.0])
+    spread = m.detunings - m.detunings.mean()
+    if level == "meanfield":  # the steady states (cumulant2's compile of its steady-state search: ~20 s)
+        scan = _quiet(bm.drive_scan, m, level, detuning=dets)
+        assert list(scan.detuning.values) == list(dets) and scan.attrs["scanned"] == "detuning"
+        for k, d in enumerate(dets):
+            one = _quiet(bm.steady, m.with_drive(detuning=d + spread), level)
+            assert float(scan.emission_rate[k]) == pytest.approx(float(one.emission_rate), rel=1e-9)
+            assert complex(scan.transmission[k]) == pytest.approx(complex(one.transmission), abs=1e-10)
+    times = np.linspace(0, 3, 7)
+    scan = _quiet(bm.drive_scan, m, level, rabi=[0.3, 1.5], times=times)
+    assert scan.sizes["rabi"] == 2 and scan.attrs["batched_drives"] == 2
+    for k, r in enumerate((0.3, 1.5)):
+        one = _quiet(bm.evolve, m.with_drive(rabi=r), level, times)
+        np.testing.assert_allclose(scan.excited[k].values, one.excited.values, atol=5e-6)
+
+
+def test_a_level_that_cannot_batch_runs_one_solve_per_drive():
+    m = bm.Model(np.array([[0, 0, 0], [0.2, 0, 0.1]]), rabi=1.0)
+    scan = bm.drive_scan(m, "exact", detuning=[-0.5, 0.5])
+    for k, d in enumerate((-0.5, 0.5)):
+        assert float(scan.emission_rate[k]) == pytest.approx(
+            float(bm.steady(m.with_drive(detuning=d), "exact").emission_rate), rel=1e-12)
+
+
+def test_drive_scan_refuses_two_scans_or_bad_values():
+    m = bm.Model(np.zeros((1, 3)), rabi=1.0)
+    with pytest.raises(ValueError, match="exactly one of"):
+        bm.drive_scan(m, "meanfield", detuning=[0.0], rabi=[1.0])
+    with pytest.raises(ValueError, match="finite numbers"):
+        bm.drive_scan(m, "meanfield", detuning=[0.0, np.nan])
+    with pytest.raises(ValueError, match="non-negative"):
+        bm.drive_scan(m, "meanfield", rabi=[-1.0])

@@ -235,6 +235,15 @@ class Level(ABC):
     def steady(self, model: Model, probes: Probes, seed: int | None, options: dict[str, Any]) -> Moments:
         """Moments of the steady state (time axis of length 1)."""
 
+    def evolve_batch(self, models: list[Model], times, initial, probes, seed, options) -> list[Moments]:
+        """`evolve` for models that differ only in their drive (Rabi frequency, detunings): one solve
+        after another here; levels that can batch them into one solve (`beyondmf.drive_scan`) override."""
+        return [self.evolve(m, times, initial, probes, seed, options) for m in models]
+
+    def steady_batch(self, models: list[Model], probes, seed, options) -> list[Moments]:
+        """`steady` for models that differ only in their drive; see `evolve_batch`."""
+        return [self.steady(m, probes, seed, options) for m in models]
+
 
 _REGISTRY: dict[str, type[Level]] = {}
 

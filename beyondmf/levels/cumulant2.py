@@ -51,9 +51,10 @@ import numpy as np
 
 from .._notes import warn as _note
 from ..estimators_pair import pair_field_moments, pair_rate_moments
-from ..integrate import ODE_OPTIONS, observe_once, per_envelope, pick_solver, settle, solve
+from ..integrate import ODE_OPTIONS, SolveError, observe_once, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
+from . import _batch
 from . import _cumulant2_near as _near
 from .base import Level, Moments, OptionError, Probes, register
 
@@ -286,6 +287,47 @@ class Cumulant2(Level):
         )
         obs = observe_once(_observe, y, obs_args)
         return _moments(obs, {"solver": solver, **info})
+
+    # one solve for a scan of the drive (beyondmf.drive_scan; levels._batch); the dense level only
+    def _batch_parts(self, models, probes, options):
+        solver, _, obs_args = self._prepare(models[0], probes, options)
+        rhs, observe = _batch.batched(cumulant2_rhs(models[0].envelope), _observe)
+        return solver, _batch.stack_args([cumulant2_args(m) for m in models]), obs_args, rhs, observe
+
+    def _bytes_each(self, model):
+        return 8 * model.n**2 * (5 * 9 + 20)  # the state, ~7 solver stages of it and the temporaries
+
+    def evolve_batch(self, models, times, initial, probes, seed, options):
+        if _radius_of(options, models[0]) is not None:
+            return super().evolve_batch(models, times, initial, probes, seed, options)
+        out = []
+        for group in _batch.groups(models, self._bytes_each(models[0])):
+            solver, args, obs_args, rhs, observe = self._batch_parts(group, probes, options)
+            y0 = jnp.stack([product_state(initial)] * len(group))
+            obs, _, stats = solve(rhs, observe, y0, args, obs_args, times, options, solver,
+                                  jump_ts=group[0].envelope.jumps,
+                                  what=f"cumulant2 evolution of {len(group)} drives in one solve")
+            out += [_moments(one, {**stats, "batched_drives": len(group)})
+                    for one in _batch.split(obs, len(group))]
+        return out
+
+    def steady_batch(self, models, probes, seed, options):
+        if _radius_of(options, models[0]) is not None:
+            return super().steady_batch(models, probes, seed, options)
+        out = []
+        for group in _batch.groups(models, self._bytes_each(models[0])):
+            solver, args, obs_args, rhs, observe = self._batch_parts(group, probes, options)
+            y0 = jnp.stack([product_state(np.tile([0.0, 0.0, -1.0], (models[0].n, 1)))] * len(group))
+            try:
+                y, info = settle(rhs, observe, y0, args, obs_args, options, solver,
+                                 what=f"cumulant2 steady state of {len(group)} drives in one solve")
+            except SolveError as err:
+                out += _batch.steady_one_by_one(self, group, probes, seed, options, err)
+                continue
+            obs = observe_once(observe, y, obs_args)
+            out += [_moments(one, {"solver": solver, **info, "batched_drives": len(group)})
+                    for one in _batch.split(obs, len(group))]
+        return out
 
 
 # ---- pair radius: near pairs dynamical, far pairs by a rule (beyondmf/levels/_cumulant2_near.py) ----

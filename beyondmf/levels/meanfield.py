@@ -23,6 +23,7 @@ import numpy as np
 from ..estimators import product_field_moments, product_rate_moments
 from ..integrate import (
     ODE_OPTIONS,
+    SolveError,
     check_bounds,
     observe_once,
     per_envelope,
@@ -32,6 +33,7 @@ from ..integrate import (
 )
 from ..memory import require
 from ..model import Envelope, Model
+from . import _batch
 from .base import Level, Moments, Probes, register
 
 __all__ = ["MeanField", "meanfield_rhs"]
@@ -130,6 +132,43 @@ class MeanField(Level):
                          first_chunk=STEADY_FIRST_CHUNK, stability_size=STABILITY_SIZE)
         obs = observe_once(_observe, y, obs_args)
         return Moments(**obs, attrs={"solver": solver, **info})
+
+    # one solve for a scan of the drive (beyondmf.drive_scan; levels._batch)
+    def _batch_parts(self, models, probes, options):
+        solver, _, obs_args = self._prepare(models[0], probes, options)
+        rhs, observe = _batch.batched(meanfield_rhs(models[0].envelope), _observe)
+        return solver, _batch.stack_args([coupling_args(m) for m in models]), obs_args, rhs, observe
+
+    def evolve_batch(self, models, times, initial, probes, seed, options):
+        out = []
+        for group in _batch.groups(models, 8 * 3 * models[0].n * 12):
+            solver, args, obs_args, rhs, observe = self._batch_parts(group, probes, options)
+            y0 = jnp.stack([bloch_to_state(initial)] * len(group))
+            what = f"mean-field evolution of {len(group)} drives in one solve"
+            obs, _, stats = solve(rhs, observe, y0, args, obs_args, times, options, solver,
+                                  jump_ts=group[0].envelope.jumps, what=what)
+            for one in _batch.split(obs, len(group)):
+                excess = _bound_excess(one, "mean-field evolution", options)
+                attrs = {**stats, "bound_excess": excess, "batched_drives": len(group)}
+                out.append(Moments(**one, attrs=attrs))
+        return out
+
+    def steady_batch(self, models, probes, seed, options):
+        out = []
+        for group in _batch.groups(models, 8 * 3 * models[0].n * 12):
+            solver, args, obs_args, rhs, observe = self._batch_parts(group, probes, options)
+            y0 = jnp.stack([bloch_to_state(np.tile([0.0, 0.0, -1.0], (models[0].n, 1)))] * len(group))
+            try:
+                y, info = settle(rhs, observe, y0, args, obs_args, options, solver,
+                                 what=f"mean-field steady state of {len(group)} drives in one solve",
+                                 first_chunk=STEADY_FIRST_CHUNK, stability_size=STABILITY_SIZE)
+            except SolveError as err:
+                out += _batch.steady_one_by_one(self, group, probes, seed, options, err)
+                continue
+            obs = observe_once(observe, y, obs_args)
+            for one in _batch.split(obs, len(group)):
+                out.append(Moments(**one, attrs={"solver": solver, **info, "batched_drives": len(group)}))
+        return out
 
 
 # The steady state integrates this long first (Γ0⁻¹), then looks for the fixed point by Newton's method
