@@ -177,7 +177,7 @@ def test_compare_levels_uses_the_same_draws_at_every_level(tmp_path):
     np.testing.assert_array_equal(back["positions"].sel(realization=2),
                                   disc(bm.sweep.realization_seeds(2, 2)[0]))
     assert back.attrs["model"] == {"dipole": [1, 0, 0], "coupling": "vector", "rabi": 1, "detuning": 0,
-                                   "laser": [0, 0, 1], "envelope": None}
+                                   "laser": [0, 0, 1], "envelope": None, "beam": None}
     assert back.attrs["run"]["calculation"] == "evolve" and back.attrs["run"]["times"][-1] == 2
     entry = back.attrs["level_options"]["meanfield_tight"]
     assert {k: entry[k] for k in ("level", "options")} == {"level": "meanfield",
