@@ -271,7 +271,7 @@ def drive_scan(
     opts = _options(lvl, options)
     if name == "detuning":
         spread = model.detunings - float(np.mean(model.detunings))
-        models = [model.with_drive(detuning=v + spread if not model.uniform_detuning else v) for v in values]
+        models = [model.with_drive(detuning=v + spread) for v in values]  # equal ones collapse to one float
     else:
         phase = model.rabi / abs(model.rabi) if abs(model.rabi) > 0 else 1.0
         models = [model.with_drive(rabi=v * phase) for v in values]

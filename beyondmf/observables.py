@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from .beam import transmission
 from .levels.base import Moments, Probes
 from .model import Model
 
@@ -57,8 +58,6 @@ def _ratio_stderr(a, b, sa, sb, cab):
 def _transmission(model: Model, coherence: np.ndarray, times) -> dict:
     """t, |t|² and −ln|t|² of the probe's mode (docs/transmission.md), from the coherences alone, so the
     same at every level; NaN where the probe is off."""
-    from .beam import transmission
-
     if times is None or model.envelope.constant:
         env = np.ones(len(coherence))
     else:

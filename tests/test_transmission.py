@@ -362,3 +362,12 @@ def test_drive_scan_refuses_two_scans_or_bad_values():
         bm.drive_scan(m, "meanfield", detuning=[0.0, np.nan])
     with pytest.raises(ValueError, match="non-negative"):
         bm.drive_scan(m, "meanfield", rabi=[-1.0])
+
+
+def test_a_scan_whose_steady_state_search_fails_names_the_drive():
+    """A batch that does not settle is solved member by member, and the member that fails is named."""
+    from beyondmf.integrate import SolveError
+
+    m = bm.Model(bm.geometry.gaussian_cloud(8, 0.3, seed=2, min_distance=0.1), rabi=1.0)
+    with pytest.raises(SolveError, match=r"at the drive Ω = 1\+0j, Δ = -1.*max_steps"):
+        _quiet(bm.drive_scan, m, "meanfield", detuning=[-1.0, 1.0], max_steps=5, solver="tsit5")

@@ -14,6 +14,7 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 
+from ..integrate import SolveError, observe_once, settle, solve
 from ..memory import available_bytes
 
 _FNS: dict[tuple, tuple[Callable, Callable]] = {}
@@ -59,12 +60,10 @@ def drive_of(model) -> str:
 def steady_one_by_one(level, models, probes, seed, options, err) -> list:
     """The batch's steady-state search failed (it settles only when every member does): solve the members
     one by one, so that each one that settles is kept and a failing one is named by its drive."""
-    from ..integrate import SolveError
-
     out = []
     for m in models:
         try:
-            out.append(type(level).steady(level, m, probes, seed, options))
+            out.append(level.steady(m, probes, seed, options))
         except SolveError as one:
             raise SolveError(f"at the drive {drive_of(m)}: {one}") from err
     return out
@@ -73,3 +72,38 @@ def steady_one_by_one(level, models, probes, seed, options, err) -> list:
 def split(obs: dict, count: int) -> list[dict]:
     """Observations with a batch axis after the time axis → one dict per member."""
     return [{k: v[:, b] for k, v in obs.items()} for b in range(count)]
+
+
+def evolve_groups(models, times, y0_one, options, bytes_each: float, parts: Callable, finish: Callable,
+                  label: str) -> list:
+    """A level's `evolve_batch`: ``parts(group)`` → (solver, args, obs_args, rhs, observe) of a group,
+    ``finish(observations, attrs)`` → the Moments of one member."""
+    out = []
+    for group in groups(models, bytes_each):
+        solver, args, obs_args, rhs, observe = parts(group)
+        y0 = jnp.stack([y0_one] * len(group))
+        obs, _, stats = solve(rhs, observe, y0, args, obs_args, times, options, solver,
+                              jump_ts=group[0].envelope.jumps,
+                              what=f"{label} evolution of {len(group)} drives in one solve")
+        out += [finish(one, {**stats, "batched_drives": len(group)}) for one in split(obs, len(group))]
+    return out
+
+
+def steady_groups(level, models, y0_one, probes, seed, options, bytes_each: float, parts: Callable,
+                  finish: Callable, label: str, **settle_options) -> list:
+    """A level's `steady_batch` (see `evolve_groups`); a group that does not settle as a whole is solved
+    member by member (`steady_one_by_one`)."""
+    out = []
+    for group in groups(models, bytes_each):
+        solver, args, obs_args, rhs, observe = parts(group)
+        y0 = jnp.stack([y0_one] * len(group))
+        try:
+            what = f"{label} steady state of {len(group)} drives in one solve"
+            y, info = settle(rhs, observe, y0, args, obs_args, options, solver, what=what, **settle_options)
+        except SolveError as err:
+            out += steady_one_by_one(level, group, probes, seed, options, err)
+            continue
+        obs = observe_once(observe, y, obs_args)
+        out += [finish(one, {"solver": solver, **info, "batched_drives": len(group)})
+                for one in split(obs, len(group))]
+    return out

@@ -51,7 +51,7 @@ import numpy as np
 
 from .._notes import warn as _note
 from ..estimators_pair import pair_field_moments, pair_rate_moments
-from ..integrate import ODE_OPTIONS, SolveError, observe_once, per_envelope, pick_solver, settle, solve
+from ..integrate import ODE_OPTIONS, observe_once, per_envelope, pick_solver, settle, solve
 from ..memory import require
 from ..model import Envelope, Model
 from . import _batch
@@ -300,34 +300,16 @@ class Cumulant2(Level):
     def evolve_batch(self, models, times, initial, probes, seed, options):
         if _radius_of(options, models[0]) is not None:
             return super().evolve_batch(models, times, initial, probes, seed, options)
-        out = []
-        for group in _batch.groups(models, self._bytes_each(models[0])):
-            solver, args, obs_args, rhs, observe = self._batch_parts(group, probes, options)
-            y0 = jnp.stack([product_state(initial)] * len(group))
-            obs, _, stats = solve(rhs, observe, y0, args, obs_args, times, options, solver,
-                                  jump_ts=group[0].envelope.jumps,
-                                  what=f"cumulant2 evolution of {len(group)} drives in one solve")
-            out += [_moments(one, {**stats, "batched_drives": len(group)})
-                    for one in _batch.split(obs, len(group))]
-        return out
+        size = self._bytes_each(models[0])
+        return _batch.evolve_groups(models, times, product_state(initial), options, size,
+                                    lambda g: self._batch_parts(g, probes, options), _moments, "cumulant2")
 
     def steady_batch(self, models, probes, seed, options):
         if _radius_of(options, models[0]) is not None:
             return super().steady_batch(models, probes, seed, options)
-        out = []
-        for group in _batch.groups(models, self._bytes_each(models[0])):
-            solver, args, obs_args, rhs, observe = self._batch_parts(group, probes, options)
-            y0 = jnp.stack([product_state(np.tile([0.0, 0.0, -1.0], (models[0].n, 1)))] * len(group))
-            try:
-                y, info = settle(rhs, observe, y0, args, obs_args, options, solver,
-                                 what=f"cumulant2 steady state of {len(group)} drives in one solve")
-            except SolveError as err:
-                out += _batch.steady_one_by_one(self, group, probes, seed, options, err)
-                continue
-            obs = observe_once(observe, y, obs_args)
-            out += [_moments(one, {"solver": solver, **info, "batched_drives": len(group)})
-                    for one in _batch.split(obs, len(group))]
-        return out
+        ground = product_state(np.tile([0.0, 0.0, -1.0], (models[0].n, 1)))
+        return _batch.steady_groups(self, models, ground, probes, seed, options, self._bytes_each(models[0]),
+                                    lambda g: self._batch_parts(g, probes, options), _moments, "cumulant2")
 
 
 # ---- pair radius: near pairs dynamical, far pairs by a rule (beyondmf/levels/_cumulant2_near.py) ----

@@ -23,7 +23,6 @@ import numpy as np
 from ..estimators import product_field_moments, product_rate_moments
 from ..integrate import (
     ODE_OPTIONS,
-    SolveError,
     check_bounds,
     observe_once,
     per_envelope,
@@ -140,36 +139,24 @@ class MeanField(Level):
         return solver, _batch.stack_args([coupling_args(m) for m in models]), obs_args, rhs, observe
 
     def evolve_batch(self, models, times, initial, probes, seed, options):
-        out = []
-        for group in _batch.groups(models, 8 * 3 * models[0].n * 12):
-            solver, args, obs_args, rhs, observe = self._batch_parts(group, probes, options)
-            y0 = jnp.stack([bloch_to_state(initial)] * len(group))
-            what = f"mean-field evolution of {len(group)} drives in one solve"
-            obs, _, stats = solve(rhs, observe, y0, args, obs_args, times, options, solver,
-                                  jump_ts=group[0].envelope.jumps, what=what)
-            for one in _batch.split(obs, len(group)):
-                excess = _bound_excess(one, "mean-field evolution", options)
-                attrs = {**stats, "bound_excess": excess, "batched_drives": len(group)}
-                out.append(Moments(**one, attrs=attrs))
-        return out
+        def finish(one, attrs):
+            excess = _bound_excess(one, "mean-field evolution", options)
+            return Moments(**one, attrs={**attrs, "bound_excess": excess})
+
+        size = _BATCH_BYTES * models[0].n
+        return _batch.evolve_groups(models, times, bloch_to_state(initial), options, size,
+                                    lambda g: self._batch_parts(g, probes, options), finish, "mean-field")
 
     def steady_batch(self, models, probes, seed, options):
-        out = []
-        for group in _batch.groups(models, 8 * 3 * models[0].n * 12):
-            solver, args, obs_args, rhs, observe = self._batch_parts(group, probes, options)
-            y0 = jnp.stack([bloch_to_state(np.tile([0.0, 0.0, -1.0], (models[0].n, 1)))] * len(group))
-            try:
-                y, info = settle(rhs, observe, y0, args, obs_args, options, solver,
-                                 what=f"mean-field steady state of {len(group)} drives in one solve",
-                                 first_chunk=STEADY_FIRST_CHUNK, stability_size=STABILITY_SIZE)
-            except SolveError as err:
-                out += _batch.steady_one_by_one(self, group, probes, seed, options, err)
-                continue
-            obs = observe_once(observe, y, obs_args)
-            for one in _batch.split(obs, len(group)):
-                out.append(Moments(**one, attrs={"solver": solver, **info, "batched_drives": len(group)}))
-        return out
+        ground = bloch_to_state(np.tile([0.0, 0.0, -1.0], (models[0].n, 1)))
+        return _batch.steady_groups(self, models, ground, probes, seed, options, _BATCH_BYTES * models[0].n,
+                                    lambda g: self._batch_parts(g, probes, options),
+                                    lambda one, attrs: Moments(**one, attrs=attrs), "mean-field",
+                                    first_chunk=STEADY_FIRST_CHUNK, stability_size=STABILITY_SIZE)
 
+
+# Bytes per emitter of one member of a batched solve: its state (3 N) and ~12 solver copies of it.
+_BATCH_BYTES = 8 * 3 * 12
 
 # The steady state integrates this long first (Γ0⁻¹), then looks for the fixed point by Newton's method
 # and, up to STABILITY_SIZE unknowns, checks its stability (`integrate.settle`).
