@@ -3,6 +3,7 @@ guards on report times, grid sizes and task counts before anything is allocated 
 
 from __future__ import annotations
 
+import sys
 import textwrap
 
 import numpy as np
@@ -137,3 +138,24 @@ def test_an_allocation_that_xla_could_not_make_is_a_memory_failure_of_the_machin
     assert "RESOURCE_EXHAUSTED: Out of memory allocating 320000000000 bytes." in str(as_memory_error(err))
     assert as_memory_error(JaxRuntimeError("INVALID_ARGUMENT")) is None
     assert failure_kind(TypeError("a bug")) is None  # propagates: not a failure of the task
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="memory mappings are read from /proc")
+def test_compiled_code_is_dropped_before_the_kernels_mapping_limit_is_reached():
+    """Measured here (no published source): each function XLA compiles for the CPU keeps memory mappings
+    of its machine code; past vm.max_map_count the process dies of a segmentation fault (a CI run did).
+    The guard frees them when asked, and leaves them alone below its threshold."""
+    import jax
+    import jax.numpy as jnp
+
+    from beyondmf.memory import _mapping_counts, release_compiled_code
+
+    release_compiled_code(0.0)
+    before = _mapping_counts()[0]
+    for n in range(1, 60):
+        jax.jit(lambda x, n=n: jnp.sin(x) * n)(jnp.ones(n)).block_until_ready()
+    grown = _mapping_counts()[0]
+    assert grown > before + 60  # a few mappings per compiled function
+    assert release_compiled_code(1.0) is False  # far below the kernel's limit: nothing dropped
+    assert release_compiled_code(0.0) is True
+    assert _mapping_counts()[0] < grown - 60
