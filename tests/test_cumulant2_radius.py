@@ -37,6 +37,7 @@ def _rel(a, b):
     return float(np.max(np.abs(a[ok] - b[ok])) / np.max(np.abs(b[ok])))
 
 
+@pytest.mark.slow  # ~40 s; tests/test_transmission.py checks a radius holding every pair in the default run
 def test_radius_beyond_cloud_equals_dense_level():
     """Every pair near: the neighbour-list equations are the dense ones rewritten (common practice)."""
     model = _cloud(6, 0.4, seed=3, min_distance=0.15)
@@ -107,6 +108,7 @@ def test_far_rule_is_first_order_perturbation_theory(rabi, detuning):
     assert errs[1] < 0.6 * errs[0] + 2e-3, errs  # the difference falls with ε (first order)
 
 
+@pytest.mark.slow  # ~30 s of compiling and integrating 30 emitters (as the dense level's dilute check)
 def test_dilute_cloud_equals_meanfield():
     """A dilute cloud (width 3 λ0, min distance 0.6 λ0): pair correlations are weak, the rate stays within
     1 % and the forward intensity within 3 % of mean field (common practice; the dense level's own dilute

@@ -217,7 +217,7 @@ def test_cumulant2_is_exact_for_two_emitters_with_their_own_detunings():
         float(bm.steady(m, "exact").emission_rate), rel=1e-8)
 
 
-@pytest.mark.slow  # the process crashed (segmentation fault inside a compiled jumps solve) once in a full run
+@pytest.mark.slow  # ~15 s; jumps against exact stays in the default run (tests/test_jumps.py)
 def test_jumps_samples_the_exact_dynamics_with_per_emitter_detunings():
     """Quantum jumps average to the master equation (Dalibard, Castin, Mølmer, PRL 68, 580 (1992))."""
     m = _pair()
