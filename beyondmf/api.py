@@ -17,7 +17,7 @@ from .model import Model
 from .observables import assemble
 from .results import provenance
 
-__all__ = ["evolve", "steady", "drive_scan", "initial_bloch"]
+__all__ = ["evolve", "steady", "drive_scan", "solve_drives", "initial_bloch"]
 
 
 def initial_bloch(model: Model, initial) -> np.ndarray:
@@ -112,6 +112,7 @@ def evolve(
     initial="ground",
     detectors: Mapping[str, Any] | None = None,
     seed: int | None = None,
+    lenses: Mapping[str, Any] | None = None,
     **options,
 ) -> xr.Dataset:
     """Dynamics of ``model`` at one level of description.
@@ -125,6 +126,9 @@ def evolve(
         or Bloch vectors ((N, 3) or one (3,) for all) of a product state.
     detectors : name → direction of observation; default one detector, "forward", along the laser.
     seed : random seed of sampling levels (drawn and recorded when None).
+    lenses : name → collection cone, e.g. {"side": {"angle": 90, "na": 0.4}} (axis as "toward" (x, y, z)
+        or "angle"/"azimuth" from the laser; cone as "na" or "half_angle" in degrees): adds
+        ``lens_power`` and its coherent and incoherent parts along ``lens`` (`beyondmf.lens`).
     options : the level's options (see ``beyondmf.level_options(level)``); anything else is an error.
 
     Returns
@@ -145,7 +149,7 @@ def evolve(
     if ts.size == 0 or not np.all(np.isfinite(ts)) or np.any(np.diff(ts) <= 0):
         raise ValueError("times must be a non-empty, finite, strictly increasing sequence")
     bloch = initial_bloch(model, initial)
-    probes = Probes.build(model, _detectors(model, detectors))
+    probes = Probes.build(model, _detectors(model, detectors), lenses)
     _check_results_size(model, lvl, len(ts), len(probes.names))
     lvl.check(model)
     seed = _seed(lvl, seed)
@@ -188,6 +192,7 @@ def steady(
     level: str,
     detectors: Mapping[str, Any] | None = None,
     seed: int | None = None,
+    lenses: Mapping[str, Any] | None = None,
     **options,
 ) -> xr.Dataset:
     """Steady state of ``model`` under a constant drive, at one level of description.
@@ -199,7 +204,7 @@ def steady(
         raise ValueError("steady needs a constant drive: build the model with envelope=None, or use evolve")
     lvl = get_level(level)
     opts = _options(lvl, options)
-    probes = Probes.build(model, _detectors(model, detectors))
+    probes = Probes.build(model, _detectors(model, detectors), lenses)
     lvl.check(model)
     seed = _seed(lvl, seed)
     with collecting() as said:
@@ -251,6 +256,7 @@ def drive_scan(
     initial="ground",
     detectors: Mapping[str, Any] | None = None,
     seed: int | None = None,
+    lenses: Mapping[str, Any] | None = None,
     **options,
 ) -> xr.Dataset:
     """The same cloud under a grid of drives, as one solve where the level can batch them.
@@ -267,16 +273,68 @@ def drive_scan(
     """
     _check_model(model)
     name, values = _scan_values(detuning, rabi)
-    lvl = get_level(level)
-    opts = _options(lvl, options)
     if name == "detuning":
         spread = model.detunings - float(np.mean(model.detunings))
         models = [model.with_drive(detuning=v + spread) for v in values]  # equal ones collapse to one float
     else:
         phase = model.rabi / abs(model.rabi) if abs(model.rabi) > 0 else 1.0
         models = [model.with_drive(rabi=v * phase) for v in values]
-    probes = Probes.build(model, _detectors(model, detectors))
-    lvl.check(model)
+    parts, said = _solve_drives(models, level, times, initial, detectors, seed, lenses, options)
+    notes = [list(p.attrs["warnings"]) for p in parts]
+    inputs = ["coupling_J", "coupling_Gamma", "initial_bloch"]  # the same for every drive: kept once
+    ds = xr.concat([p.drop_vars(inputs, errors="ignore") for p in parts], dim=name, combine_attrs="override")
+    ds = ds.assign_coords({name: values})
+    if "initial_bloch" in parts[0]:
+        ds["initial_bloch"] = parts[0]["initial_bloch"]
+    long = "laser detuning Δ" if name == "detuning" else "Rabi frequency Ω"
+    ds[name].attrs.update(units="Γ0", long_name=long)
+    ds.attrs[name] = [float(v) for v in values]
+    ds.attrs["scanned"] = name
+    ds.attrs["saturation"] = [float(p.attrs["saturation"]) for p in parts]
+    ds.attrs["warnings"] = list(said) + sorted({w for n in notes for w in n})
+    ds.attrs["warnings_per_drive"] = notes
+    ds.attrs["unphysical"] = sorted({u for p in parts for u in p.attrs.get("unphysical", [])})
+    return _with_inputs(model, ds)
+
+
+def solve_drives(
+    models: list[Model],
+    level: str,
+    times=None,
+    initial="ground",
+    detectors: Mapping[str, Any] | None = None,
+    seed: int | None = None,
+    lenses: Mapping[str, Any] | None = None,
+    **options,
+) -> list[xr.Dataset]:
+    """`steady` (``times`` None) or `evolve` of models that differ only in their drive (Rabi frequency,
+    detunings; the same emitters, couplings, beam and envelope), as one batched solve where the level can
+    (`drive_scan`); one Dataset per model, each as `steady`/`evolve` would give it, up to the solver's
+    tolerance (the members share its step control). A sweep whose grid varies only the drive runs its
+    tasks through this."""
+    for m in models:
+        _check_model(m)
+    if not models:
+        return []
+    base = models[0]
+    same = all(np.array_equal(m.positions, base.positions) and m.coupling == base.coupling
+               and np.array_equal(m.dipole, base.dipole) and np.array_equal(m.laser, base.laser)
+               and m.beam == base.beam and m.envelope == base.envelope
+               and np.array_equal(m.J, base.J) and np.array_equal(m.Gamma, base.Gamma) for m in models)
+    if not same:
+        raise ValueError("solve_drives takes models that differ only in rabi and detuning")
+    parts, said = _solve_drives(models, level, times, initial, detectors, seed, lenses, options)
+    for p in parts:
+        p.attrs["warnings"] = list(said) + list(p.attrs["warnings"])
+    return parts
+
+
+def _solve_drives(models, level, times, initial, detectors, seed, lenses, options):
+    """(per model its Dataset with its own warnings, the warnings of the batch as a whole)."""
+    model = models[0]
+    lvl = get_level(level)
+    opts = _options(lvl, options)
+    probes = Probes.build(model, _detectors(model, detectors), lenses)
     for m in models:
         lvl.check(m)
     seed = _seed(lvl, seed)
@@ -291,27 +349,23 @@ def drive_scan(
             raise ValueError("times must be a non-empty, finite, strictly increasing sequence")
         _check_results_size(model, lvl, len(ts) * len(models), len(probes.names))
         bloch = initial_bloch(model, initial)
-        extra = {"initial": initial if isinstance(initial, str) else "bloch vectors"}
+        named = isinstance(initial, str)
+        extra = {"initial": initial if named else "bloch vectors (data variable initial_bloch)"}
         kind = "evolve"
     with collecting() as said:
         if ts is None:
             moments = lvl.steady_batch(models, probes, seed, opts)
         else:
             moments = lvl.evolve_batch(models, ts, bloch, probes, seed, opts)
-    parts, notes = [], []
+    parts = []
     for m, mom in zip(models, moments, strict=True):
         with collecting() as own:
             attrs = _attrs(m, lvl, kind, opts, seed, extra)
-            parts.append(_judge(assemble(m, lvl.name, mom, probes, ts, attrs), m, lvl))
-        notes.append(list(own))
-    ds = xr.concat(parts, dim=name, combine_attrs="override")
-    ds = ds.assign_coords({name: values})
-    long = "laser detuning Δ" if name == "detuning" else "Rabi frequency Ω"
-    ds[name].attrs.update(units="Γ0", long_name=long)
-    ds.attrs[name] = [float(v) for v in values]
-    ds.attrs["scanned"] = name
-    ds.attrs["saturation"] = [float(p.attrs["saturation"]) for p in parts]
-    ds.attrs["warnings"] = list(said) + sorted({w for n in notes for w in n})
-    ds.attrs["warnings_per_drive"] = notes
-    ds.attrs["unphysical"] = sorted({u for p in parts for u in p.attrs.get("unphysical", [])})
-    return _with_inputs(model, ds)
+            ds = _judge(assemble(m, lvl.name, mom, probes, ts, attrs), m, lvl)
+        ds.attrs["warnings"] = list(own)
+        ds = _with_inputs(m, ds)
+        if ts is not None and not isinstance(initial, str):
+            ds["initial_bloch"] = (("atom", "axis"), bloch, {
+                "units": "1", "long_name": "initial Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩)"})
+        parts.append(ds)
+    return parts, list(said)

@@ -349,8 +349,10 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
             _status(f"running {to_run} of {total} {tasks} {executor.where}, {done} done (kept in "
                  f"{out / 'tasks'})")
 
+    from . import _config
+
     try:
-        ds = run_sweep(study, out, executor=executor, progress=True, on_start=start)
+        ds = run_sweep(study, out, executor=executor, progress=not _config.QUIET, on_start=start)
     except Interrupted as stop:
         if not stop.kept:
             raise _Stopped(f"none of the {stop.total} tasks had finished; run the same command again to "

@@ -26,7 +26,10 @@ __all__ = ["plot_sweep"]
 _MARK = {"holds": "✓", "fails": "✗", "undecided": "?", "undefined": "–", "baseline": ""}
 _LABEL = {"emission_rate": "emission rate P (Γ0)", "g2_total": "g2 of all light", "g2": "g2",
           "intensity": "intensity (Γ0/sr)", "emission_rate_peak": "peak rate (Γ0)",
-          "peak_time": "time of the peak (1/Γ0)", "emitted": "photons emitted"}
+          "peak_time": "time of the peak (1/Γ0)", "emitted": "photons emitted",
+          "lens_power": "power into the lens (Γ0)",
+          "lens_power_coherent": "coherent power into the lens (Γ0)",
+          "lens_power_incoherent": "incoherent power into the lens (Γ0)"}
 _CLIP = 1.5  # relative corrections are drawn within ±150 %: beyond that the baseline has plainly failed
 _COLUMNS = 3  # panels per row
 
@@ -73,19 +76,24 @@ def _summary(ds: xr.Dataset) -> xr.Dataset:
 
 
 def _grid_dims(s: xr.Dataset) -> list[str]:
-    """The grid dimensions: those of a compared observable other than level, time and detector."""
+    """The grid dimensions: those of a compared observable other than level, time, detector and lens."""
     first = next(name.removesuffix("_uncertainty") for name in s.data_vars if name.endswith("_uncertainty"))
-    return [d for d in s[first].dims if d not in ("level", "time", "detector")]
+    return [d for d in s[first].dims if d not in ("level", "time", *_PER)]
 
 
-def _panels(s: xr.Dataset) -> list[tuple[str, str | None]]:
-    """(observable, detector) pairs to draw: every compared observable, per detector where it has one."""
+# Dimensions an observable is drawn once per entry of: one panel per detector, one per lens.
+_PER = ("detector", "lens")
+
+
+def _panels(s: xr.Dataset) -> list[tuple[str, tuple[str, str] | None]]:
+    """(observable, (dimension, entry) or None) pairs to draw: every compared observable, per detector or
+    per lens where it has one."""
     out = []
     for name in s.data_vars:
         if name.endswith("_uncertainty"):
             obs = name.removesuffix("_uncertainty")
-            dets = [str(d) for d in s["detector"].values] if "detector" in s[obs].dims else [None]
-            out += [(obs, d) for d in dets]
+            per = next((d for d in _PER if d in s[obs].dims), None)
+            out += [(obs, (per, str(e))) for e in s[per].values] if per else [(obs, None)]
     return out
 
 
@@ -102,15 +110,15 @@ def _name(s: xr.Dataset, level) -> str:
     return f"{level} ({k} run{'s' if k != 1 else ''} warned)" if k else str(level)
 
 
-def _pick(s: xr.Dataset, name: str, det: str | None, level) -> tuple[xr.DataArray, xr.DataArray]:
+def _pick(s: xr.Dataset, name: str, det: tuple[str, str] | None, level) -> tuple[xr.DataArray, xr.DataArray]:
     v, u = s[name].sel(level=level), s[f"{name}_uncertainty"].sel(level=level)
     if det is not None:
-        v, u = v.sel(detector=det), u.sel(detector=det)
+        v, u = v.sel(dict([det])), u.sel(dict([det]))
     return v, u
 
 
-def _title(name: str, det: str | None) -> str:
-    return _LABEL.get(name, name) + (f" ({det})" if det else "")
+def _title(name: str, det: tuple[str, str] | None) -> str:
+    return _LABEL.get(name, name) + (f" ({det[1]})" if det else "")
 
 
 def _save(fig, path: Path) -> Path:
@@ -200,7 +208,7 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
     for ax, (name, det) in zip(axes, panels, strict=True):
         top = tol  # the y-range: the drawn corrections and intervals, at least the tolerance, at most ±_CLIP
         for k, lv in enumerate(others):
-            sel = {"level": lv} | ({"detector": det} if det else {})
+            sel = {"level": lv} | (dict([det]) if det else {})
             c = s[f"{name}_correction"].sel(sel)
             lo, hi = s[f"{name}_correction_low"].sel(sel), s[f"{name}_correction_high"].sel(sel)
             # no relative correction where the baseline is zero (e.g. t = 0 from the ground state): not drawn
@@ -260,7 +268,7 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
     for i, (name, det) in enumerate(panels):
         for j, lv in enumerate(others):
             ax = axes[i][j]
-            sel = {"level": lv} | ({"detector": det} if det else {})
+            sel = {"level": lv} | (dict([det]) if det else {})
             c, verdict = s[f"{name}_correction"].sel(sel), s[f"{name}_verdict"].sel(sel)
             rest = {d: -1 for d in c.dims if d not in (gx, gy)}  # time (the last), further grid dims
             c, verdict = c.isel(rest).transpose(gy, gx), verdict.isel(rest).transpose(gy, gx).values

@@ -23,11 +23,12 @@ from .results import remove_stale_parts
 from .tasks import (
     MACHINE,
     TaskFileError,
-    compute,
+    compute_group,
+    drive_groups,
     failed_result,
     failure_of,
     read_task,
-    run_task,
+    run_group,
     task_key,
     task_path,
 )
@@ -87,10 +88,12 @@ class Interrupted(KeyboardInterrupt):
 
 
 class InProcess:
-    """Run tasks one after the other in this process."""
+    """Run tasks one after the other in this process; tasks that differ only in their drive run as one
+    batched solve where the level can (`beyondmf.tasks.drive_groups`)."""
 
     name = "in-process"
     where = "in this process"
+    groups_drives = True
 
     def __enter__(self) -> InProcess:
         return self
@@ -108,8 +111,11 @@ class Dask:
     at ``scheduler`` (an address such as "tcp://10.0.0.5:8786", e.g. one started by dask-jobqueue).
 
     Each worker process runs one task at a time (one thread): the levels' JAX code already uses the
-    cores it is given, and one task per process keeps memory predictable.
+    cores it is given, and one task per process keeps memory predictable. Tasks are not batched by drive
+    here: the workers' parallelism is the speed-up.
     """
+
+    groups_drives = False
 
     def __init__(self, workers: int | None = None, scheduler: str | None = None) -> None:
         if (workers is None) == (scheduler is None):
@@ -432,11 +438,13 @@ def execute(
         if on_start:
             on_start(len(unique), len(unique))
         with _progress_bar(len(unique), 0, progress) as bar:
-            for key, task in unique.items():
-                out[key] = compute(task)
-                bar.update()
-                if on_done:
-                    on_done(key, "done")
+            for group in drive_groups(list(unique.values())):
+                for task, ds in zip(group, compute_group(group), strict=True):
+                    key = task_key(task)
+                    out[key] = ds
+                    bar.update()
+                    if on_done:
+                        on_done(key, "done")
         return out
 
     directory = Path(directory)
@@ -458,20 +466,25 @@ def _execute_in(unique, directory: Path, executor, progress: bool, on_done, on_s
             (directory / "tasks").mkdir(parents=True, exist_ok=True)
             remove_stale_parts(directory / "tasks", "*.nc")  # of task files a killed run left
             with _progress_bar(len(unique), len(unique) - len(pending), progress) as bar:
-                for result in executor.map_unordered(run_task, pending, str(directory)):
+                grouped = getattr(executor, "groups_drives", False)
+                units = drive_groups(pending) if grouped else [[t] for t in pending]
+                for result in executor.map_unordered(run_group, units, str(directory)):
                     if isinstance(result, Lost):
-                        key, status = task_key(result.item), "failed"
                         err = result.error
-                        lost[key] = failed_result(
-                            result.item, f"worker lost: the dask worker running this task went away "
-                            f"({type(err).__name__}: {' '.join(str(err).split())})", MACHINE)
+                        said = (f"worker lost: the dask worker running this task went away "
+                                f"({type(err).__name__}: {' '.join(str(err).split())})")
+                        done = []
+                        for task in result.item:
+                            lost[task_key(task)] = failed_result(task, said, MACHINE)
+                            done.append((task_key(task), "failed"))
                     else:
-                        key, status, _seconds = result
-                    failed += status == "failed"
-                    bar.update()
-                    bar.set_postfix(failed=failed, refresh=False)
-                    if on_done:
-                        on_done(key, status)
+                        done = [(key, status) for key, status, _seconds in result]
+                    for key, status in done:
+                        failed += status == "failed"
+                        bar.update()
+                        bar.set_postfix(failed=failed, refresh=False)
+                        if on_done:
+                            on_done(key, status)
     except KeyboardInterrupt as err:
         if isinstance(err, Interrupted):
             raise

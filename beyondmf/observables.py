@@ -33,6 +33,9 @@ _UNITS = {
     "transmission": ("1", "coherent amplitude t transmitted into the probe beam's mode"),
     "transmission_power": ("1", "power transmission |t|² of the probe beam's mode"),
     "optical_depth": ("1", "optical depth −ln|t|² of the probe beam's mode"),
+    "lens_power": ("photons per 1/Γ0", "power emitted into the lens's cone"),
+    "lens_power_coherent": ("photons per 1/Γ0", "coherent part of the power into the lens's cone"),
+    "lens_power_incoherent": ("photons per 1/Γ0", "incoherent part of the power into the lens's cone"),
 }
 
 
@@ -70,6 +73,28 @@ def _transmission(model: Model, coherence: np.ndarray, times) -> dict:
             "optical_depth": (("time",), depth)}
 
 
+def _lens_power(probes: Probes, intensity, coherent, m: Moments, pref) -> dict:
+    """Power into each lens (`beyondmf.lens`): the quadrature of the intensity over its cone, and of its
+    coherent and incoherent parts. At a sampling level the standard error is bounded from above by the
+    weighted sum of the nodes' errors (their errors are correlated: the same samples), said in its name."""
+    if not probes.lenses:
+        return {}
+    total = np.stack([intensity[..., s] @ w for s, w in zip(probes.lens_nodes, probes.lens_weights,
+                                                             strict=True)], axis=-1)
+    coh = np.stack([coherent[..., s] @ w for s, w in zip(probes.lens_nodes, probes.lens_weights,
+                                                          strict=True)], axis=-1)
+    out = {"lens_power": (("time", "lens"), total), "lens_power_coherent": (("time", "lens"), coh),
+           "lens_power_incoherent": (("time", "lens"), total - coh)}
+    if m.stderr and "field2" in m.stderr:
+        bound = np.stack([(pref[s] * m.stderr["field2"][..., s]) @ w
+                          for s, w in zip(probes.lens_nodes, probes.lens_weights, strict=True)], axis=-1)
+        out["lens_power_stderr"] = (("time", "lens"), bound, {
+            "units": "photons per 1/Γ0",
+            "long_name": "upper bound of the standard error (sampling) of the power into the lens "
+                         "(the weighted sum of its quadrature nodes' errors)"})
+    return out
+
+
 def assemble(
     model: Model,
     level: str,
@@ -89,6 +114,19 @@ def assemble(
     else:  # a sampling level's unbiased estimate (levels._sampling)
         coherent = pref * m.coherent_field
     intensity = pref * m.field2
+    nd = len(probes.names)  # the detectors; the lenses' quadrature nodes follow them
+    lenses = _lens_power(probes, intensity, coherent, m, pref)
+    m.field2, m.field4, intensity, coherent, g2 = (a[..., :nd] for a in (m.field2, m.field4, intensity,
+                                                                          coherent, g2))
+    if m.coherent_field is not None:
+        m.coherent_field = m.coherent_field[..., :nd]
+    for key in ("field2", "field4", "coherent_field"):
+        if key in m.stderr:
+            m.stderr[key] = m.stderr[key][..., :nd]
+    for key in ("field", "field2,coherent"):
+        if np.ndim(m.cov.get(key, 0.0)) >= 1:
+            m.cov[key] = m.cov[key][..., :nd]
+    pref = pref[:nd]
     data = {
         "excited": (("time", "atom"), m.excited),
         "coherence": (("time", "atom"), m.coherence),
@@ -122,28 +160,40 @@ def assemble(
         data[name] = (dims, arr, *described)
     if model.beam is not None:
         data.update(_transmission(model, m.coherence, times))
+    data.update(lenses)
 
     coords = {
         "atom": np.arange(model.n),
         "detector": list(probes.names),
         "axis": ["x", "y", "z"],
         "position": (("atom", "axis"), model.positions),
-        "direction": (("detector", "axis"), probes.directions),
+        "direction": (("detector", "axis"), probes.directions[: len(probes.names)]),
     }
     if times is not None:
         coords["time"] = np.asarray(times, dtype=float)
+    if probes.lenses:
+        coords["lens"] = [lens.name for lens in probes.lenses]
+        coords["lens_axis"] = (("lens", "axis"), np.array([lens.axis for lens in probes.lenses]))
+        coords["lens_na"] = (("lens",), np.array([lens.na for lens in probes.lenses]))
+        coords["lens_half_angle"] = (("lens",), np.degrees([lens.half_angle for lens in probes.lenses]))
     ds = xr.Dataset(data, coords=coords)
     if times is None:
         ds = ds.isel(time=0, drop=True) if "time" in ds.dims else ds
     for name, (unit, long) in _UNITS.items():
         if name in ds:
             ds[name].attrs.update(units=unit, long_name=long)
-        if f"{name}_stderr" in ds:
+        if f"{name}_stderr" in ds and "long_name" not in ds[f"{name}_stderr"].attrs:
             ds[f"{name}_stderr"].attrs.update(stderr_attrs({"units": unit, "long_name": long}))
     if times is not None:
         ds["time"].attrs.update(units="1/Γ0", long_name="time")
     ds["position"].attrs.update(units="λ0", long_name="emitter positions")
     ds["direction"].attrs.update(units="1", long_name="detector directions (unit vectors)")
+    if probes.lenses:
+        ds["lens_axis"].attrs.update(units="1", long_name="lens axes (unit vectors)")
+        ds["lens_na"].attrs.update(units="1", long_name="numerical aperture of the lens (sin of half_angle, "
+                                                       "1 beyond 90°)")
+        ds["lens_half_angle"].attrs.update(units="degree", long_name="half angle of the collection cone")
+        ds.attrs["lens_nodes"] = [len(w) for w in probes.lens_weights]
     ds.attrs.update(attrs)
     ds.attrs.update(m.attrs)
     return ds

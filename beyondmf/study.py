@@ -308,6 +308,25 @@ def _parse_detectors(table: dict, where: str) -> dict[str, Detector]:
     return out
 
 
+def _parse_lenses(table: dict, where: str) -> dict[str, dict[str, Any]]:
+    """[lenses.NAME] tables (`beyondmf.lens.lenses_of`), checked with the default laser here and with the
+    study's own laser once the drive is known (`_lenses_fit`)."""
+    from .lens import lenses_of
+
+    if not table:
+        raise StudyError(f"{where}: expected at least one lens, e.g. [lenses.front] angle = 0, na = 0.5")
+    out = {}
+    for name, spec in table.items():
+        if not isinstance(spec, dict):
+            raise _fail(f"{where}.{name}", "a table, e.g. {angle = 90, na = 0.4}", spec)
+        try:
+            lenses_of({name: spec}, (0.0, 0.0, 1.0))
+        except ValueError as err:
+            raise StudyError(f"{where}.{name}: {str(err).split(': ', 1)[-1]}") from None
+        out[str(name)] = {k: (list(v) if isinstance(v, list) else v) for k, v in spec.items()}
+    return out
+
+
 @dataclass(frozen=True)
 class Run:
     """What to compute: ``calculation`` "evolve" (times t_start..t_end, ``points`` of them), "steady", or
@@ -494,6 +513,7 @@ section("geometry", required=True, field="geometry")(lambda v, w: _parse_geometr
 section("model", field="emitters")(lambda v, w: _parse_model(_table(v, w), w))
 section("drive", required=True, field="drive")(lambda v, w: _parse_drive(_table(v, w), w))
 section("detectors", field="detectors")(lambda v, w: _parse_detectors(_table(v, w), w))
+section("lenses", field="lenses")(lambda v, w: _parse_lenses(_table(v, w), w))
 section("run", required=True, field="run")(lambda v, w: _parse_run(_table(v, w), w))
 section("levels", required=True, field="levels")(_parse_levels)
 
@@ -508,6 +528,7 @@ class Study:
     levels: dict[str, dict[str, Any]]
     emitters: Emitters = Emitters()
     detectors: dict[str, Detector] | None = None
+    lenses: dict[str, dict[str, Any]] | None = None
     title: str = ""
     description: str = ""
     source: str = ""
@@ -720,10 +741,10 @@ def run_study(
                 ds = correlations(model, name, None if elastic else study.run.delays(), detectors=detectors,
                                   frequencies=None if elastic else study.run.frequencies(), **options)
             elif study.run.calculation == "steady":
-                ds = steady(model, name, detectors=detectors, seed=seed, **options)
+                ds = steady(model, name, detectors=detectors, seed=seed, lenses=study.lenses, **options)
             else:
                 ds = evolve(model, name, study.run.times(), initial=study.run.initial, detectors=detectors,
-                            seed=seed, **options)
+                            seed=seed, lenses=study.lenses, **options)
         except Exception as err:
             from .memory import as_memory_error
 

@@ -76,8 +76,9 @@ __all__ = [
 ]
 
 # Observables a [compare] section may name besides the default ones; the transmission ones exist for a beam
-# drive, the last three for dynamics.
+# drive, the lens ones with [lenses], the last three for dynamics.
 EXTRA_OBSERVABLES = ("intensity_coherent", "intensity_incoherent", "transmission_power", "optical_depth",
+                     "lens_power", "lens_power_coherent", "lens_power_incoherent",
                      "excited_mean", "emission_rate_peak", "peak_time", "emitted")
 _SIZE_KEYS = {"gaussian": "widths", "ellipsoid": "semi_axes", "box": "sides"}
 _RANDOM = tuple(_SIZE_KEYS)
@@ -155,9 +156,12 @@ def build_task(
     level: Mapping[str, Any],
     seed: int,
     realization: int,
+    lenses: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
     """The task dictionary of one level on one draw; deterministic levels carry no seed, so equal
-    positions at a deterministic level are one task whatever the realization number."""
+    positions at a deterministic level are one task whatever the realization number. ``lenses`` (as
+    `beyondmf.evolve` takes them) enter the task only when given, so tasks without lenses keep their
+    keys."""
     from .api import _options
 
     lvl = get_level(level["level"])
@@ -171,6 +175,11 @@ def build_task(
         "level": level["level"],
         "options": dict(level["options"]),
     }
+    if lenses:
+        from .lens import lenses_of
+
+        lenses_of(lenses, model.get("laser", Model.laser))  # refused here, naming the lens
+        task["lenses"] = {str(k): dict(v) for k, v in lenses.items()}
     if lvl.stochastic:
         task["seed"] = realization_seeds(seed, realization)[1]
     return task
@@ -214,7 +223,8 @@ def stack(
     if template is None:
         msgs = {results[task_key(t)].attrs.get("error", "") for t in index.values()}
         raise ValueError("every task failed: " + "; ".join(sorted(msgs)))
-    names = list(dict.fromkeys([*SCALAR_VARIABLES, *(o for o in observables if o in template)]))
+    lens = ("lens_power", "lens_power_coherent", "lens_power_incoherent")  # kept whenever there are lenses
+    names = list(dict.fromkeys([*SCALAR_VARIABLES, *(o for o in (*observables, *lens) if o in template)]))
     stochastic = any(f"{n}_stderr" in results[task_key(t)] for t in index.values() for n in names)
     if stochastic:
         names += [f"{n}_stderr" for n in names]
@@ -260,7 +270,7 @@ def stack(
     dims = [g for g, _ in grid] + ["level", "realization"]
     coords = {g: np.asarray(v) for g, v in grid}
     coords.update(level=list(labels), realization=np.arange(realizations))
-    for c in ("time", "detector", "direction"):
+    for c in ("time", "detector", "direction", "lens", "lens_axis", "lens_na", "lens_half_angle"):
         if c in template.coords:
             coords[c] = template[c]
     data = {n: (dims + list(d), a) for n, (d, a) in arrays.items()}
@@ -586,7 +596,10 @@ def _planning_bar(items, total: int, what: str):
     takes minutes to check and build; a small one says nothing)."""
     from tqdm.auto import tqdm
 
-    return tqdm(items, total=total, desc=what, unit="point", delay=PLANNING_BAR_DELAY_S, leave=False)
+    from . import _config
+
+    return tqdm(items, total=total, desc=what, unit="point", delay=PLANNING_BAR_DELAY_S, leave=False,
+                disable=_config.QUIET)
 
 
 def _largest(study: Study, key: str, base: int) -> int:
@@ -1012,7 +1025,7 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
             drawn = dict(model, detuning=st.drive.detunings(len(pos), geo.params.get("seed", 0) if own
                                                              else realization_seeds(spec.seed, r)[0]))
             for label, lv in table.items():
-                task = build_task(pos, drawn, run, dets, lv, spec.seed, r)
+                task = build_task(pos, drawn, run, dets, lv, spec.seed, r, st.lenses)
                 if own and "seed" in task and st.run.seed is not None:
                     task["seed"] = st.run.seed
                 index[(*idx, label, r)] = task

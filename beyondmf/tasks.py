@@ -42,6 +42,9 @@ __all__ = [
     "build_model",
     "compute",
     "run_task",
+    "run_group",
+    "drive_groups",
+    "compute_group",
     "read_task",
     "task_path",
     "SCALAR_VARIABLES",
@@ -183,18 +186,21 @@ def times_of(run: Mapping[str, Any]) -> np.ndarray:
 def compute(task: Mapping[str, Any]) -> xr.Dataset:
     """Run one task in this process and return its full results Dataset (no file written)."""
     from .api import evolve, steady
+    from .memory import release_compiled_code
 
+    release_compiled_code()  # a long run of many system sizes must not exhaust the kernel's mappings
     model = build_model(task)
     run = dict(task.get("run") or {"calculation": "steady"})
     level = task["level"]
     seed = task.get("seed")
     opts = dict(task.get("options") or {})
     dets = task.get("detectors")
+    lenses = task.get("lenses")
     if run.get("calculation", "steady") == "evolve":
         ds = evolve(model, level, times_of(run), initial=run.get("initial", "ground"), detectors=dets,
-                    seed=seed, **opts)
+                    seed=seed, lenses=lenses, **opts)
     elif run.get("calculation", "steady") == "steady":
-        ds = steady(model, level, detectors=dets, seed=seed, **opts)
+        ds = steady(model, level, detectors=dets, seed=seed, lenses=lenses, **opts)
     else:
         raise ValueError(f"run.calculation must be 'steady' or 'evolve', got {run.get('calculation')!r}")
     return ds
@@ -316,6 +322,80 @@ def run_task(task: Mapping[str, Any], directory: str | Path | None = None) -> tu
             stamped.attrs["task_failure"] = kind
         save(stamped, task_path(directory, key))
     return key, status, seconds
+
+
+# At most this many tasks run as one batched solve (memory is split further by the level, levels._batch).
+GROUP_LIMIT = 64
+
+
+def drive_groups(tasks: list[Mapping[str, Any]]) -> list[list[Mapping[str, Any]]]:
+    """``tasks`` in groups that differ only in their drive (model ``rabi`` and ``detuning``) at a level
+    that integrates drives as one solve (its own ``steady_batch``: `beyondmf.drive_scan`); every other
+    task alone. Order is kept within a group; groups hold at most `GROUP_LIMIT` tasks."""
+    from .levels.base import Level, get_level
+
+    groups: dict[str, list] = {}
+    out: list[list] = []
+    for task in tasks:
+        lvl = type(get_level(task["level"]))
+        if lvl.steady_batch is Level.steady_batch or task.get("options", {}).get("pair_radius") is not None:
+            out.append([task])
+            continue
+        rest = dict(task, model={k: v for k, v in (task.get("model") or {}).items()
+                                 if k not in ("rabi", "detuning")})
+        key = canonical(rest)
+        if key not in groups or len(groups[key]) >= GROUP_LIMIT:
+            groups[key] = []
+            out.append(groups[key])
+        groups[key].append(task)
+    return out
+
+
+def compute_group(tasks: list[Mapping[str, Any]]) -> list[xr.Dataset]:
+    """Run tasks that differ only in their drive as one batched solve (`beyondmf.api.solve_drives`) and
+    return each one's results, as `compute` would up to the solver's tolerance."""
+    if len(tasks) == 1:
+        return [compute(tasks[0])]
+    from .api import solve_drives
+    from .memory import release_compiled_code
+
+    release_compiled_code()
+    first = tasks[0]
+    run = dict(first.get("run") or {"calculation": "steady"})
+    kind = run.get("calculation", "steady")
+    if kind not in ("steady", "evolve"):
+        raise ValueError(f"run.calculation must be 'steady' or 'evolve', got {kind!r}")
+    return solve_drives([build_model(t) for t in tasks], first["level"],
+                        times=times_of(run) if kind == "evolve" else None,
+                        initial=run.get("initial", "ground"), detectors=first.get("detectors"),
+                        seed=first.get("seed"), lenses=first.get("lenses"),
+                        **dict(first.get("options") or {}))
+
+
+def run_group(tasks: list[Mapping[str, Any]],
+              directory: str | Path | None = None) -> list[tuple[str, str, float]]:
+    """`run_task` for a group of `drive_groups`: one batched solve, one file per task (each stamped with
+    its share of the time). If the batch fails for a reason a task may end with, every task runs alone, so
+    that each records its own outcome."""
+    if len(tasks) == 1:
+        return [run_task(tasks[0], directory)]
+    from .results import save
+
+    start = time.perf_counter()
+    try:
+        results = compute_group(tasks)
+    except Exception as err:
+        if failure_kind(err) is None:
+            raise
+        return [run_task(t, directory) for t in tasks]
+    seconds = (time.perf_counter() - start) / len(tasks)
+    out = []
+    for task, ds in zip(tasks, results, strict=True):
+        key = task_key(task)
+        if directory is not None:
+            save(_stamp(ds, task, "done", seconds), task_path(directory, key))
+        out.append((key, "done", seconds))
+    return out
 
 
 def read_task(path: str | Path, task: Mapping[str, Any]) -> xr.Dataset:

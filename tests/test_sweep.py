@@ -323,15 +323,20 @@ def test_ctrl_c_in_a_sweep_keeps_finished_tasks_and_the_rerun_resumes(tmp_path, 
     path = tmp_path / "study.toml"
     path.write_text(STUDY)
     args = ["run", str(path), "--out", str(tmp_path / "out"), "--no-plots"]
-    real, calls = ex.run_task, []
+    from beyondmf.tasks import run_task as real
 
-    def interrupted_at_the_third(task, directory):
-        calls.append(task_key(task))
-        if len(calls) == 3:
-            raise KeyboardInterrupt
-        return real(task, directory)
+    calls = []
 
-    monkeypatch.setattr(ex, "run_task", interrupted_at_the_third)
+    def interrupted_at_the_third(group, directory):  # one task at a time (no batching by drive)
+        out = []
+        for task in group:
+            calls.append(task_key(task))
+            if len(calls) == 3:
+                raise KeyboardInterrupt
+            out.append(real(task, directory))
+        return out
+
+    monkeypatch.setattr(ex, "run_group", interrupted_at_the_third)
     assert main(args) == EXIT_INTERRUPTED
     err = capsys.readouterr().err
     assert ("beyondmf run: interrupted; 2 of 8 tasks finished and are kept in "
@@ -339,8 +344,8 @@ def test_ctrl_c_in_a_sweep_keeps_finished_tasks_and_the_rerun_resumes(tmp_path, 
     tasks = tmp_path / "out" / "tasks"
     assert sorted(p.name for p in tasks.iterdir()) == sorted(f"{k}.nc" for k in calls[:2])  # no .part
     assert not (tmp_path / "out" / "results.nc").exists()
-    monkeypatch.setattr(ex, "run_task", lambda task, directory: (calls.append(task_key(task)),
-                                                                 real(task, directory))[1])
+    monkeypatch.setattr(ex, "run_group", lambda group, directory: [
+        (calls.append(task_key(task)), real(task, directory))[1] for task in group])
     assert main(args) == 0
     assert len(calls) == 3 + 6 and not set(calls[3:]) & set(calls[:2])  # the two kept ones are reused
 
@@ -458,3 +463,46 @@ def test_a_levels_own_diagnostics_reach_the_comparison_per_realization(tmp_path)
     assert ds["density"].attrs["units"] == "λ0⁻³" and ds["density"].attrs["parameter"] == "geometry.density"
     assert ds.attrs["warnings"] and all(w.startswith(("density=0.2, ", "density=2, "))
                                         for w in ds.attrs["warnings"])
+
+
+DRIVE_ONLY = """
+title = "a spectrum sweep: only the detuning varies"
+[geometry]
+kind = "ellipsoid"
+n = 5
+semi_axes = [0.8, 0.8, 0.8]
+min_distance = 0.1
+[drive]
+rabi = 0.4
+[run]
+calculation = "steady"
+[levels.meanfield]
+[levels.exact]
+[sweep]
+realizations = 2
+seed = 11
+[sweep.grid]
+"drive.detuning" = [-1.0, 0.0, 0.5, 2.0]
+"""
+
+
+def test_a_sweep_over_the_drive_alone_runs_each_cloud_as_one_batched_solve(tmp_path):
+    """Tasks that differ only in the drive run through one batched solve per cloud at meanfield (and one
+    solve each at exact, which cannot batch); every task file equals the task computed alone, to the
+    steady-state tolerance (common practice: a block-diagonal system solved together)."""
+    from beyondmf.tasks import compute, drive_groups, read_task
+
+    study = _study(tmp_path, DRIVE_ONLY)
+    index = study_tasks(study)[0]
+    groups = drive_groups(list({task_key(t): t for t in index.values()}.values()))
+    sizes = sorted(len(g) for g in groups)
+    assert sizes == [1] * 8 + [4, 4]  # exact: 2 clouds × 4 detunings alone; meanfield: one group per cloud
+    run_sweep(study, tmp_path / "out", progress=False)
+    for task in index.values():
+        ds = read_task(task_path(tmp_path / "out", task_key(task)), task)
+        if task["level"] == "meanfield":
+            assert ds.attrs["batched_drives"] == 4
+            alone = compute(task)
+            np.testing.assert_allclose(ds.excited.values, alone.excited.values, rtol=1e-7, atol=1e-10)
+            assert float(ds.emission_rate) == pytest.approx(float(alone.emission_rate), rel=1e-7)
+            assert ds.attrs["detuning"] == alone.attrs["detuning"]

@@ -34,20 +34,39 @@ class Probes:
     """What the observables need from a level besides the one-body moments.
 
     ``weights[d, j] = e^{−i 2π n̂_d·r_j}`` defines the far field E_d = Σ_j weights[d, j] σ_j⁻ towards
-    detector d; the total emission uses Γ of the model.
+    direction d; the total emission uses Γ of the model. The first ``len(names)`` directions are the
+    detectors; after them come the quadrature nodes of the lenses (`beyondmf.lens`), lens k's nodes at
+    ``lens_nodes[k]`` (a slice) with solid-angle weights ``lens_weights[k]``. A level treats every
+    direction alike.
     """
 
     names: tuple[str, ...]
-    directions: np.ndarray  # (D, 3) unit vectors
+    directions: np.ndarray  # (D, 3) unit vectors, detectors then lens nodes
     weights: np.ndarray  # (D, N) complex
+    lenses: tuple = ()  # beyondmf.lens.Lens
+    lens_nodes: tuple[slice, ...] = ()
+    lens_weights: tuple[np.ndarray, ...] = ()
 
     @classmethod
-    def build(cls, model: Model, detectors: dict[str, Any]) -> Probes:
+    def build(cls, model: Model, detectors: dict[str, Any],
+              lenses: Mapping[str, Any] | None = None) -> Probes:
+        from ..lens import cloud_diameter, cone_nodes, lenses_of
+
         resolved = detector_directions(detectors, model.laser)
         names = tuple(resolved)
-        directions = np.array([resolved[n] for n in names]).reshape(-1, 3)
+        directions = [np.array([resolved[n] for n in names]).reshape(-1, 3)]
+        found = lenses_of(lenses, model.laser)
+        slices, node_weights, start = [], [], len(names)
+        diameter = cloud_diameter(model.positions)
+        for lens in found:
+            dirs, w = cone_nodes(lens.axis, lens.half_angle, diameter, lens.resolution)
+            directions.append(dirs)
+            node_weights.append(w)
+            slices.append(slice(start, start + len(w)))
+            start += len(w)
+        directions = np.concatenate(directions)
         weights = np.exp(-2j * np.pi * directions @ model.positions.T)
-        return cls(names, directions, weights)
+        return cls(names, directions, weights, found, tuple(slices), tuple(node_weights))
 
 
 def detector_direction(laser, angle_deg: float, azimuth_deg: float = 0.0) -> np.ndarray:

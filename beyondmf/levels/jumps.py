@@ -190,9 +190,9 @@ class Jumps(Level):
         samples = int(options["samples"])
         what = f"quantum-jump trajectories of {model.n} emitters"
         # first without the jump channels, before finding them costs an N × N eigendecomposition
-        require(16 * d * (8 + 4 * n + 2 * len(probes.names)), what)
+        require(16 * d * (8 + 4 * n + 2 * len(probes.weights)), what)
         rates, v = jump_channels(model.Gamma)
-        per_traj = 16 * d * (8 + 3 * n + len(rates) * n + 2 * len(probes.names))
+        per_traj = 16 * d * (8 + 3 * n + len(rates) * n + 2 * len(probes.weights))
         require(per_traj + 16 * d * n, what)
         chunk = options["chunk"]
         if chunk == "auto":
