@@ -466,17 +466,27 @@ def _execute_in(unique, directory: Path, executor, progress: bool, on_done, on_s
             (directory / "tasks").mkdir(parents=True, exist_ok=True)
             remove_stale_parts(directory / "tasks", "*.nc")  # of task files a killed run left
             with _progress_bar(len(unique), len(unique) - len(pending), progress) as bar:
+                # groups are formed from every task of the run, so that a resumed run solves the same
+                # groups as an uninterrupted one (bit for bit); a group with any member to run is solved
+                # whole, and only those members are written
+                todo = frozenset(task_key(t) for t in pending)
                 grouped = getattr(executor, "groups_drives", False)
-                units = drive_groups(pending) if grouped else [[t] for t in pending]
-                for result in executor.map_unordered(run_group, units, str(directory)):
+                if grouped:
+                    units = [g for g in drive_groups(list(unique.values()))
+                             if any(task_key(t) in todo for t in g)]
+                else:  # one task per unit, every one to run (nothing to filter: no key set sent along)
+                    units = [[t] for t in pending]
+                for result in executor.map_unordered(run_group, units, str(directory),
+                                                     todo if grouped else None):
                     if isinstance(result, Lost):
                         err = result.error
                         said = (f"worker lost: the dask worker running this task went away "
                                 f"({type(err).__name__}: {' '.join(str(err).split())})")
                         done = []
                         for task in result.item:
-                            lost[task_key(task)] = failed_result(task, said, MACHINE)
-                            done.append((task_key(task), "failed"))
+                            if task_key(task) in todo:
+                                lost[task_key(task)] = failed_result(task, said, MACHINE)
+                                done.append((task_key(task), "failed"))
                     else:
                         done = [(key, status) for key, status, _seconds in result]
                     for key, status in done:

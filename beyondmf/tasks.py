@@ -372,11 +372,20 @@ def compute_group(tasks: list[Mapping[str, Any]]) -> list[xr.Dataset]:
                         **dict(first.get("options") or {}))
 
 
-def run_group(tasks: list[Mapping[str, Any]],
-              directory: str | Path | None = None) -> list[tuple[str, str, float]]:
+def run_group(tasks: list[Mapping[str, Any]], directory: str | Path | None = None,
+              only: frozenset[str] | None = None) -> list[tuple[str, str, float]]:
     """`run_task` for a group of `drive_groups`: one batched solve, one file per task (each stamped with
     its share of the time). If the batch fails for a reason a task may end with, every task runs alone, so
-    that each records its own outcome."""
+    that each records its own outcome. ``only`` (task keys): the whole group is solved, so that every
+    member gets the numbers the same group always gives, but only these members are written and
+    reported (a run resumed after an interruption, or with damaged files, reproduces the uninterrupted
+    run bit for bit)."""
+    if only is not None:
+        keep = [t for t in tasks if task_key(t) in only]
+        if len(keep) == len(tasks):
+            only = None
+        elif len(tasks) == 1 or not keep:
+            return [run_task(t, directory) for t in keep]
     if len(tasks) == 1:
         return [run_task(tasks[0], directory)]
     from .results import save
@@ -387,11 +396,13 @@ def run_group(tasks: list[Mapping[str, Any]],
     except Exception as err:
         if failure_kind(err) is None:
             raise
-        return [run_task(t, directory) for t in tasks]
+        return [run_task(t, directory) for t in tasks if only is None or task_key(t) in only]
     seconds = (time.perf_counter() - start) / len(tasks)
     out = []
     for task, ds in zip(tasks, results, strict=True):
         key = task_key(task)
+        if only is not None and key not in only:
+            continue
         if directory is not None:
             save(_stamp(ds, task, "done", seconds), task_path(directory, key))
         out.append((key, "done", seconds))
