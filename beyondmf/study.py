@@ -615,6 +615,9 @@ def parse_table(raw: dict[str, Any], text: str = "", path: Path | None = None) -
                 raise StudyError(f"{name}: calculation = 'correlations' runs one model at its levels; "
                                  f"[{name}] is not supported for it (remove [{name}], or run "
                                  "beyondmf.correlations over the grid from Python)")
+        if "lenses" in raw:
+            raise StudyError("lenses: calculation = 'correlations' has no lenses (its two-time functions "
+                             "are per detector); remove [lenses], or collect with a lens in a 'steady' study")
     study = Study(**fields, source=text, path=path, extra=extra)
     for check in _CHECKS:
         check(study, raw)

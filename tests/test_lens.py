@@ -170,3 +170,11 @@ def test_a_bad_lens_in_a_study_names_its_key(table, says):
     base = LENS_SWEEP.split("[lenses.front]")[0]
     with pytest.raises(StudyError, match=re.escape(says)):
         parse_study(base + table)
+
+
+def test_a_correlations_study_refuses_lenses_instead_of_ignoring_them():
+    from beyondmf.study import StudyError, parse_study
+
+    text = LENS_SWEEP.split("[sweep]")[0].replace('calculation = "steady"', 'calculation = "correlations"')
+    with pytest.raises(StudyError, match="lenses: calculation = 'correlations' has no lenses"):
+        parse_study(text)
