@@ -27,6 +27,7 @@ _MARK = {"holds": "✓", "fails": "✗", "undecided": "?", "undefined": "–", "
 _LABEL = {"emission_rate": "emission rate P (Γ0)", "g2_total": "g2 of all light", "g2": "g2",
           "intensity": "intensity (Γ0/sr)", "emission_rate_peak": "peak rate (Γ0)",
           "peak_time": "time of the peak (1/Γ0)", "emitted": "photons emitted",
+          "optical_depth": "optical depth −ln|t|²", "transmission_power": "transmission |t|²",
           "lens_power": "power into the lens (Γ0)",
           "lens_power_coherent": "coherent power into the lens (Γ0)",
           "lens_power_incoherent": "incoherent power into the lens (Γ0)"}
@@ -122,7 +123,8 @@ def _title(name: str, det: tuple[str, str] | None) -> str:
 
 
 def _save(fig, path: Path) -> Path:
-    fig.tight_layout()
+    # a legend below the panels (fig.legend_room: the fraction of the height it needs) stays clear of them
+    fig.tight_layout(rect=(0, getattr(fig, "legend_room", 0.0), 1, 1))
     fig.savefig(path, dpi=90)
     plt.close(fig)
     return path
@@ -140,8 +142,10 @@ def _slices(s: xr.Dataset, dims: list[str]) -> list[tuple[dict, str]]:
     return out
 
 
-# Line styles of the grid points in a time panel (the colour is the level's).
+# Line styles of the grid points in a time panel (the colour is the level's), and of the levels in a
+# panel against a grid axis, with their markers.
 _STYLES = ("-", "--", ":", "-.")
+_MARKERS = ("o", "s", "^", "D", "v", "P")
 
 
 def _legends(axes, time_panels: list, tags: list[str], level_legend: dict) -> None:
@@ -163,7 +167,7 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
     panels = _panels(s)
     grid = _grid_dims(s)
     fig, axes = _subplots(len(panels))
-    time_panels = []
+    time_panels, outside = [], False
     for ax, (name, det) in zip(axes, panels, strict=True):
         for k, lv in enumerate(s["level"].values):
             v, u = _pick(s, name, det, lv)
@@ -179,10 +183,15 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
                     time_panels.append(ax)
             elif grid:
                 x = _grid_axis(ax, s, grid[0])
-                for sel, tag in _slices(s, grid[1:]):
+                # a marker and line style per level (later levels hollow, so a level drawn over another
+                # that agrees with it leaves both visible), a colour per level, or per further grid point
+                for j, (sel, tag) in enumerate(_slices(s, grid[1:])):
                     ax.errorbar(x, v.sel(sel).transpose(grid[0]), yerr=u.sel(sel).transpose(grid[0]),
-                                marker="o", capsize=3, label=f"{_name(s, lv)}{tag}",
-                                color=_color(s, lv) if not tag else None)
+                                marker=_MARKERS[k % len(_MARKERS)], ls=_STYLES[k % len(_STYLES)],
+                                fillstyle="full" if k == 0 else "none", markersize=6 if k == 0 else 8,
+                                capsize=3, label=f"{_name(s, lv)}{tag}",
+                                color=f"C{j % 10}" if tag else _color(s, lv))
+                outside = True
             else:
                 ax.bar(k, float(v), yerr=float(u), capsize=4, label=_name(s, lv), color=_color(s, lv))
                 ax.set_xticks([])
@@ -192,9 +201,16 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
         vals = s[name].values[np.isfinite(s[name].values)]
         if name.startswith("g2") and vals.size and vals.min() > 0 and vals.max() / vals.min() > 100:
             ax.set_yscale("log")
+    fig.suptitle(study_title(s), fontsize=10)
+    if outside and not time_panels:  # values against a grid axis: the legend below the panels
+        handles, labels = axes[0].get_legend_handles_labels()
+        rows = -(-len(handles) // 2)
+        fig.legend(handles, labels, loc="lower center", ncol=2, fontsize=8, title="level",
+                   title_fontsize=8, frameon=False)
+        fig.legend_room = min(0.5, (0.35 + 0.2 * rows) / fig.get_size_inches()[1])  # read by _save
+        return _save(fig, path)
     tags = [tag.removeprefix(", ") for _sel, tag in _slices(s, grid)] if grid else []
     _legends(axes, time_panels, tags, {"fontsize": 8, "title": "level", "title_fontsize": 8})
-    fig.suptitle(study_title(s), fontsize=10)
     return _save(fig, path)
 
 
