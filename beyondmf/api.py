@@ -140,14 +140,7 @@ def evolve(
     _check_model(model)
     lvl = get_level(level)
     opts = _options(lvl, options)
-    if np.ndim(times) != 1:
-        raise ValueError(
-            f"times must be a 1-D sequence of report times starting at the initial time, got {times!r}; "
-            "to evolve from t = 0 to t = 5 pass e.g. numpy.linspace(0, 5, 51)"
-        )
-    ts = np.asarray(times, dtype=float)
-    if ts.size == 0 or not np.all(np.isfinite(ts)) or np.any(np.diff(ts) <= 0):
-        raise ValueError("times must be a non-empty, finite, strictly increasing sequence")
+    ts = _report_times(times)
     bloch = initial_bloch(model, initial)
     probes = Probes.build(model, _detectors(model, detectors), lenses)
     _check_results_size(model, lvl, len(ts), len(probes.names))
@@ -165,6 +158,19 @@ def evolve(
         ds["initial_bloch"] = (("atom", "axis"), bloch,
                                {"units": "1", "long_name": "initial Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩)"})
     return ds
+
+
+def _report_times(times) -> np.ndarray:
+    """``times`` as a float array, refused unless a non-empty, finite, strictly increasing 1-D sequence."""
+    if np.ndim(times) != 1:
+        raise ValueError(
+            f"times must be a 1-D sequence of report times starting at the initial time, got {times!r}; "
+            "to evolve from t = 0 to t = 5 pass e.g. numpy.linspace(0, 5, 51)"
+        )
+    ts = np.asarray(times, dtype=float)
+    if ts.size == 0 or not np.all(np.isfinite(ts)) or np.any(np.diff(ts) <= 0):
+        raise ValueError("times must be a non-empty, finite, strictly increasing sequence")
+    return ts
 
 
 def _check_results_size(model: Model, lvl, points: int, detectors: int) -> None:
@@ -320,13 +326,17 @@ def solve_drives(
     same = all(np.array_equal(m.positions, base.positions) and m.coupling == base.coupling
                and np.array_equal(m.dipole, base.dipole) and np.array_equal(m.laser, base.laser)
                and m.beam == base.beam and m.envelope == base.envelope
-               and np.array_equal(m.J, base.J) and np.array_equal(m.Gamma, base.Gamma) for m in models)
+               and _same_array(m.J, base.J) and _same_array(m.Gamma, base.Gamma) for m in models)
     if not same:
         raise ValueError("solve_drives takes models that differ only in rabi and detuning")
     parts, said = _solve_drives(models, level, times, initial, detectors, seed, lenses, options)
     for p in parts:
         p.attrs["warnings"] = list(said) + list(p.attrs["warnings"])
     return parts
+
+
+def _same_array(a, b) -> bool:
+    return a is b or np.array_equal(a, b)  # models from `Model.with_drive` share their couplings
 
 
 def _solve_drives(models, level, times, initial, detectors, seed, lenses, options):
@@ -344,9 +354,7 @@ def _solve_drives(models, level, times, initial, detectors, seed, lenses, option
                 "steady needs a constant drive: build the model with envelope=None, or give times")
         kind, ts, extra = "steady", None, {}
     else:
-        ts = np.asarray(times, dtype=float)
-        if ts.ndim != 1 or ts.size == 0 or not np.all(np.isfinite(ts)) or np.any(np.diff(ts) <= 0):
-            raise ValueError("times must be a non-empty, finite, strictly increasing sequence")
+        ts = _report_times(times)
         _check_results_size(model, lvl, len(ts) * len(models), len(probes.names))
         bloch = initial_bloch(model, initial)
         named = isinstance(initial, str)

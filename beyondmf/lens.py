@@ -151,12 +151,9 @@ def cone_nodes(axis, half_angle: float, diameter: float,
     theta = 0.5 * half_angle * (x + 1)
     w_theta = 0.5 * half_angle * w * np.sin(theta)
     phi = 2 * np.pi * np.arange(n_phi) / n_phi
-    a = np.asarray(axis, dtype=float)
-    a = a / np.linalg.norm(a)
-    ref = np.array([1.0, 0.0, 0.0]) if abs(a[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    e1 = ref - (ref @ a) * a
-    e1 /= np.linalg.norm(e1)
-    e2 = np.cross(a, e1)
+    from .levels.base import axis_frame
+
+    a, e1, e2 = axis_frame(axis)
     st, ct = np.sin(theta)[:, None], np.cos(theta)[:, None]
     around = np.cos(phi)[None, :, None] * e1 + np.sin(phi)[None, :, None] * e2
     dirs = ct[..., None] * a + st[..., None] * around

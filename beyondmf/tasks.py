@@ -365,11 +365,22 @@ def compute_group(tasks: list[Mapping[str, Any]]) -> list[xr.Dataset]:
     kind = run.get("calculation", "steady")
     if kind not in ("steady", "evolve"):
         raise ValueError(f"run.calculation must be 'steady' or 'evolve', got {kind!r}")
-    return solve_drives([build_model(t) for t in tasks], first["level"],
+    base = build_model(first)  # the group differs only in rabi and detuning (`drive_groups`)
+    models = [base] + [base.with_drive(rabi=_drive_of(t, "rabi"), detuning=_drive_of(t, "detuning"))
+                       for t in tasks[1:]]
+    return solve_drives(models, first["level"],
                         times=times_of(run) if kind == "evolve" else None,
                         initial=run.get("initial", "ground"), detectors=first.get("detectors"),
                         seed=first.get("seed"), lenses=first.get("lenses"),
                         **dict(first.get("options") or {}))
+
+
+def _drive_of(task: Mapping[str, Any], name: str):
+    """A task's ``rabi`` or ``detuning`` as `build_model` reads it (the Model default where absent)."""
+    params = task.get("model") or {}
+    if name not in params:
+        return model_defaults()[name]
+    return _complex(params[name]) if name == "rabi" else params[name]
 
 
 def run_group(tasks: list[Mapping[str, Any]], directory: str | Path | None = None,

@@ -69,6 +69,17 @@ class Probes:
         return cls(names, directions, weights, found, tuple(slices), tuple(node_weights))
 
 
+def axis_frame(axis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(â, ê1, ê2): ``axis`` normalised and two unit vectors completing a right-handed frame, ê1 the
+    reference axis x̂ (ŷ when |â_x| ≥ 0.9) made perpendicular to â, ê2 = â × ê1."""
+    a = np.asarray(axis, dtype=float)
+    a = a / np.linalg.norm(a)
+    ref = np.array([1.0, 0.0, 0.0]) if abs(a[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    e1 = ref - (ref @ a) * a
+    e1 /= np.linalg.norm(e1)
+    return a, e1, np.cross(a, e1)
+
+
 def detector_direction(laser, angle_deg: float, azimuth_deg: float = 0.0) -> np.ndarray:
     """The unit vector at ``angle_deg`` from the laser direction, turned ``azimuth_deg`` about it.
 
@@ -76,12 +87,7 @@ def detector_direction(laser, angle_deg: float, azimuth_deg: float = 0.0) -> np.
     along or near x); with ê1 that axis made perpendicular to l̂, azimuth 90° points along l̂ × ê1
     (ŷ for a laser along z, ẑ for a laser along x, −ẑ for a laser along y).
     """
-    l_hat = np.asarray(laser, dtype=float)
-    l_hat = l_hat / np.linalg.norm(l_hat)
-    ref = np.array([1.0, 0.0, 0.0]) if abs(l_hat[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    e1 = ref - (ref @ l_hat) * l_hat
-    e1 /= np.linalg.norm(e1)
-    e2 = np.cross(l_hat, e1)
+    l_hat, e1, e2 = axis_frame(laser)
     th, ph = np.radians(angle_deg), np.radians(azimuth_deg)
     return np.cos(th) * l_hat + np.sin(th) * (np.cos(ph) * e1 + np.sin(ph) * e2)
 
