@@ -233,7 +233,7 @@ def _write_figures(make, out: Path) -> list[Path]:
 
 # The figures `beyondmf run` writes into DIR (convergence_<observable>.png by pattern).
 _OUR_FIGURES = ("emission.png", "intensity.png", "g2.png", "geometry.png", "values.png", "corrections.png",
-                "correction_map.png", "correlations.png")
+                "correction_map.png", "correlations.png", "correlations_g2.png", "correlations_spectrum.png")
 _OUR_FILES = ("results.nc", "convergence.nc", *_OUR_FIGURES)
 _OUR_PATTERNS = ("convergence_*.png",)
 

@@ -314,9 +314,14 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
 
 
 def plot_sweep(ds: xr.Dataset, directory: str | Path) -> list[Path]:
-    """Write values.png and, with several levels, corrections.png (correction_map.png for a 2-D grid)."""
+    """Write values.png and, with several levels, corrections.png (correction_map.png for a 2-D grid); for
+    a sweep of calculation = 'correlations', correlations_g2.png and correlations_spectrum.png."""
     directory = Path(directory)
     directory.mkdir(parents=True, exist_ok=True)
+    if ds.attrs.get("calculation") == "correlations":  # curves over delay and frequency, per grid point
+        from .twotime.plots import plot_correlation_sweep
+
+        return plot_correlation_sweep(ds, directory)
     s = _summary(ds)
     paths = [_values_figure(s, directory / "values.png")]
     if s.sizes["level"] > 1:

@@ -610,11 +610,11 @@ def parse_table(raw: dict[str, Any], text: str = "", path: Path | None = None) -
     if fields["run"].calculation in ("steady", "correlations") and fields["drive"].windows is not None:
         raise StudyError("drive.windows: a steady state needs a constant drive; remove the windows")
     if fields["run"].calculation == "correlations":
-        for name in ("sweep", "compare", "convergence"):
+        for name in ("compare", "convergence"):
             if name in raw:
-                raise StudyError(f"{name}: calculation = 'correlations' runs one model at its levels; "
-                                 f"[{name}] is not supported for it (remove [{name}], or run "
-                                 "beyondmf.correlations over the grid from Python)")
+                raise StudyError(f"{name}: calculation = 'correlations' gives curves over the delay and the "
+                                 f"frequency, which [{name}] does not judge; remove [{name}] (a [sweep] "
+                                 "runs), or compare the equal-time observables in a 'steady' study")
         if "lenses" in raw:
             raise StudyError("lenses: calculation = 'correlations' has no lenses (its two-time functions "
                              "are per detector); remove [lenses], or collect with a lens in a 'steady' study")

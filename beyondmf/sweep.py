@@ -55,7 +55,7 @@ from .levels.base import available_levels, detector_directions, get_level
 from .model import Model
 from .observables import stderr_attrs
 from .study import Study, StudyError, parse_table, section, study_check, study_text
-from .tasks import INPUT, MACHINE, SCALAR_VARIABLES, failure_of, task_key
+from .tasks import CORRELATION_VARIABLES, INPUT, MACHINE, SCALAR_VARIABLES, failure_of, task_key
 
 __all__ = [
     "SweepSpec",
@@ -223,8 +223,14 @@ def stack(
     if template is None:
         msgs = {results[task_key(t)].attrs.get("error", "") for t in index.values()}
         raise ValueError("every task failed: " + "; ".join(sorted(msgs)))
-    lens = ("lens_power", "lens_power_coherent", "lens_power_incoherent")  # kept whenever there are lenses
-    names = list(dict.fromkeys([*SCALAR_VARIABLES, *(o for o in (*observables, *lens) if o in template)]))
+    done = [results[task_key(t)] for t in index.values() if "emission_rate" in results[task_key(t)]]
+    if template.attrs.get("calculation") == "correlations":
+        # two-time curves (beyondmf.correlations); mean field has only its elastic part: NaN elsewhere
+        names = [n for n in CORRELATION_VARIABLES if any(n in ds for ds in done)]
+    else:
+        lens = ("lens_power", "lens_power_coherent", "lens_power_incoherent")  # kept whenever there are lenses
+        names = list(dict.fromkeys([*SCALAR_VARIABLES, *(o for o in (*observables, *lens) if o in template)]))
+    bases = {n: next(ds[n] for ds in done if n in ds) for n in names}  # shape, dtype and attributes
     stochastic = any(f"{n}_stderr" in results[task_key(t)] for t in index.values() for n in names)
     if stochastic:
         names += [f"{n}_stderr" for n in names]
@@ -236,10 +242,10 @@ def stack(
                           and np.issubdtype(v.dtype, np.floating)})
     outer = [len(v) for _, v in grid] + [len(labels), realizations]
     arrays, failures, said = {}, [], []
-    means = ["excited_mean", *(["excited_mean_stderr"] if stochastic else [])]
+    means = ["excited_mean", *(["excited_mean_stderr"] if stochastic else [])] if "excited" in template else []
     for name in names + diagnostics + means:
         base = (template["emission_rate"] if name in diagnostics or name in means
-                else template[name.removesuffix("_stderr")])
+                else bases[name.removesuffix("_stderr")])
         arrays[name] = (base.dims, np.full(outer + list(base.shape), np.nan, dtype=base.dtype))
     counts = np.full(outer, np.nan)
 
@@ -260,7 +266,8 @@ def stack(
         for name in names + diagnostics:
             if name in ds:
                 arrays[name][1][idx] = ds[name].values
-        arrays["excited_mean"][1][idx] = ds["excited"].mean("atom").values
+        if means:
+            arrays["excited_mean"][1][idx] = ds["excited"].mean("atom").values
         if stochastic and "excited_stderr" in ds:
             # the emitters' errors are correlated (the same samples): their mean bounds the error of the mean
             arrays["excited_mean_stderr"][1][idx] = ds["excited_stderr"].mean("atom").values
@@ -270,18 +277,21 @@ def stack(
     dims = [g for g, _ in grid] + ["level", "realization"]
     coords = {g: np.asarray(v) for g, v in grid}
     coords.update(level=list(labels), realization=np.arange(realizations))
-    for c in ("time", "detector", "direction", "lens", "lens_axis", "lens_na", "lens_half_angle"):
-        if c in template.coords:
-            coords[c] = template[c]
+    for c in ("time", "delay", "frequency", "detector", "direction", "lens", "lens_axis", "lens_na",
+              "lens_half_angle"):
+        have = next((ds for ds in done if c in ds.coords), None)  # mean field has no delays
+        if have is not None:
+            coords[c] = have[c]
     data = {n: (dims + list(d), a) for n, (d, a) in arrays.items()}
     out = xr.Dataset(data, coords=coords)
     for n in names:
-        base = dict(template[n.removesuffix("_stderr")].attrs)
+        base = dict(bases[n.removesuffix("_stderr")].attrs)
         out[n].attrs = stderr_attrs(base) if n.endswith("_stderr") else base
     for n in diagnostics:
         first = next(results[task_key(t)][n] for t in index.values() if n in results[task_key(t)])
         out[n].attrs = dict(first.attrs, role=DIAGNOSTIC)
-    out["excited_mean"].attrs.update(units="1", long_name="mean excited population over emitters")
+    if means:
+        out["excited_mean"].attrs.update(units="1", long_name="mean excited population over emitters")
     if stochastic:
         out["excited_mean_stderr"].attrs.update(
             units="1",
@@ -296,6 +306,9 @@ def stack(
         out = out.assign(_burst_observables(out))
     out.attrs["failures"] = failures
     out.attrs["warnings"] = said
+    if "calculation" in template.attrs and all(ds.attrs.get("calculation") == template.attrs["calculation"]
+                                               for ds in done):
+        out.attrs["calculation"] = template.attrs["calculation"]
     out.attrs.update(shared_parameters(index, labels, results))
     return out
 
@@ -619,7 +632,12 @@ def plan_estimate(study: Study) -> dict[str, float]:
     from .study import emitter_count, results_bytes
 
     spec: SweepSpec | None = study.extra.get("sweep")
-    points = 1 if study.run.calculation == "steady" else _largest(study, "run.points", study.run.points)
+    if study.run.calculation == "correlations":  # curves over the delays and frequencies, per detector
+        points = (_largest(study, "run.delay_points", study.run.delay_points)
+                  + (0 if study.run.frequency_range is None else
+                     _largest(study, "run.frequency_points", study.run.frequency_points)))
+    else:
+        points = 1 if study.run.calculation == "steady" else _largest(study, "run.points", study.run.points)
     params = study.geometry.params
     if "n" in params:
         n = _largest(study, "geometry.n", params["n"])
@@ -679,9 +697,16 @@ def _check_sections(study: Study, raw: Mapping[str, Any]) -> None:
     levels = list(study.levels)
     steady = study.run.calculation == "steady"
     last_time = spec is not None and spec.keep == "last_time"
-    if last_time and steady:
-        raise StudyError("sweep.keep: 'last_time' keeps the late-time value of a dynamics run, and a steady "
-                         "study has no time axis; remove it")
+    if last_time and study.run.calculation != "evolve":
+        raise StudyError("sweep.keep: 'last_time' keeps the late-time value of a dynamics run, and a "
+                         f"{study.run.calculation} study has no time axis; remove it")
+    if spec is not None and study.run.calculation == "correlations":
+        from .correlations import REFUSED
+
+        for name in levels:  # refused before any task runs (each would be a failed task)
+            if name in REFUSED:
+                raise StudyError(f"levels.{name}: has no two-time correlations: {REFUSED[name]}; remove "
+                                 f"[levels.{name}] from this calculation = 'correlations' study")
     if spec is not None or cmp is not None:
         # tasks draw their positions and sampling seeds from sweep.seed (realization_seeds); a seed of the
         # study itself would be silently ignored
@@ -1010,6 +1035,10 @@ def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[t
             model["envelope"] = [list(w) for w in st.drive.windows]
         if st.run.calculation == "steady":
             run = {"calculation": "steady"}
+        elif st.run.calculation == "correlations":
+            freqs = st.run.frequencies()
+            run = {"calculation": "correlations", "delays": st.run.delays(),
+                   **({} if freqs is None else {"frequencies": freqs})}
         else:
             run = {"calculation": "evolve", "times": st.run.times(), "initial": st.run.initial}
         dets = st.detector_directions()

@@ -10,8 +10,9 @@ Task dictionary
 positions : (N, 3) list of emitter positions (λ0) — drawn by whoever builds the task, so that every
     level of one realization sees the same draw.
 model : the other arguments of `beyondmf.Model` (coupling, dipole, rabi, detuning, laser, envelope).
-run : {"calculation": "steady"} or {"calculation": "evolve", "times": [...] or {"start", "stop", "num"},
-    "initial": "ground" | "excited" | [sx, sy, sz]}.
+run : {"calculation": "steady"}, {"calculation": "evolve", "times": [...] or {"start", "stop", "num"},
+    "initial": "ground" | "excited" | [sx, sy, sz]}, or {"calculation": "correlations", "delays": [...],
+    "frequencies": [...] (optional)} (two-time functions of the steady state, `beyondmf.correlations`).
 detectors : name → direction.
 level, options : the level's name and its options.
 seed : the sampling seed of a stochastic level (absent for deterministic levels, so that realizations
@@ -48,6 +49,7 @@ __all__ = [
     "read_task",
     "task_path",
     "SCALAR_VARIABLES",
+    "CORRELATION_VARIABLES",
     "TaskFileError",
     "failure_kind",
     "failure_of",
@@ -64,6 +66,19 @@ SCALAR_VARIABLES = (
     "intensity_incoherent",
     "g2",
     "g2_total",
+)
+# Those of a calculation = "correlations" task (`beyondmf.correlations`), kept whole (over delay, frequency
+# and detector) since they do not depend on N.
+CORRELATION_VARIABLES = (
+    "emission_rate",
+    "intensity",
+    "intensity_coherent",
+    "elastic_fraction",
+    "g1",
+    "g2",
+    "g2_total",
+    "intensity_delayed",
+    "spectrum",
 )
 
 
@@ -174,13 +189,17 @@ def build_model(task: Mapping[str, Any]):
     return Model(np.asarray(task["positions"], dtype=float).reshape(-1, 3), **params)
 
 
-def times_of(run: Mapping[str, Any]) -> np.ndarray:
-    t = run.get("times")
+def _grid_of(t) -> np.ndarray:
+    """Report times, delays or frequencies of a task: a list, or {"start", "stop", "num"}."""
     if isinstance(t, Mapping):
         return np.linspace(float(t["start"]), float(t["stop"]), int(t["num"]))
-    if t is None:
-        raise ValueError("run.times is required for calculation = 'evolve'")
     return np.asarray(t, dtype=float)
+
+
+def times_of(run: Mapping[str, Any]) -> np.ndarray:
+    if run.get("times") is None:
+        raise ValueError("run.times is required for calculation = 'evolve'")
+    return _grid_of(run["times"])
 
 
 def compute(task: Mapping[str, Any]) -> xr.Dataset:
@@ -196,13 +215,22 @@ def compute(task: Mapping[str, Any]) -> xr.Dataset:
     opts = dict(task.get("options") or {})
     dets = task.get("detectors")
     lenses = task.get("lenses")
-    if run.get("calculation", "steady") == "evolve":
+    if run.get("calculation") == "correlations":
+        from .correlations import correlations
+
+        # mean field has only the elastic line (as run_study runs it): no delays, no frequencies
+        elastic = level == "meanfield"
+        freqs = run.get("frequencies")
+        ds = correlations(model, level, None if elastic else _grid_of(run["delays"]), detectors=dets,
+                          frequencies=None if elastic or freqs is None else _grid_of(freqs), **opts)
+    elif run.get("calculation", "steady") == "evolve":
         ds = evolve(model, level, times_of(run), initial=run.get("initial", "ground"), detectors=dets,
                     seed=seed, lenses=lenses, **opts)
     elif run.get("calculation", "steady") == "steady":
         ds = steady(model, level, detectors=dets, seed=seed, lenses=lenses, **opts)
     else:
-        raise ValueError(f"run.calculation must be 'steady' or 'evolve', got {run.get('calculation')!r}")
+        raise ValueError("run.calculation must be 'steady', 'evolve' or 'correlations', got "
+                         f"{run.get('calculation')!r}")
     return ds
 
 
@@ -338,7 +366,8 @@ def drive_groups(tasks: list[Mapping[str, Any]]) -> list[list[Mapping[str, Any]]
     out: list[list] = []
     for task in tasks:
         lvl = type(get_level(task["level"]))
-        if lvl.steady_batch is Level.steady_batch or task.get("options", {}).get("pair_radius") is not None:
+        if (lvl.steady_batch is Level.steady_batch or task.get("options", {}).get("pair_radius") is not None
+                or (task.get("run") or {}).get("calculation") == "correlations"):
             out.append([task])
             continue
         rest = dict(task, model={k: v for k, v in (task.get("model") or {}).items()

@@ -376,5 +376,75 @@ def test_study_file_refusals(extra, match):
         text = text.replace("delay_end = 6.0\n", "")
     with pytest.raises(StudyError, match=match):
         parse_study(text)
-    with pytest.raises(StudyError, match="sweep"):
-        parse_study(_STUDY + '[sweep.grid]\n"drive.rabi" = [1.0, 2.0]\n')
+    with pytest.raises(StudyError, match="compare: calculation = 'correlations' gives curves"):
+        parse_study(_STUDY + '[compare]\nbaseline = "exact"\n')
+
+
+_SWEEP = """
+title = "a pair over the drive"
+[geometry]
+kind = "points"
+positions = [[0, 0, 0], [0.3, 0, 0.1]]
+[drive]
+rabi = 1.0
+detuning = 0.5
+[run]
+calculation = "correlations"
+delay_end = 4.0
+delay_points = 9
+frequency_range = [-3.0, 3.0]
+frequency_points = 5
+[detectors]
+forward = [0, 0, 1]
+side = {angle = 90, azimuth = 90}
+[levels.exact]
+[levels.meanfield]
+[sweep.grid]
+"drive.rabi" = [0.5, 2.0]
+"""
+
+
+def test_a_sweep_of_correlations_equals_the_calls_it_stands_for(tmp_path):
+    """[sweep] with calculation = 'correlations': every grid point and level equals `correlations` called
+    on that model (the data contract: one result whatever the route), a second run recomputes no task, and
+    the figures are one panel per grid point."""
+    from beyondmf.correction_plots import plot_sweep
+    from beyondmf.sweep import read_study, run_sweep
+
+    path = tmp_path / "s.toml"
+    path.write_text(_SWEEP)
+    study = read_study(path)
+    ds = run_sweep(study, tmp_path / "out", progress=False)
+    assert ds.attrs["calculation"] == "correlations" and ds.attrs["failures"] == []
+    assert dict(ds.g2.sizes) == {"rabi": 2, "level": 2, "realization": 1, "detector": 2, "delay": 9}
+    pos = np.array([[0, 0, 0], [0.3, 0, 0.1]])
+    dets = {"forward": [0, 0, 1], "side": [0, 1, 0]}
+    for rabi in (0.5, 2.0):
+        m = bm.Model(pos, rabi=rabi, detuning=0.5)
+        ref = correlations(m, "exact", np.linspace(0, 4, 9), detectors=dets, frequencies=np.linspace(-3, 3, 5))
+        got = ds.sel(rabi=rabi, level="exact", realization=0)
+        for name in ("g1", "g2", "g2_total", "spectrum", "intensity", "elastic_fraction", "emission_rate"):
+            np.testing.assert_allclose(got[name].values, ref[name].values, rtol=1e-9, atol=1e-14, err_msg=name)
+        elastic = correlations(m, "meanfield", None, detectors=dets)
+        mf = ds.sel(rabi=rabi, level="meanfield", realization=0)
+        np.testing.assert_allclose(mf.elastic_fraction.values, elastic.elastic_fraction.values, rtol=1e-12)
+        assert np.all(np.isnan(mf.g2.values)) and np.all(np.isnan(mf.spectrum.values))
+    back = bm.load(tmp_path / "out" / "results.nc")
+    np.testing.assert_array_equal(back.g1.values, ds.g1.values)
+    starts = []
+    run_sweep(study, tmp_path / "out", progress=False, on_start=lambda todo, total: starts.append((todo, total)))
+    assert starts == [(0, 4)]
+    pngs = plot_sweep(ds, tmp_path / "fig")
+    assert [p.name for p in pngs] == ["correlations_g2.png", "correlations_spectrum.png"]
+    assert all(p.stat().st_size > 10_000 for p in pngs)
+
+
+def test_a_sweep_of_correlations_refuses_levels_without_them():
+    """A sampled level in a correlations sweep is refused when the study is read, naming it, instead of
+    becoming one failed task per grid point."""
+    from beyondmf.study import StudyError, parse_study
+
+    with pytest.raises(StudyError, match="levels.twa: has no two-time correlations"):
+        parse_study(_SWEEP.replace("[levels.meanfield]", "[levels.twa]"))
+    with pytest.raises(StudyError, match="sweep.keep: 'last_time'.*correlations study has no time axis"):
+        parse_study(_SWEEP.replace("[sweep.grid]", '[sweep]\nkeep = "last_time"\n[sweep.grid]'))

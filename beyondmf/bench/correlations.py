@@ -1,7 +1,9 @@
 """Benchmarks of `beyondmf.correlations`: the exact spectrum of N = 6 on 400 frequencies, and cumulant2's
 g2(τ) on 200 delays (N = 500 with --full, N = 100 otherwise), time and memory.
 
-Each time is a whole call after one warm-up call of the same shapes (compile time reported apart). Memory
+Each time is a whole call after one warm-up call of the same shapes (compile time reported apart); at
+full size cumulant2's case is one call with its compile (a warm-up would double a run of many minutes for
+seconds of compile, which the quick case measures). Memory
 is the process's peak resident size after the call (`resource.getrusage`, a high-water mark of the whole
 benchmark process) and the size of the dominant arrays from the cost model beside it.
 """
@@ -60,16 +62,18 @@ def correlations_suite(full: bool, machine: Machine) -> list[Row]:
     delays = np.linspace(0, DELAY_END, DELAYS)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # cumulant2's own diagnostics are not what is timed here
-        small = Model(geometry.ellipsoid_cloud(n, radius, seed=2, min_distance=0.2), rabi=RABI)
-        _, t_first = _timed(lambda: correlations(small, "cumulant2", delays))
+        if not full:
+            small = Model(geometry.ellipsoid_cloud(n, radius, seed=2, min_distance=0.2), rabi=RABI)
+            _, t_first = _timed(lambda: correlations(small, "cumulant2", delays))
         ds, t = _timed(lambda: correlations(cloud, "cumulant2", delays))
     steps = ds.attrs.get("regression_accepted_steps", 0) + ds.attrs.get("regression_rejected_steps", 0)
     note = (f"N={n}, sphere n·λ0³={C2_DENSITY:g}, Ω={RABI:g}, steady state, {DELAYS} delays 0…{DELAY_END:g}, "
             f"forward detector (4 tangents), {ds.attrs['solver']}, {steps} steps")
     rows += [
-        Row("correlations", f"cumulant2 N={n}", "g2(τ) time (with its steady state)", t, "s", note),
-        Row("correlations", f"cumulant2 N={n}", "first call (with compile, another cloud)", t_first, "s",
-            note),
+        Row("correlations", f"cumulant2 N={n}", "g2(τ) time (with its steady state)"
+            + (", one call with its compile" if full else ""), t, "s", note),
+        *([] if full else [Row("correlations", f"cumulant2 N={n}", "first call (with compile, another cloud)",
+                               t_first, "s", note)]),
         Row("correlations", f"cumulant2 N={n}", "regression state", 8.0 * 5 * n**2 * 5 / 2**20, "MiB",
             "5 N² reals × (state + 4 tangents) … × the solver's stages"),
         Row("correlations", f"cumulant2 N={n}", "peak resident memory", _peak_mb(), "MiB", "whole process"),
