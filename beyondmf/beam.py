@@ -17,7 +17,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["GaussianBeam", "cross_section", "mode_overlap_factor", "photon_flux", "transmission"]
+__all__ = ["GaussianBeam", "cross_section", "mode_overlap_factor", "photon_flux", "transmission",
+           "transmission_factor"]
 
 K = 2 * np.pi  # the wavenumber in units of 1/λ0
 
@@ -100,12 +101,17 @@ def transmission(beam: GaussianBeam, model, coherence: np.ndarray, envelope: np.
 
     for coherences of shape (..., N); NaN where the probe is off."""
     u = beam.mode(model.positions, model.laser)
+    return 1 + transmission_factor(beam, model, envelope) * (coherence @ np.conj(u))
+
+
+def transmission_factor(beam: GaussianBeam, model, envelope: np.ndarray) -> np.ndarray:
+    """z with t = 1 + z Σ_i u*(r_i)⟨σ_i⁻⟩: z = −i 6|ê_⊥|² / (k² w0² Ω · envelope); NaN where the probe is
+    off."""
     c = mode_overlap_factor(model.dipole, model.laser)
     field = np.asarray(model.rabi) * np.asarray(envelope, dtype=complex)
     with np.errstate(divide="ignore", invalid="ignore"):
-        amp = coherence @ np.conj(u) / field
-        out = 1 - 1j * 6 * c / (K**2 * beam.waist**2) * amp
-    return np.where(np.abs(field) > 0, out, np.nan + 0j)
+        z = -1j * 6 * c / (K**2 * beam.waist**2) / field
+    return np.where(np.abs(field) > 0, z, np.nan + 0j)
 
 
 def photon_flux(beam: GaussianBeam, model) -> float:

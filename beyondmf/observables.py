@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from .beam import transmission
+from .beam import transmission, transmission_factor
 from .levels.base import Moments, Probes
 from .model import Model
 
@@ -58,9 +58,16 @@ def _ratio_stderr(a, b, sa, sb, cab):
     return np.sqrt(np.maximum(var, 0))
 
 
-def _transmission(model: Model, coherence: np.ndarray, times) -> dict:
+def _transmission(model: Model, coherence: np.ndarray, times, mode_cov=None) -> dict:
     """t, |t|² and −ln|t|² of the probe's mode (docs/transmission.md), from the coherences alone, so the
-    same at every level; NaN where the probe is off."""
+    same at every level; NaN where the probe is off.
+
+    ``mode_cov`` (T, 3): at a sampling level, the covariance (V_rr, V_ii, V_ri) of the mean projection
+    A = Σ_j u_j*⟨σ_j⁻⟩ (`levels._sampling.mode_covariance`). Then t = 1 + zA is linear in A, so its
+    covariance is C = M V Mᵀ with M the real 2 × 2 form of z; |t|² is reported without the bias tr C
+    of the squared mean (as the coherent intensity is, `levels._sampling`), with the standard errors
+    of t (√tr C), of |t|² (√(4 μᵀCμ + 2 tr C²), the moments of a Gaussian quadratic form) and of −ln|t|²
+    (that over |t|²)."""
     if times is None or model.envelope.constant:
         env = np.ones(len(coherence))
     else:
@@ -68,9 +75,26 @@ def _transmission(model: Model, coherence: np.ndarray, times) -> dict:
     t = transmission(model.beam, model, coherence, env)
     with np.errstate(divide="ignore", invalid="ignore"):
         power = np.abs(t) ** 2
-        depth = -np.log(power)
-    return {"transmission": (("time",), t), "transmission_power": (("time",), power),
-            "optical_depth": (("time",), depth)}
+        out = {"transmission": (("time",), t)}
+        if mode_cov is not None:
+            z = transmission_factor(model.beam, model, env)  # t = 1 + z·A
+            zr, zi = z.real, z.imag
+            v_rr, v_ii, v_ri = (np.asarray(mode_cov)[..., k] for k in range(3))
+            c_rr = zr * zr * v_rr - 2 * zr * zi * v_ri + zi * zi * v_ii
+            c_ii = zi * zi * v_rr + 2 * zr * zi * v_ri + zr * zr * v_ii
+            c_ri = zr * zi * (v_rr - v_ii) + (zr * zr - zi * zi) * v_ri
+            x, y = t.real, t.imag
+            power = power - (c_rr + c_ii)
+            se_power = np.sqrt(np.maximum(4 * (x * x * c_rr + y * y * c_ii + 2 * x * y * c_ri)
+                                          + 2 * (c_rr**2 + c_ii**2 + 2 * c_ri**2), 0.0))
+            out["transmission_stderr"] = (("time",), np.sqrt(np.maximum(c_rr + c_ii, 0.0)), {
+                "units": "1", "long_name": "standard error (sampling) of the coherent amplitude t transmitted"
+                                           " into the probe beam's mode, √(Var Re t + Var Im t)"})
+            out["transmission_power_stderr"] = (("time",), se_power)
+            out["optical_depth_stderr"] = (("time",), se_power / power)
+        out["transmission_power"] = (("time",), power)
+        out["optical_depth"] = (("time",), -np.log(power))
+    return out
 
 
 def _lens_power(probes: Probes, intensity, coherent, m: Moments, pref) -> dict:
@@ -159,7 +183,7 @@ def assemble(
     for name, (dims, arr, *described) in m.diagnostics.items():
         data[name] = (dims, arr, *described)
     if model.beam is not None:
-        data.update(_transmission(model, m.coherence, times))
+        data.update(_transmission(model, m.coherence, times, m.cov.get("mode")))
     data.update(lenses)
 
     coords = {

@@ -228,7 +228,8 @@ def stack(
         # two-time curves (beyondmf.correlations); mean field has only its elastic part: NaN elsewhere
         names = [n for n in CORRELATION_VARIABLES if any(n in ds for ds in done)]
     else:
-        lens = ("lens_power", "lens_power_coherent", "lens_power_incoherent")  # kept whenever there are lenses
+        # the lens powers are kept whenever there are lenses
+        lens = ("lens_power", "lens_power_coherent", "lens_power_incoherent")
         names = list(dict.fromkeys([*SCALAR_VARIABLES, *(o for o in (*observables, *lens) if o in template)]))
     bases = {n: next(ds[n] for ds in done if n in ds) for n in names}  # shape, dtype and attributes
     stochastic = any(f"{n}_stderr" in results[task_key(t)] for t in index.values() for n in names)
@@ -242,7 +243,8 @@ def stack(
                           and np.issubdtype(v.dtype, np.floating)})
     outer = [len(v) for _, v in grid] + [len(labels), realizations]
     arrays, failures, said = {}, [], []
-    means = ["excited_mean", *(["excited_mean_stderr"] if stochastic else [])] if "excited" in template else []
+    means = (["excited_mean", *(["excited_mean_stderr"] if stochastic else [])] if "excited" in template
+             else [])
     for name in names + diagnostics + means:
         base = (template["emission_rate"] if name in diagnostics or name in means
                 else bases[name.removesuffix("_stderr")])

@@ -421,10 +421,12 @@ def test_a_sweep_of_correlations_equals_the_calls_it_stands_for(tmp_path):
     dets = {"forward": [0, 0, 1], "side": [0, 1, 0]}
     for rabi in (0.5, 2.0):
         m = bm.Model(pos, rabi=rabi, detuning=0.5)
-        ref = correlations(m, "exact", np.linspace(0, 4, 9), detectors=dets, frequencies=np.linspace(-3, 3, 5))
+        ref = correlations(m, "exact", np.linspace(0, 4, 9), detectors=dets,
+                           frequencies=np.linspace(-3, 3, 5))
         got = ds.sel(rabi=rabi, level="exact", realization=0)
         for name in ("g1", "g2", "g2_total", "spectrum", "intensity", "elastic_fraction", "emission_rate"):
-            np.testing.assert_allclose(got[name].values, ref[name].values, rtol=1e-9, atol=1e-14, err_msg=name)
+            np.testing.assert_allclose(got[name].values, ref[name].values, rtol=1e-9, atol=1e-14,
+                                       err_msg=name)
         elastic = correlations(m, "meanfield", None, detectors=dets)
         mf = ds.sel(rabi=rabi, level="meanfield", realization=0)
         np.testing.assert_allclose(mf.elastic_fraction.values, elastic.elastic_fraction.values, rtol=1e-12)
@@ -432,7 +434,8 @@ def test_a_sweep_of_correlations_equals_the_calls_it_stands_for(tmp_path):
     back = bm.load(tmp_path / "out" / "results.nc")
     np.testing.assert_array_equal(back.g1.values, ds.g1.values)
     starts = []
-    run_sweep(study, tmp_path / "out", progress=False, on_start=lambda todo, total: starts.append((todo, total)))
+    run_sweep(study, tmp_path / "out", progress=False,
+              on_start=lambda todo, total: starts.append((todo, total)))
     assert starts == [(0, 4)]
     pngs = plot_sweep(ds, tmp_path / "fig")
     assert [p.name for p in pngs] == ["correlations_g2.png", "correlations_spectrum.png"]

@@ -371,3 +371,31 @@ def test_a_scan_whose_steady_state_search_fails_names_the_drive():
     m = bm.Model(bm.geometry.gaussian_cloud(8, 0.3, seed=2, min_distance=0.1), rabi=1.0)
     with pytest.raises(SolveError, match=r"at the drive Ω = 1\+0j, Δ = -1.*max_steps"):
         _quiet(bm.drive_scan, m, "meanfield", detuning=[-1.0, 1.0], max_steps=5, solver="tsit5")
+
+
+@pytest.mark.parametrize("level", ["jumps", "qsd_product"])
+def test_sampling_error_of_the_transmission_matches_the_spread_over_seeds(level):
+    """A sampling level's transmission_stderr and transmission_power_stderr are the spread of one run's
+    value over independent seeds: with 10 seeds the ratio of the empirical spread to the mean reported
+    error lies in [0.5, 1.6] with probability > 99 % (a chi distribution with 9 degrees of freedom,
+    common practice). Quantum jumps are unbiased (Dalibard, Castin, Mølmer, PRL 68, 580 (1992)), so their
+    mean power lies within 4 standard errors of the mean of the exact |t|²."""
+    pos = bm.geometry.gaussian_cloud(3, 0.25, seed=2, min_distance=0.1)
+    m = bm.Model(pos, rabi=0.3, detuning=0.2, dipole=(1, 0, 0), laser=(0, 0, 1), beam=GaussianBeam(1.0))
+    times = np.linspace(0, 3, 4)
+    exact = bm.evolve(m, "exact", times)
+    assert "transmission_stderr" not in exact
+    runs = [_quiet(bm.evolve, m, level, times, samples=200, seed=seed).isel(time=-1) for seed in range(10)]
+    t = np.array([complex(r.transmission) for r in runs])
+    power = np.array([float(r.transmission_power) for r in runs])
+    spread_t = np.sqrt(np.var(t.real, ddof=1) + np.var(t.imag, ddof=1))
+    spread_p = np.std(power, ddof=1)
+    se_t = np.mean([float(r.transmission_stderr) for r in runs])
+    se_p = np.mean([float(r.transmission_power_stderr) for r in runs])
+    assert 0.5 < spread_t / se_t < 1.6
+    assert 0.5 < spread_p / se_p < 1.6
+    assert runs[0].transmission_power_stderr.attrs["long_name"].startswith("standard error")
+    np.testing.assert_allclose([float(r.optical_depth_stderr) for r in runs],
+                               [float(r.transmission_power_stderr / r.transmission_power) for r in runs])
+    if level == "jumps":
+        assert abs(power.mean() - float(exact.transmission_power[-1])) < 4 * se_p / np.sqrt(len(runs))

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["amplitude_sums", "coherent_statistics", "UNSETTLED_SIGMAS"]
+__all__ = ["amplitude_sums", "coherent_statistics", "mode_sums", "mode_covariance", "UNSETTLED_SIGMAS"]
 
 # A sampled steady state whose settling check moved by more than this many standard errors had not
 # settled: the level warns (twa, qsd_product, jumps).
@@ -66,3 +66,23 @@ def coherent_statistics(sums: dict, field2_sum, count: int):
            + 2 * (v_rr**2 + v_ii**2 + 2 * v_ri**2) / s**2)
     cov = 2 * (a * c_fr + b * c_fi) / s
     return coherent, np.sqrt(np.maximum(var, 0.0)), cov
+
+
+def mode_sums(amp, wsum) -> dict:
+    """Sums over samples of the per-sample projection A = Σ_j u_j* s_j⁻ onto the probe beam's mode and of
+    its second moments (``amp`` (S, …) complex): the sampling error of the transmission."""
+    re, im = amp.real, amp.imag
+    return {"mode_r": wsum(re), "mode_i": wsum(im), "mode_rr": wsum(re * re), "mode_ii": wsum(im * im),
+            "mode_ri": wsum(re * im)}
+
+
+def mode_covariance(sums: dict, count: int) -> np.ndarray:
+    """(…, 3): the covariance (V_rr, V_ii, V_ri) of the mean projection onto the mode, Re and Im parts,
+    over ``count`` samples (sample covariances with S − 1, divided by S)."""
+    s = float(count)
+    a, b = np.asarray(sums["mode_r"]) / s, np.asarray(sums["mode_i"]) / s
+    d = max(s - 1.0, 1.0)
+    v_rr = (np.asarray(sums["mode_rr"]) - s * a * a) / d
+    v_ii = (np.asarray(sums["mode_ii"]) - s * b * b) / d
+    v_ri = (np.asarray(sums["mode_ri"]) - s * a * b) / d
+    return np.stack([v_rr, v_ii, v_ri], axis=-1) / s

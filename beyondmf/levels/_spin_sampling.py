@@ -28,7 +28,7 @@ from ..estimators import product_field_moments, product_rate_moments
 from ..integrate import SolveError
 from ..memory import require
 from ..model import Envelope, Model
-from ._sampling import UNSETTLED_SIGMAS, amplitude_sums, coherent_statistics
+from ._sampling import UNSETTLED_SIGMAS, amplitude_sums, coherent_statistics, mode_covariance, mode_sums
 from .base import (
     Level,
     Moments,
@@ -148,7 +148,7 @@ def _sample_keys(seed: int, start: int, count: int):
     return jax.vmap(lambda k: jax.random.fold_in(base, k))(jnp.arange(start, start + count))
 
 
-def _per_sample(Y, weights, gamma):
+def _per_sample(Y, weights, gamma, mode):
     """Per-sample estimators (S leading): the product-state sums with the samples' symbols.
 
     A sample's symbols σ_j⁻ → β_j = (x_j − i y_j)/2, σ_j⁺σ_j⁻ → n_j = (1 + z_j)/2 and σ_j⁺σ_j⁺ → 0 obey the
@@ -161,7 +161,8 @@ def _per_sample(Y, weights, gamma):
     f2, f4 = jax.vmap(product_field_moments, in_axes=(1, 1, None))(beta, n, weights)
     r2, r4 = jax.vmap(product_rate_moments, in_axes=(1, 1, None))(beta, n, gamma)
     return {"excited": n.T, "coherence": beta.T, "field2": f2, "field4": f4, "rate": r2, "rate4": r4,
-            "excited_total": jnp.sum(n, axis=0), "amplitude": beta.T @ weights.T}
+            "excited_total": jnp.sum(n, axis=0), "amplitude": beta.T @ weights.T,
+            "mode_amplitude": beta.T @ mode}
 
 
 def _bad(Y):
@@ -181,7 +182,9 @@ def _sums(obs, mask):
 
     obs = dict(obs)
     amplitude = obs.pop("amplitude")  # per-sample Σ_j w_dj β_j: the unbiased coherent part (levels._sampling)
+    mode = obs.pop("mode_amplitude")  # per-sample Σ_j u_j* β_j: the transmission's sampling error
     out = {k: s(v) for k, v in obs.items()}
+    out.update(mode_sums(mode, s))
     out.update({k + "^2": s(jnp.abs(v) ** 2) for k, v in obs.items()})
     out.update(amplitude_sums(amplitude, obs["field2"], s))
     out["field4*field2"] = s(obs["field4"] * obs["field2"])
@@ -219,10 +222,10 @@ def _runner(envelope: Envelope, steady: bool, equations: SpinEquations):
     @jax.jit
     def run(Y0, keys, mask, args, obs_args, t_obs, n_sub):
         """Step from t_obs[0] through t_obs[1:], ``n_sub[k]`` Heun steps between t_obs[k] and t_obs[k+1]."""
-        weights, gamma = obs_args
+        weights, gamma, mode = obs_args
 
         def observe(Y):
-            obs = _per_sample(Y, weights, gamma)
+            obs = _per_sample(Y, weights, gamma, mode)
             if equations.observe is not None:
                 obs.update(equations.observe(Y, args))
             return obs
@@ -355,6 +358,7 @@ def _statistics(tot: dict[str, np.ndarray], count: int):
     }
     means["coherent_field"], stderr["coherent_field"], cov["field2,coherent"] = coherent_statistics(
         tot, tot["field2"], count)
+    cov["mode"] = mode_covariance(tot, count)
     return means, stderr, cov
 
 
@@ -424,7 +428,8 @@ class SpinSampling(Level):
         dt = self._step(model, options)
         n = model.n
         args = self.level_args(model, spin_args(model))
-        obs_args = (jnp.asarray(probes.weights), args["JG"][n:])
+        mode = np.zeros(n, complex) if probes.mode is None else probes.mode  # zeros: no beam, not reported
+        obs_args = (jnp.asarray(probes.weights), args["JG"][n:], jnp.asarray(mode))
         # per sample: the state and ~10 temporaries of its size, the noise, the estimator temporaries
         per_sample = 8 * (14 * 3 * n + 6 * n + 8 * probes.weights.shape[0] * n)
         chunk = options["chunk"]
@@ -459,6 +464,8 @@ class SpinSampling(Level):
         if good < 2:
             raise SolveError(f"{self.title}: only {good} usable samples; raise samples")
         means, stderr, cov = _statistics(tot, good)
+        if probes.mode is None:
+            del cov["mode"]
         attrs = {
             "samples": samples,
             "samples_failed": failed,

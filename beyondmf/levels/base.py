@@ -46,6 +46,9 @@ class Probes:
     lenses: tuple = ()  # beyondmf.lens.Lens
     lens_nodes: tuple[slice, ...] = ()
     lens_weights: tuple[np.ndarray, ...] = ()
+    # u*(r_j) of the probe beam's mode (`beyondmf.beam`; None for a plane wave): a sampling level projects
+    # each sample on it, for the sampling error of the transmission
+    mode: np.ndarray | None = None
 
     @classmethod
     def build(cls, model: Model, detectors: dict[str, Any],
@@ -66,7 +69,8 @@ class Probes:
             start += len(w)
         directions = np.concatenate(directions)
         weights = np.exp(-2j * np.pi * directions @ model.positions.T)
-        return cls(names, directions, weights, found, tuple(slices), tuple(node_weights))
+        mode = None if model.beam is None else np.conj(model.beam.mode(model.positions, model.laser))
+        return cls(names, directions, weights, found, tuple(slices), tuple(node_weights), mode)
 
 
 def axis_frame(axis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -135,9 +139,11 @@ class Moments:
     ``cov["rate"] = cov(rate4, rate)``. They also set ``coherent_field`` (T, D), the unbiased estimate of
     |Σ_j w_dj ⟨σ_j⁻⟩|² (`levels._sampling`; the square of the mean coherences is biased by their sampling
     variance), with ``stderr["coherent_field"]`` and ``cov["field2,coherent"]``; without it the coherent
-    part is computed from ``coherence``. ``diagnostics`` maps extra data-variable names to (dims, array)
-    or (dims, array, attrs), attrs with ``units`` and ``long_name``; ``attrs`` adds attributes (solver
-    statistics, residuals, warnings).
+    part is computed from ``coherence``. With a beam drive they also set ``cov["mode"]`` (T, 3), the
+    covariance (V_rr, V_ii, V_ri) of the mean projection Σ_j u_j*⟨σ_j⁻⟩ on the probe's mode (the sampling
+    error of the transmission, `levels._sampling.mode_covariance`). ``diagnostics`` maps extra
+    data-variable names to (dims, array) or (dims, array, attrs), attrs with ``units`` and
+    ``long_name``; ``attrs`` adds attributes (solver statistics, residuals, warnings).
     """
 
     excited: Any

@@ -34,7 +34,7 @@ from .._notes import warn as _note
 from ..memory import available_bytes, require
 from ..model import Envelope, Model
 from . import _qubits as q
-from ._sampling import UNSETTLED_SIGMAS, amplitude_sums, coherent_statistics
+from ._sampling import UNSETTLED_SIGMAS, amplitude_sums, coherent_statistics, mode_covariance, mode_sums
 from .base import (
     Level,
     Moments,
@@ -167,6 +167,7 @@ def _runner(envelope: Envelope, dt: float):
         cross["rate_lag"] = wsum(r[:, -1] * r[:, -2]) if ts.shape[0] >= 2 else wsum(0.0 * r[:, -1])
         # the far-field amplitudes Σ_j w_dj ⟨σ_j⁻⟩ per trajectory, for the unbiased coherent part
         cross.update(amplitude_sums(obs["coherence"] @ args["weights"].T, obs["field2"], wsum))
+        cross.update(mode_sums(obs["coherence"] @ args["mode"], wsum))  # the transmission's sampling error
         return sums, sq, cross
 
     return run
@@ -207,6 +208,7 @@ class Jumps(Level):
             "omega": jnp.asarray(model.rabi_sites.astype(complex)),
             "tab": q.site_tables(n),
             "weights": jnp.asarray(probes.weights),
+            "mode": jnp.asarray(np.zeros(n, complex) if probes.mode is None else probes.mode),
             "V": jnp.asarray(v),
             "rates": jnp.asarray(rates),
         }
@@ -249,6 +251,8 @@ class Jumps(Level):
         }
         coherent, stderr["coherent_field"], cov["field2,coherent"] = coherent_statistics(
             crs, tot["field2"], samples)
+        if probes.mode is not None:
+            cov["mode"] = mode_covariance(crs, samples)
         lag = np.nan
         if len(ts) >= 2:  # covariance over trajectories of the rates at the last two times
             lag = (crs["rate_lag"] / samples - mean["rate"][-1] * mean["rate"][-2]) * samples / (samples - 1)
