@@ -4,12 +4,11 @@ One `Model`, two entry points (`evolve`, `steady`), levels chosen by name; every
 `xarray.Dataset` (conventions.md, "the data contract").
 """
 
-__version__ = "0.1.0"
-
 from . import (
     _config,  # noqa: F401,E402  (64-bit JAX before anything else touches JAX)
     geometry,  # noqa: E402
 )
+from ._version import __version__  # noqa: E402
 from .api import drive_scan, evolve, steady  # noqa: E402
 from .beam import GaussianBeam  # noqa: E402
 from .correlations import correlations  # noqa: E402
@@ -17,7 +16,8 @@ from .couplings import couplings  # noqa: E402
 from .levels import Level, Moments, available_levels, get_level, register  # noqa: E402
 from .model import Model  # noqa: E402
 from .results import load, save  # noqa: E402
-from .sweep import read_study  # noqa: E402
+from .study import read_study  # noqa: E402
+from .sweep import compare_levels  # noqa: E402
 
 
 def level_options(level: str) -> dict:
@@ -26,6 +26,7 @@ def level_options(level: str) -> dict:
 
 
 __all__ = [
+    "__version__",
     "Model",
     "evolve",
     "steady",
@@ -43,4 +44,5 @@ __all__ = [
     "save",
     "load",
     "read_study",
+    "compare_levels",
 ]

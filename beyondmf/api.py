@@ -155,7 +155,7 @@ def evolve(
     ds.attrs["warnings"] = list(said)
     ds = _with_inputs(model, ds)
     if not named:  # the state itself, so that the file says how to reproduce the run
-        ds["initial_bloch"] = (("atom", "axis"), bloch,
+        ds["initial_bloch"] = (("emitter", "axis"), bloch,
                                {"units": "1", "long_name": "initial Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩)"})
     return ds
 
@@ -175,9 +175,8 @@ def _report_times(times) -> np.ndarray:
 
 def _check_results_size(model: Model, lvl, points: int, detectors: int) -> None:
     """MemoryError, before the level allocates anything, when the results at ``points`` report times
-    would not fit in free memory (`beyondmf.study.results_bytes`, one level)."""
-    from .memory import require
-    from .study import results_bytes
+    would not fit in free memory (`beyondmf.memory.results_bytes`, one level)."""
+    from .memory import require, results_bytes
 
     need = results_bytes(model.n, points, detectors, 1, lvl.stochastic)
     require(need, f"the results of {model.n:,} emitters at {points:,} report times",
@@ -189,7 +188,7 @@ def _with_inputs(model: Model, ds: xr.Dataset) -> xr.Dataset:
     if model.coupling == "custom":
         for name, mat, what in (("coupling_J", model.J, "exchange J_ij"), ("coupling_Gamma", model.Gamma,
                                                                            "collective decay Γ_ij")):
-            ds[name] = (("atom", "partner"), np.array(mat), {"units": "Γ0", "long_name": f"custom {what}"})
+            ds[name] = (("emitter", "partner"), np.array(mat), {"units": "Γ0", "long_name": f"custom {what}"})
     return ds
 
 
@@ -373,7 +372,7 @@ def _solve_drives(models, level, times, initial, detectors, seed, lenses, option
         ds.attrs["warnings"] = list(own)
         ds = _with_inputs(m, ds)
         if ts is not None and not isinstance(initial, str):
-            ds["initial_bloch"] = (("atom", "axis"), bloch, {
+            ds["initial_bloch"] = (("emitter", "axis"), bloch, {
                 "units": "1", "long_name": "initial Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩)"})
         parts.append(ds)
     return parts, list(said)

@@ -77,7 +77,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Light emitted by dense, laser-driven clouds of two-level emitters, at successive levels "
         "of correlation. Units: lengths in λ0, rates in Γ0, times in 1/Γ0.",
     )
-    from . import __version__
+    from ._version import __version__
 
     p.add_argument("--version", action="version", version=f"beyondmf {__version__}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND", parser_class=_SubParser)
@@ -258,8 +258,7 @@ def _remove_earlier_outputs(out: Path, convergence: bool) -> None:
 
 def _cmd_run(args) -> int:
     from .outdir import claim, lock
-    from .study import check_run_size
-    from .sweep import check_plan, is_sweep, read_study
+    from .study import check_plan, check_run_size, is_sweep, read_study
 
     if args.workers is not None and args.workers < 1:
         raise _UsageError(f"--workers: expected a positive number of workers, got {args.workers}")
@@ -414,7 +413,7 @@ def _report_convergence(study, ds, out: Path, plots: bool) -> None:
 
     from .convergence import figure
     from .outdir import save_ours
-    from .sweep import check_convergence
+    from .study import check_convergence
 
     tables = check_convergence(study, ds)
     merged = xr.Dataset({f"{obs}_{var}": t[var] for obs, t in tables.items() for var in t.data_vars})

@@ -4,7 +4,7 @@ For an observable X, level ℓ and realization k (a position draw, with the same
 level), `summarize` reports
 
     mean         X̄_ℓ = (1/K) Σ_k X_ℓk
-    uncertainty  u_ℓ² = s²_k(X_ℓ)/K + Σ_k σ²_ℓk / K²
+    stderr       u_ℓ² = s²_k(X_ℓ)/K + Σ_k σ²_ℓk / K²
     correction   c_ℓ = (X̄_ℓ − X̄_b) / X̄_b          (b the baseline level, mean field by default)
 
 where s²_k is the sample variance over realizations (the spread of the draws) and σ_ℓk the sampling
@@ -35,20 +35,13 @@ width stands.
 
 from __future__ import annotations
 
-import dataclasses
-from collections.abc import Callable, Mapping, Sequence
-from pathlib import Path
-from typing import Any
+from collections.abc import Sequence
 
 import numpy as np
 import xarray as xr
 from scipy import stats
 
-from .api import check_seed
-from .levels.base import is_count
-from .model import Model
-
-__all__ = ["summarize", "compare_levels", "verdict_table", "OBSERVABLES", "VERDICTS"]
+__all__ = ["summarize", "verdict_table", "OBSERVABLES", "VERDICTS"]
 
 OBSERVABLES = ("emission_rate", "intensity", "g2", "g2_total")
 VERDICTS = ("holds", "fails", "undecided", "undefined", "baseline")
@@ -108,7 +101,7 @@ def summarize(
     Returns
     -------
     Dataset with ``level`` and the other dimensions of ``ds`` (no ``realization``): ``X``,
-    ``X_uncertainty``, ``X_correction``, ``X_correction_low``, ``X_correction_high``, ``X_verdict``
+    ``X_stderr``, ``X_correction``, ``X_correction_low``, ``X_correction_high``, ``X_verdict``
     for each observable X, and ``warned_realizations`` (how many of a level's runs warned about
     themselves) when ``ds`` has the per-run ``warnings`` count of `sweep.stack`; attributes state the
     baseline, tolerance, confidence and interval.
@@ -161,8 +154,9 @@ def summarize(
             verdict[unresolved.broadcast_like(c).transpose(*order).values] = "undecided"
         out[name] = mean.assign_attrs(x.attrs)
         units = {"units": x.attrs["units"]} if "units" in x.attrs else {}
-        out[f"{name}_uncertainty"] = np.sqrt(_var(x, k) / k + samp).assign_attrs(
-            **units, long_name=f"uncertainty of the mean of {name} over realizations (1 standard error)")
+        out[f"{name}_stderr"] = np.sqrt(_var(x, k) / k + samp).assign_attrs(
+            **units,
+            long_name=f"standard error of the mean of {name} over realizations (spread and sampling)")
         out[f"{name}_correction"] = c.assign_attrs(
             units="1", long_name=f"relative correction (X − X_{baseline})/X_{baseline} of {name}")
         out[f"{name}_correction_low"] = low.assign_attrs(
@@ -209,111 +203,3 @@ def verdict_table(summary: xr.Dataset) -> dict[str, dict[str, str]]:
                 row[name[: -len("_verdict")]] = str(min(vals, key=lambda v: rank[str(v)]))
         table[str(lv)] = row
     return table
-
-
-def _plain_model_args(model) -> dict:
-    """The Model arguments as the plain values a task file holds (a beam as its table, arrays as lists)."""
-    plain = dict(model or {})
-    beam = plain.get("beam")
-    if beam is not None and hasattr(beam, "describe"):
-        plain["beam"] = beam.describe()
-    if np.ndim(plain.get("detuning", 0.0)) > 0:
-        plain["detuning"] = [float(d) for d in np.asarray(plain["detuning"], dtype=float).reshape(-1)]
-    return plain
-
-
-def compare_levels(
-    positions: np.ndarray | Sequence[np.ndarray] | Callable[[int], np.ndarray],
-    levels: Sequence[str] | Mapping[str, Mapping[str, Any]],
-    realizations: int = 1,
-    seed: int = 0,
-    baseline: str = "meanfield",
-    tolerance: float = 0.1,
-    confidence: float = 0.95,
-    model: Mapping[str, Any] | None = None,
-    times=None,
-    initial="ground",
-    detectors: Mapping[str, Any] | None = None,
-    observables: Sequence[str] = OBSERVABLES,
-    out=None,
-    executor=None,
-    progress: bool = False,
-) -> xr.Dataset:
-    """Run one geometry at several levels on the same position draws and seeds, and compare them.
-
-    Parameters
-    ----------
-    positions : an (N, 3) array (the same emitters in every realization: realizations then differ
-        only in the seeds of stochastic levels), a list of K arrays (one per realization), or a
-        function ``seed -> (N, 3) array`` called with the realization's position seed.
-    levels : level names, or label → {"level": name, **options} (e.g. one level at two tolerances).
-    realizations : K, the number of position draws.
-    seed : base seed; realization k draws positions from SeedSequence([seed, k]) and sampling levels
-        get SeedSequence([seed, k, 1]), the same for every level.
-    baseline, tolerance, confidence, observables : see `summarize`.
-    model : the other arguments of `beyondmf.Model` (coupling, dipole, rabi, detuning, laser, envelope).
-    times : None for the steady state, else the times of `beyondmf.evolve` from ``initial``.
-    detectors : name → direction (default: "forward", along the laser).
-    out : a directory; each task's file is kept in ``out/tasks/`` (resumable: a call with the same
-        tasks reuses them); None keeps everything in memory.
-    executor : an executor of `beyondmf.executors` (default: in this process).
-
-    Returns
-    -------
-    `summarize`'s Dataset with a ``level`` dimension; the per-realization values are kept as
-    ``X_realizations`` (level, realization, ...).
-    """
-    from .executors import execute
-    from .sweep import build_task, level_table, realization_seeds, stack
-
-    table = level_table(levels)
-    if not is_count(realizations, 1):
-        raise ValueError(f"realizations must be a positive integer, got {realizations!r}")
-    k = int(realizations)
-    check_seed(seed)
-    if isinstance(observables, str) or not all(isinstance(o, str) for o in observables):
-        raise ValueError(f"observables must be a list of names, e.g. ['emission_rate'], got {observables!r}")
-    model_args = {f.name for f in dataclasses.fields(Model) if f.init} - {"positions"}
-    unknown = sorted(set(model or {}) - model_args)
-    if unknown:
-        raise ValueError(f"model= got {', '.join(map(repr, unknown))}; it takes the arguments of "
-                         f"beyondmf.Model other than the positions: {', '.join(sorted(model_args))}")
-    if out is not None and Path(out).exists() and not Path(out).is_dir():
-        raise ValueError(f"out={str(out)!r} is a file; give a directory (made if missing) for the task files")
-    draws = []
-    for r in range(k):
-        pos_seed, _ = realization_seeds(seed, r)
-        if callable(positions):
-            draws.append(np.asarray(positions(pos_seed), dtype=float))
-        elif isinstance(positions, np.ndarray) and positions.ndim == 2:
-            draws.append(positions)
-        else:
-            if len(positions) != k:
-                raise ValueError(f"got {len(positions)} position arrays for {k} realizations")
-            draws.append(np.asarray(positions[r], dtype=float))
-    sizes = sorted({np.asarray(d).size // 3 for d in draws})
-    if len(sizes) > 1:
-        listed = ", ".join(map(str, sizes))
-        raise ValueError(f"the realizations have different numbers of emitters ({listed}); "
-                         "a comparison averages over draws of one cloud, so give every draw the same N")
-    run = {"calculation": "steady"} if times is None else {
-        "calculation": "evolve", "times": np.asarray(times, dtype=float).tolist(), "initial": initial}
-    plain = _plain_model_args(model)
-    index = {}
-    for label, spec in table.items():
-        for r in range(k):
-            index[(label, r)] = build_task(draws[r], plain, run, detectors, spec, seed, r)
-    results = execute(list(index.values()), out, executor, progress)
-    per = stack(index, results, list(table), k, observables)
-    summary = summarize(per, baseline, tolerance, confidence, observables)
-    for name in observables:
-        summary[f"{name}_realizations"] = per[name]
-    summary.attrs["warnings"] = per.attrs.get("warnings", [])
-    summary.attrs["seed"] = int(seed)
-    shaped = [np.asarray(d, dtype=float).reshape(-1, 3) for d in draws]
-    # the emitters of every realization (one N, checked above), so the file alone suffices
-    summary["positions"] = xr.DataArray(
-        np.stack(shaped), dims=("realization", "emitter", "component"),
-        coords={"realization": np.arange(k), "component": ["x", "y", "z"]},
-        attrs={"units": "λ0", "long_name": "emitter positions of each realization"})
-    return summary

@@ -121,17 +121,18 @@ def assess_sweep(
     """Convergence tables along a sweep's grid dimension ``dim`` for one level of a sweep result.
 
     Works on per-realization results (averaged here: mean ± spread/√K and sampling errors in quadrature)
-    and on `beyondmf.compare.summarize` output (``X`` and ``X_uncertainty``). With per-realization results
-    the draws are the same at every grid value, so the error of each change is that of the paired
-    differences over realizations (their spread/√K, and the sampling errors of both points in quadrature):
-    the draw-to-draw spread of the value itself, common to both points, does not enter the criterion.
+    and on `beyondmf.compare.summarize` output (``X`` and ``X_stderr``, no ``realization``). With
+    per-realization results the draws are the same at every grid value, so the error of each change is
+    that of the paired differences over realizations (their spread/√K, and the sampling errors of both
+    points in quadrature): the draw-to-draw spread of the value itself, common to both points, does not
+    enter the criterion.
     """
     out = {}
     sub = ds.sel(level=level)
     for name in observables:
         de = None
-        if f"{name}_uncertainty" in sub:
-            x, e = sub[name], sub[f"{name}_uncertainty"]
+        if "realization" not in sub.dims and f"{name}_stderr" in sub:  # a summary
+            x, e = sub[name], sub[f"{name}_stderr"]
         else:
             k = sub.sizes.get("realization", 1)
             x = sub[name].mean("realization")

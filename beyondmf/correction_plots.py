@@ -19,7 +19,7 @@ from matplotlib.ticker import NullFormatter  # noqa: E402
 
 from .compare import summarize  # noqa: E402
 from .plotting import study_title  # noqa: E402
-from .sweep import format_value, grid_quantity  # noqa: E402
+from .study.sections import format_value, grid_quantity  # noqa: E402
 
 __all__ = ["plot_sweep"]
 
@@ -71,14 +71,14 @@ def _subplots(n: int):
 def _summary(ds: xr.Dataset) -> xr.Dataset:
     """A comparison as it is (whatever observables it compared); per-realization results summarized
     against their first level."""
-    if any(name.endswith("_uncertainty") for name in ds.data_vars):
+    if any(name.endswith("_verdict") for name in ds.data_vars):
         return ds
     return summarize(ds, baseline=str(ds["level"].values[0]))
 
 
 def _grid_dims(s: xr.Dataset) -> list[str]:
     """The grid dimensions: those of a compared observable other than level, time, detector and lens."""
-    first = next(name.removesuffix("_uncertainty") for name in s.data_vars if name.endswith("_uncertainty"))
+    first = next(name.removesuffix("_verdict") for name in s.data_vars if name.endswith("_verdict"))
     return [d for d in s[first].dims if d not in ("level", "time", *_PER)]
 
 
@@ -91,8 +91,8 @@ def _panels(s: xr.Dataset) -> list[tuple[str, tuple[str, str] | None]]:
     per lens where it has one."""
     out = []
     for name in s.data_vars:
-        if name.endswith("_uncertainty"):
-            obs = name.removesuffix("_uncertainty")
+        if name.endswith("_verdict"):
+            obs = name.removesuffix("_verdict")
             per = next((d for d in _PER if d in s[obs].dims), None)
             out += [(obs, (per, str(e))) for e in s[per].values] if per else [(obs, None)]
     return out
@@ -112,7 +112,7 @@ def _name(s: xr.Dataset, level) -> str:
 
 
 def _pick(s: xr.Dataset, name: str, det: tuple[str, str] | None, level) -> tuple[xr.DataArray, xr.DataArray]:
-    v, u = s[name].sel(level=level), s[f"{name}_uncertainty"].sel(level=level)
+    v, u = s[name].sel(level=level), s[f"{name}_stderr"].sel(level=level)
     if det is not None:
         v, u = v.sel(dict([det])), u.sel(dict([det]))
     return v, u

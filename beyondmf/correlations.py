@@ -204,7 +204,7 @@ def correlations(
              "warnings": said, **tt.attrs, **provenance()}
     ds = _assemble(model, probes, d, f, tt, attrs)
     if at is not None and not isinstance(initial, str | None):
-        ds["initial_bloch"] = (("atom", "axis"), bloch,
+        ds["initial_bloch"] = (("emitter", "axis"), bloch,
                                {"units": "1", "long_name": "initial Bloch vectors (⟨σ^x⟩, ⟨σ^y⟩, ⟨σ^z⟩)"})
     return _with_inputs(model, ds)
 
@@ -243,8 +243,8 @@ def _assemble(model: Model, probes: Probes, delays, freqs, tt: TwoTime, attrs) -
         if freqs is not None:
             data["spectrum"] = (("detector", "frequency"), (pref * tt.inelastic).T)
     coords = {
-        "atom": np.arange(model.n), "detector": list(probes.names), "axis": ["x", "y", "z"],
-        "position": (("atom", "axis"), model.positions),
+        "emitter": np.arange(model.n), "detector": list(probes.names), "axis": ["x", "y", "z"],
+        "position": (("emitter", "axis"), model.positions),
         "direction": (("detector", "axis"), probes.directions),
     }
     if delays is not None:

@@ -21,6 +21,8 @@ __all__ = [
     "block_array",
     "density",
     "nearest_distance",
+    "axis_frame",
+    "detector_direction",
 ]
 
 # Random sequential addition jams near a packing fraction of 0.38 (J. Feder, J. Theor. Biol. 87, 237
@@ -188,3 +190,26 @@ def density(positions: np.ndarray, neighbours: int = 10) -> dict[str, float]:
     d, _ = cKDTree(pos).query(pos, k=k + 1)
     local = k / (4 / 3 * np.pi * d[:, k] ** 3)
     return {"peak": float(local.max()), "mean": float(local.mean())}
+
+
+def axis_frame(axis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(â, ê1, ê2): ``axis`` normalised and two unit vectors completing a right-handed frame, ê1 the
+    reference axis x̂ (ŷ when |â_x| ≥ 0.9) made perpendicular to â, ê2 = â × ê1."""
+    a = np.asarray(axis, dtype=float)
+    a = a / np.linalg.norm(a)
+    ref = np.array([1.0, 0.0, 0.0]) if abs(a[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    e1 = ref - (ref @ a) * a
+    e1 /= np.linalg.norm(e1)
+    return a, e1, np.cross(a, e1)
+
+
+def detector_direction(laser, angle_deg: float, azimuth_deg: float = 0.0) -> np.ndarray:
+    """The unit vector at ``angle_deg`` from the laser direction, turned ``azimuth_deg`` about it.
+
+    Azimuth 0 lies in the plane of the laser and the reference axis x̂ (ŷ when |l̂_x| ≥ 0.9, a laser
+    along or near x); with ê1 that axis made perpendicular to l̂, azimuth 90° points along l̂ × ê1
+    (ŷ for a laser along z, ẑ for a laser along x, −ẑ for a laser along y).
+    """
+    l_hat, e1, e2 = axis_frame(laser)
+    th, ph = np.radians(angle_deg), np.radians(azimuth_deg)
+    return np.cos(th) * l_hat + np.sin(th) * (np.cos(ph) * e1 + np.sin(ph) * e2)

@@ -20,7 +20,8 @@ from ._notes import warn as _note
 
 __all__ = [
     "ODE_OPTIONS", "SolveError", "solve", "settle", "observe_once", "hermitian_unit_trace", "pick_solver",
-    "per_envelope", "check_ode_options", "stabilized", "RELAX_RATE", "check_bounds", "BOUND_SLACK",
+    "per_envelope", "check_ode_options", "OptionError",
+    "stabilized", "RELAX_RATE", "check_bounds", "BOUND_SLACK",
 ]
 
 ODE_OPTIONS: dict[str, Any] = {
@@ -43,6 +44,15 @@ IMPLICIT = ("kvaerno3", "kvaerno5")
 # the explicit steps it saves.
 IMPLICIT_MAX_SIZE = 3000
 STIFF_RATIO = 200.0  # stiffness (Γ0) above which an explicit solver is warned about
+
+
+class OptionError(ValueError):
+    """A level option with a value the level cannot use; ``option`` names it, the message starts with it."""
+
+    def __init__(self, option: str, problem: str) -> None:
+        super().__init__(f"{option} {problem}")
+        self.option = option
+
 
 
 def per_envelope(build: Callable) -> Callable:
@@ -69,8 +79,6 @@ _ADVICE = {
 def check_ode_options(options: dict[str, Any], defaults: dict[str, Any]) -> None:
     """`OptionError` naming the first ODE option (of those in ``defaults``) with a value the solver cannot
     use."""
-    from .levels.base import OptionError  # not at the top: the levels import this module
-
     def positive(name):
         v = options.get(name)
         if name in defaults and not (isinstance(v, int | float) and not isinstance(v, bool)

@@ -62,7 +62,7 @@ def lenses_of(lenses: Mapping[str, Any] | None, laser) -> tuple[Lens, ...]:
     from the laser, 0–180) and optional ``azimuth`` (degrees about it, as for detectors), and the cone as
     ``na`` (0 < NA ≤ 1) or ``half_angle`` (degrees, 0 < α ≤ 180; beyond 90 a cone no lens has, e.g. 180
     for the whole sphere); optional ``resolution`` (≥ 1) multiplies the quadrature nodes."""
-    from .levels.base import detector_direction
+    from .geometry import detector_direction
 
     if lenses is None:
         return ()
@@ -151,7 +151,7 @@ def cone_nodes(axis, half_angle: float, diameter: float,
     theta = 0.5 * half_angle * (x + 1)
     w_theta = 0.5 * half_angle * w * np.sin(theta)
     phi = 2 * np.pi * np.arange(n_phi) / n_phi
-    from .levels.base import axis_frame
+    from .geometry import axis_frame
 
     a, e1, e2 = axis_frame(axis)
     st, ct = np.sin(theta)[:, None], np.cos(theta)[:, None]

@@ -9,7 +9,8 @@ from __future__ import annotations
 import math
 import os
 
-__all__ = ["available_bytes", "require", "size_text", "as_memory_error", "release_compiled_code"]
+__all__ = ["available_bytes", "require", "size_text", "as_memory_error", "release_compiled_code",
+           "results_bytes"]
 
 _DEFAULT_HINT = ("use fewer emitters (for a sampling level, a smaller chunk of samples), or a larger "
                  "machine")
@@ -102,3 +103,12 @@ def release_compiled_code(fraction: float = 0.5) -> bool:
     jax.clear_caches()
     gc.collect()
     return True
+
+
+def results_bytes(n: int, points: int, detectors: int, levels: int, stochastic: bool, copies: int = 3) -> int:
+    """An estimate of the memory of the results of ``levels`` runs of ``n`` emitters at ``points`` report
+    times: per time, the per-emitter excited and coherence (3N numbers), about 12 numbers per detector and
+    16 more (rates, g2, diagnostics), twice as many with the standard errors of a sampled level; times
+    ``copies`` (a level's output, its Dataset, the merged one). An exact integer (no overflow)."""
+    per_time = 3 * n + 12 * detectors + 16
+    return copies * 8 * int(points) * per_time * (2 if stochastic else 1) * int(levels)

@@ -152,8 +152,8 @@ def assemble(
             m.cov[key] = m.cov[key][..., :nd]
     pref = pref[:nd]
     data = {
-        "excited": (("time", "atom"), m.excited),
-        "coherence": (("time", "atom"), m.coherence),
+        "excited": (("time", "emitter"), m.excited),
+        "coherence": (("time", "emitter"), m.coherence),
         "emission_rate": (("time",), m.rate),
         "intensity": (("time", "detector"), intensity),
         "intensity_coherent": (("time", "detector"), coherent),
@@ -163,8 +163,8 @@ def assemble(
     }
     if m.stderr:
         se = m.stderr
-        data["excited_stderr"] = (("time", "atom"), se["excited"])
-        data["coherence_stderr"] = (("time", "atom"), se["coherence"])
+        data["excited_stderr"] = (("time", "emitter"), se["excited"])
+        data["coherence_stderr"] = (("time", "emitter"), se["coherence"])
         data["emission_rate_stderr"] = (("time",), se["rate"])
         data["intensity_stderr"] = (("time", "detector"), pref * se["field2"])
         if "coherent_field" in se:
@@ -187,10 +187,10 @@ def assemble(
     data.update(lenses)
 
     coords = {
-        "atom": np.arange(model.n),
+        "emitter": np.arange(model.n),
         "detector": list(probes.names),
         "axis": ["x", "y", "z"],
-        "position": (("atom", "axis"), model.positions),
+        "position": (("emitter", "axis"), model.positions),
         "direction": (("detector", "axis"), probes.directions[: len(probes.names)]),
     }
     if times is not None:

@@ -88,7 +88,7 @@ def _where(da: xr.DataArray, flat: int) -> str:
             parts.append(f"t = {float(da['time'][i]):.4g}")
         elif dim == "detector":
             parts.append(f"detector {str(da['detector'].values[i])!r}")
-        elif dim == "atom":
+        elif dim == "emitter":
             parts.append(f"emitter {i}")
     return ", ".join(parts)
 

@@ -122,7 +122,7 @@ def plot_emission(ds: xr.Dataset, path: str | Path) -> Path:
         vals = np.array([[float(_by_level(ds, lv)["emission_rate"]) for lv in levels]])
         errs = np.array([[_scalar_err(_by_level(ds, lv), "emission_rate") for lv in levels]])
         _bars(ax, ["steady state"], levels, vals, _RATE, errs)
-    ax.set_title(_title(ds, f"Total emission, N = {ds.sizes['atom']}"))
+    ax.set_title(_title(ds, f"Total emission, N = {ds.sizes['emitter']}"))
     ax.grid(alpha=0.3)
     _mark_unphysical(ax, ds, levels, ("emission_rate",))
     return _save(fig, Path(path))

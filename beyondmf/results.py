@@ -33,7 +33,7 @@ def provenance() -> dict[str, str]:
     import diffrax
     import jax
 
-    from . import __version__
+    from ._version import __version__
 
     return {
         "beyondmf_version": __version__,

@@ -59,7 +59,7 @@ def test_quickstart_study_runs_and_writes_results_and_figures(tmp_path, capsys):
     assert "level meanfield: started" in err and "level meanfield: finished in" in err
     ds = beyondmf.load(tmp_path / "results.nc")
     assert list(ds["level"].values) == ["meanfield"]
-    assert ds.sizes["atom"] == 200 and ds.sizes["time"] == 201
+    assert ds.sizes["emitter"] == 200 and ds.sizes["time"] == 201
     assert list(ds["detector"].values) == ["forward", "sixty"]
     assert ds["time"].values[-1] == pytest.approx(20.0)
     assert np.all(np.isfinite(ds["emission_rate"].values[:, 1:]))
@@ -104,7 +104,7 @@ def test_missing_variables_of_a_level_are_filled_with_nan():
     """Levels with stderr (sampling) and without (meanfield) concatenate along `level`."""
     import xarray as xr
 
-    from beyondmf.study import _fill_missing
+    from beyondmf.study.single import _fill_missing
 
     a = xr.Dataset({"x": (("time",), np.ones(3))})
     b = xr.Dataset({"x": (("time",), np.zeros(3)), "x_stderr": (("time",), np.full(3, 0.1))})

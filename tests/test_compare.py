@@ -8,7 +8,8 @@ import xarray as xr
 from scipy import stats
 
 import beyondmf as bm
-from beyondmf.compare import compare_levels, summarize, verdict_table
+from beyondmf.compare import summarize, verdict_table
+from beyondmf.sweep import compare_levels
 
 
 def _per_realization(values: dict[str, np.ndarray], stderr: dict | None = None) -> xr.Dataset:
@@ -45,7 +46,7 @@ def test_verdicts_on_constructed_cases():
     assert v == {"meanfield": "baseline", "close": "holds", "far": "fails", "straddling": "undecided"}
     assert float(s["emission_rate_correction"].sel(level="far")) == pytest.approx(0.30, rel=1e-12)
     # the draw-to-draw spread sets the uncertainty of the mean, not the width of the paired interval
-    assert float(s["emission_rate_uncertainty"].sel(level="close")) == pytest.approx(
+    assert float(s["emission_rate_stderr"].sel(level="close")) == pytest.approx(
         1.01 * base.std(ddof=1) / 2, rel=1e-12)
     assert float(s["emission_rate_correction_high"].sel(level="close")) == pytest.approx(0.01, abs=1e-12)
     assert s.attrs["tolerance"] == 0.05 and "Student-t" in s.attrs["interval"]
@@ -56,7 +57,7 @@ def test_sampling_error_of_a_stochastic_level_enters_in_quadrature():
     ds = _per_realization({"meanfield": np.array([2.0]), "sampled": np.array([2.1])},
                           {"meanfield": np.array([0.0]), "sampled": np.array([0.05])})
     s = summarize(ds, baseline="meanfield", tolerance=0.2, observables=["emission_rate"])
-    assert float(s["emission_rate_uncertainty"].sel(level="sampled")) == pytest.approx(0.05)
+    assert float(s["emission_rate_stderr"].sel(level="sampled")) == pytest.approx(0.05)
     half = float(s["emission_rate_correction_high"].sel(level="sampled")) - 0.05
     assert half == pytest.approx(stats.norm.ppf(0.975) * 0.05 / 2.0, rel=1e-10)
     assert str(s["emission_rate_verdict"].sel(level="sampled").values) == "holds"
@@ -113,12 +114,12 @@ def test_the_mean_population_of_a_sampled_level_carries_its_sampling_error():
     s = compare_levels(pos, {"exact": {}, "jumps": {"samples": 50}}, seed=2, baseline="exact",
                        model={"rabi": 1.0}, tolerance=0.02, observables=["emission_rate", "excited_mean"])
     j = {"level": "jumps"}
-    assert float(s["excited_mean_uncertainty"].sel(j)) > 0
+    assert float(s["excited_mean_stderr"].sel(j)) > 0
     for name in ("emission_rate", "excited_mean"):
         assert str(s[f"{name}_verdict"].sel(j).values) == "undecided"
     # the mean of the emitters' errors bounds the error of their mean; for independent emitters it is
     # within √2 of the rate's own error, which is exact here
-    rate, mean = float(s["emission_rate_uncertainty"].sel(j)), float(s["excited_mean_uncertainty"].sel(j))
+    rate, mean = float(s["emission_rate_stderr"].sel(j)), float(s["excited_mean_stderr"].sel(j))
     assert rate / 2 <= mean + 1e-12 and mean <= rate / 2 * np.sqrt(2) + 1e-12
 
 

@@ -44,9 +44,9 @@ def _results(times: bool, laser=(0.0, 0.0, 1.0), quick=0) -> xr.Dataset:
          "g2": ((*dims, "detector"), np.stack([rate, rate / 2], -1) - 0.5),
          "g2_stderr": ((*dims, "detector"), np.stack([err, err], -1)),
          "g2_total": (dims, rate - 0.2), "g2_total_stderr": (dims, err)},
-        coords={"level": ["meanfield", "twa"], "detector": ["forward", "side"], "atom": np.arange(3),
+        coords={"level": ["meanfield", "twa"], "detector": ["forward", "side"], "emitter": np.arange(3),
                 "axis": ["x", "y", "z"],
-                "position": (("atom", "axis"), [[0, 0, 0], [0.3, 0, 0], [0, 0.3, 0.1]]),
+                "position": (("emitter", "axis"), [[0, 0, 0], [0.3, 0, 0], [0, 0.3, 0.1]]),
                 "direction": (("detector", "axis"), [list(laser), [0, 1, 0]])}
         | ({"time": t} if times else {}),
         attrs={"laser": list(laser), "dipole": [1.0, 0.0, 0.0], "title": "a test cloud", "quick": quick})

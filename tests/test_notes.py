@@ -14,7 +14,7 @@ import warnings
 import numpy as np
 
 import beyondmf as bm
-from beyondmf.compare import compare_levels
+from beyondmf.sweep import compare_levels
 
 # two emitters 0.01 λ0 apart: coupling rates of ~10⁵ Γ0, far above the stiffness an explicit solver is
 # warned about
@@ -51,7 +51,7 @@ def test_warnings_print_above_the_progress_bar_not_inside_its_line():
     # in a fresh interpreter: pytest records warnings itself, so they would never reach stderr here
     script = (
         "import numpy as np\n"
-        "from beyondmf.compare import compare_levels\n"
+        "from beyondmf.sweep import compare_levels\n"
         f"compare_levels(np.array({CLOSE_PAIR.tolist()}),\n"
         "               {'mf': {'level': 'meanfield', 'solver': 'tsit5'}}, baseline='mf',\n"
         "               model={'rabi': 0.1}, times=np.linspace(0, 0.01, 3), progress=True)\n"

@@ -18,7 +18,7 @@ from beyondmf import physicality
 def _dataset(g2, g2_err=None, excited=(0.2, 0.3)):
     """A steady-state result with one detector and the given g2 (and its standard error)."""
     data = {
-        "excited": (("atom",), np.array(excited)),
+        "excited": (("emitter",), np.array(excited)),
         "emission_rate": ((), 0.5),
         "intensity": (("detector",), np.array([0.04])),
         "intensity_incoherent": (("detector",), np.array([0.01])),
@@ -27,7 +27,7 @@ def _dataset(g2, g2_err=None, excited=(0.2, 0.3)):
     }
     if g2_err is not None:
         data["g2_stderr"] = (("detector",), np.array([g2_err]))
-    return xr.Dataset(data, coords={"detector": ["forward"], "atom": [0, 1]})
+    return xr.Dataset(data, coords={"detector": ["forward"], "emitter": [0, 1]})
 
 
 def test_deterministic_tolerance():

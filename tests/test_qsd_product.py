@@ -243,7 +243,7 @@ def test_driven_chain_with_weak_exchange_against_the_lindblad_equation():
     # this test does not check)
     said = [str(w.message) for w in said if issubclass(w.category, UserWarning)]
     assert not [w for w in said if "exchange_leak" in w or "emission rate too" in w], said
-    tot = ds.excited.sum("atom").values
+    tot = ds.excited.sum("emitter").values
     tot_se = np.sqrt((ds.excited_stderr.values**2).sum(axis=1))
     assert np.all(np.abs(tot - exc.sum(axis=1)) < 0.05 * exc.sum(axis=1).max() + 4 * tot_se)
     rate_se = ds.emission_rate_stderr.values

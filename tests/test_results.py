@@ -37,7 +37,7 @@ def test_failed_write_leaves_no_file(dataset, tmp_path, monkeypatch):
 
 def test_steady_result_has_no_time_axis():
     ds = bm.steady(bm.Model([[0, 0, 0]], rabi=1.0), "meanfield")
-    assert "time" not in ds.dims and ds.excited.dims == ("atom",)
+    assert "time" not in ds.dims and ds.excited.dims == ("emitter",)
     assert ds.intensity.dims == ("detector",)
 
 

@@ -108,9 +108,10 @@ def test_a_grid_of_a_million_tasks_is_refused_at_once_and_with_large_by_its_memo
 
 def test_a_large_grid_says_what_it_is_doing_while_it_plans(tmp_path, capsys, monkeypatch):
     """Checking and building a grid's tasks shows a progress bar once it has taken a while (here at once)."""
+    import beyondmf.study.sections as sections
     import beyondmf.sweep as sweep
 
-    monkeypatch.setattr(sweep, "PLANNING_BAR_DELAY_S", 0.0)
+    monkeypatch.setattr(sections, "PLANNING_BAR_DELAY_S", 0.0)
     path = _study_file(tmp_path, ONE_MODEL + '[sweep]\n[sweep.grid]\n"drive.rabi" = [1.0, 2.0, 3.0]\n')
     sweep.study_tasks(sweep.read_study(path))
     err = capsys.readouterr().err

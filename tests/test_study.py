@@ -254,7 +254,7 @@ def test_auto_options_take_auto_or_a_number(tmp_path, level, setting, value):
 
 def test_a_third_party_auto_option_takes_a_number():
     """Options of levels without rules are judged by their default; a default "auto" takes a number."""
-    check, what = study_mod._option_check("auto")
+    check, what = study_mod.schema._option_check("auto")
     assert check(0.5) and check(3) and check("auto") and check(True) and not check([1])
     assert "a number" in what
 
@@ -409,7 +409,7 @@ def test_results_attributes_are_those_every_level_shares(monkeypatch):
         return xr.Dataset({"emission_rate": (("time",), np.ones(len(times)))}, coords={"time": times},
                           attrs=attrs)
 
-    monkeypatch.setattr(study_mod, "evolve", fake_evolve)
+    monkeypatch.setattr(study_mod.single, "evolve", fake_evolve)
     text = BASE.replace("[levels.cumulant2]\n", "[levels.twa]\nsamples = 10\n")
     ds = study_mod.run_study(parse_study(text))
     assert made == ["meanfield", "twa"]

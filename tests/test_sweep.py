@@ -12,7 +12,8 @@ import xarray as xr
 from beyondmf import load as bm_load
 from beyondmf.executors import Dask, execute
 from beyondmf.study import StudyError
-from beyondmf.sweep import _point_study, read_study, run_sweep, study_tasks
+from beyondmf.study.sections import _point_study
+from beyondmf.sweep import read_study, run_sweep, study_tasks
 from beyondmf.tasks import task_key, task_path
 
 STUDY = """

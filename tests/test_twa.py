@@ -142,7 +142,7 @@ def test_independent_decay_with_coherent_couplings_keeps_the_ground_state_dark()
     m0 = Model(positions=pos)
     m = Model(positions=pos, coupling=(np.array(m0.J), np.eye(20)))
     ds = evolve(m, "twa", np.linspace(0, 4, 3), seed=1, samples=200, chunk=200)
-    assert np.all(np.abs(ds.excited.sum("atom").values) < 1e-9)
+    assert np.all(np.abs(ds.excited.sum("emitter").values) < 1e-9)
 
 
 def test_vacuum_control_measures_the_known_dense_cloud_error_and_warns():
@@ -232,7 +232,7 @@ def test_small_dense_clusters_against_the_lindblad_equation(n, spacing):
     ts = np.linspace(0, 5, 11)
     exc, rate = _lindblad_reference(m, np.tile([0, 0, -1.0], (n, 1)), ts)
     ds = evolve(m, "twa", ts, seed=8, samples=2000)
-    tot = ds.excited.sum("atom").values
+    tot = ds.excited.sum("emitter").values
     tot_se = np.sqrt((ds.excited_stderr.values**2).sum(axis=1))
     assert np.all(np.abs(tot - exc.sum(axis=1)) < 0.1 * n * exc.max() + 4 * tot_se)
     rate_se = ds.emission_rate_stderr.values

@@ -8,45 +8,17 @@ machine's own float64 matrix-product peak or streaming bandwidth, measured in th
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import asdict, dataclass
 
+from ._core import SUITES, Row, suite
 from .machine import Machine, measure, median_time
 
 __all__ = ["Row", "suite", "suites", "run_suites", "Machine", "measure", "median_time"]
 
 
-@dataclass
-class Row:
-    """One measured figure."""
-
-    suite: str
-    case: str
-    metric: str
-    value: float
-    unit: str
-    note: str = ""
-
-    def as_dict(self) -> dict:
-        return asdict(self)
-
-
-_SUITES: dict[str, Callable[[bool, Machine], list[Row]]] = {}
-
-
-def suite(name: str):
-    """Decorator: register a benchmark suite under ``name``."""
-
-    def deco(fn):
-        _SUITES[name] = fn
-        return fn
-
-    return deco
-
-
 def suites() -> dict[str, Callable]:
     from . import _all  # noqa: F401  (imports every suite module)
 
-    return dict(_SUITES)
+    return dict(SUITES)
 
 
 def run_suites(names: list[str] | None, full: bool, machine: Machine | None = None) -> list[Row]:

@@ -19,7 +19,7 @@ import numpy as np
 from .. import geometry
 from ..correlations import correlations
 from ..model import Model
-from . import Row, suite
+from ._core import Row, suite
 from .machine import Machine
 
 RABI, MIN_DISTANCE = 1.0, 0.1

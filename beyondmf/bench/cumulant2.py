@@ -19,7 +19,7 @@ from .. import geometry
 from ..api import evolve, steady
 from ..levels.cumulant2 import RHS_FLOPS, cumulant2_args, cumulant2_rhs, product_state
 from ..model import Model
-from . import Row, suite
+from ._core import Row, suite
 from .machine import Machine, median_time
 
 

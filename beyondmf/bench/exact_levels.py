@@ -15,7 +15,7 @@ import numpy as np
 from .. import geometry
 from ..api import evolve
 from ..model import Model
-from . import Row, suite
+from ._core import Row, suite
 from .machine import Machine
 
 # Our own scenarios: a small spherical cloud (radius in λ0, hard core 0.1 λ0) driven on resonance at Ω = 1.

@@ -35,7 +35,7 @@ class Machine:
     backend: str
 
     def rows(self):
-        from . import Row
+        from ._core import Row
 
         return [
             Row("machine", self.backend, "float64 matmul peak", self.matmul_flops / 1e9, "GFLOP/s",

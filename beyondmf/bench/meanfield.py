@@ -23,8 +23,8 @@ from ..api import evolve
 from ..levels.meanfield import bloch_to_state, coupling_args, meanfield_rhs
 from ..memory import require
 from ..model import Model
-from . import Row, median_time, suite
-from .machine import Machine, measure
+from ._core import Row, suite
+from .machine import Machine, measure, median_time
 
 __all__ = ["reference_meanfield", "cloud_model"]
 

@@ -14,7 +14,8 @@ import warnings
 import numpy as np
 
 from ..api import evolve
-from . import Machine, Row, suite
+from ._core import Row, suite
+from .machine import Machine
 from .twa import _cloud
 
 

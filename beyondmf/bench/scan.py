@@ -20,7 +20,7 @@ from .. import geometry
 from ..api import drive_scan, evolve, steady
 from ..integrate import SolveError
 from ..model import Model
-from . import Row, suite
+from ._core import Row, suite
 from .machine import Machine
 
 RABI, DENSITY, MIN_DISTANCE, T_END = 0.5, 0.5, 0.1, 5.0

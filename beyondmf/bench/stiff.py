@@ -20,7 +20,7 @@ import numpy as np
 from .. import geometry
 from ..api import evolve, steady
 from ..model import Model
-from . import Row, suite
+from ._core import Row, suite
 from .machine import Machine
 from .meanfield import reference_meanfield
 

@@ -16,7 +16,8 @@ from ..api import evolve
 from ..geometry import ellipsoid_cloud
 from ..levels._spin_sampling import spin_args, spin_drift
 from ..model import Model
-from . import Machine, Row, median_time, suite
+from ._core import Row, suite
+from .machine import Machine, median_time
 
 
 def _cloud(n: int) -> Model:

@@ -16,17 +16,13 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from ..geometry import axis_frame, detector_direction
+from ..integrate import OptionError, check_ode_options
+from ..lens import cloud_diameter, cone_nodes, lenses_of
 from ..model import Model
 
-__all__ = ["Level", "Moments", "Probes", "OptionError", "register", "get_level", "available_levels"]
-
-
-class OptionError(ValueError):
-    """A level option with a value the level cannot use; ``option`` names it, the message starts with it."""
-
-    def __init__(self, option: str, problem: str) -> None:
-        super().__init__(f"{option} {problem}")
-        self.option = option
+__all__ = ["Level", "Moments", "Probes", "OptionError", "register", "get_level", "available_levels",
+           "axis_frame", "detector_direction"]
 
 
 @dataclass(frozen=True)
@@ -53,7 +49,6 @@ class Probes:
     @classmethod
     def build(cls, model: Model, detectors: dict[str, Any],
               lenses: Mapping[str, Any] | None = None) -> Probes:
-        from ..lens import cloud_diameter, cone_nodes, lenses_of
 
         resolved = detector_directions(detectors, model.laser)
         names = tuple(resolved)
@@ -71,29 +66,6 @@ class Probes:
         weights = np.exp(-2j * np.pi * directions @ model.positions.T)
         mode = None if model.beam is None else np.conj(model.beam.mode(model.positions, model.laser))
         return cls(names, directions, weights, found, tuple(slices), tuple(node_weights), mode)
-
-
-def axis_frame(axis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(â, ê1, ê2): ``axis`` normalised and two unit vectors completing a right-handed frame, ê1 the
-    reference axis x̂ (ŷ when |â_x| ≥ 0.9) made perpendicular to â, ê2 = â × ê1."""
-    a = np.asarray(axis, dtype=float)
-    a = a / np.linalg.norm(a)
-    ref = np.array([1.0, 0.0, 0.0]) if abs(a[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    e1 = ref - (ref @ a) * a
-    e1 /= np.linalg.norm(e1)
-    return a, e1, np.cross(a, e1)
-
-
-def detector_direction(laser, angle_deg: float, azimuth_deg: float = 0.0) -> np.ndarray:
-    """The unit vector at ``angle_deg`` from the laser direction, turned ``azimuth_deg`` about it.
-
-    Azimuth 0 lies in the plane of the laser and the reference axis x̂ (ŷ when |l̂_x| ≥ 0.9, a laser
-    along or near x); with ê1 that axis made perpendicular to l̂, azimuth 90° points along l̂ × ê1
-    (ŷ for a laser along z, ẑ for a laser along x, −ẑ for a laser along y).
-    """
-    l_hat, e1, e2 = axis_frame(laser)
-    th, ph = np.radians(angle_deg), np.radians(azimuth_deg)
-    return np.cos(th) * l_hat + np.sin(th) * (np.cos(ph) * e1 + np.sin(ph) * e2)
 
 
 def detector_directions(detectors: Mapping[str, Any], laser) -> dict[str, np.ndarray]:
@@ -246,8 +218,6 @@ class Level(ABC):
         """Refuse, with a ValueError naming the option, a value this level cannot use (no model needed,
         nothing computed: study files call it before a run starts). The default checks the options of the
         adaptive ODE solver, where the level has them; levels with options of their own extend it."""
-        from ..integrate import check_ode_options  # levels.base is imported by integrate's users
-
         check_ode_options({k: v for k, v in options.items() if k in self.options}, self.options)
 
     @abstractmethod

@@ -90,7 +90,7 @@ _PANEL_COLUMNS = 3
 
 def _points(ds: xr.Dataset) -> tuple[list[str], list[tuple[dict, str]]]:
     """The grid dimensions of a correlations sweep and every grid point: (selection, title)."""
-    from ..sweep import format_value, grid_quantity
+    from ..study.sections import format_value, grid_quantity
 
     dims = [d for d in ds["g2_total" if "g2_total" in ds else "emission_rate"].dims
             if d not in ("level", "realization", "delay", "frequency", "detector")]

@@ -1,6 +1,6 @@
-"""Sweeps: a study's grid × levels × realizations as resumable tasks, merged into DIR/results.nc.
+"""The study-file sections of a sweep and how they fit together, and the one reader of study files.
 
-Study-file sections added here (docs/user-guide.md, "Writing a study"):
+Sections added here (docs/user-guide.md, "Writing a study"):
 
     [sweep]
     realizations = 8            # K position draws (and sampling seeds) per grid point
@@ -44,35 +44,31 @@ import copy
 import itertools
 import json
 import tomllib
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
-from .levels.base import available_levels, detector_directions, get_level
-from .model import Model
-from .observables import stderr_attrs
-from .study import Study, StudyError, parse_table, section, study_check, study_text
-from .tasks import CORRELATION_VARIABLES, INPUT, MACHINE, SCALAR_VARIABLES, failure_of, task_key
+from ..levels.base import get_level
+from ..tasks import SCALAR_VARIABLES
+from .schema import Study, StudyError, emitter_count, parse_table, section, study_check, study_text
 
 __all__ = [
     "SweepSpec",
     "CompareSpec",
+    "ConvergenceSpec",
     "read_study",
     "study_from_table",
     "to_toml",
     "is_sweep",
-    "study_tasks",
-    "run_sweep",
     "check_convergence",
-    "build_task",
-    "level_table",
-    "realization_seeds",
-    "stack",
+    "check_plan",
+    "plan_estimate",
     "grid_quantity",
     "format_value",
+    "cloud_scale",
 ]
 
 # Observables a [compare] section may name besides the default ones; the transmission ones exist for a beam
@@ -119,297 +115,6 @@ def grid_quantity(path: str) -> tuple[str | None, str, str]:
         return "1/Γ0", f"{last} ({path})", f"{path} (1/Γ0)"
     return None, path, path
 
-
-# ---------------------------------------------------------------------------------------------------
-# Seeds and tasks
-
-
-def realization_seeds(seed: int, realization: int) -> tuple[int, int]:
-    """(position seed, sampling seed) of realization k: SeedSequence([seed, k]) and ([seed, k, 1])."""
-    pos = np.random.SeedSequence([int(seed), int(realization)]).generate_state(1)[0]
-    lvl = np.random.SeedSequence([int(seed), int(realization), 1]).generate_state(1)[0]
-    return int(pos % 2**31), int(lvl % 2**31)
-
-
-def level_table(levels: Sequence[str] | Mapping[str, Any]) -> dict[str, dict[str, Any]]:
-    """label → {"level": name, "options": {...}} from a list of names or label → {level?, **options}."""
-    if isinstance(levels, str) or not isinstance(levels, Sequence | Mapping) or not levels:
-        raise ValueError("levels must be a non-empty list of level names or a table label → options")
-    items = {name: {} for name in levels} if not isinstance(levels, Mapping) else dict(levels)
-    out = {}
-    for label, opts in items.items():
-        if opts is not None and not isinstance(opts, Mapping):
-            raise ValueError(f"levels[{label!r}] must be a table of options, e.g. {{'level': 'twa', "
-                             f"'samples': 500}} or {{}}, got {opts!r}")
-        opts = dict(opts or {})
-        name = opts.pop("level", label)
-        get_level(name)  # unknown names raise, listing the known ones
-        out[str(label)] = {"level": name, "options": opts}
-    return out
-
-
-def build_task(
-    positions: np.ndarray,
-    model: Mapping[str, Any],
-    run: Mapping[str, Any],
-    detectors: Mapping[str, Any] | None,
-    level: Mapping[str, Any],
-    seed: int,
-    realization: int,
-    lenses: Mapping[str, Any] | None = None,
-) -> dict[str, Any]:
-    """The task dictionary of one level on one draw; deterministic levels carry no seed, so equal
-    positions at a deterministic level are one task whatever the realization number. ``lenses`` (as
-    `beyondmf.evolve` takes them) enter the task only when given, so tasks without lenses keep their
-    keys."""
-    from .api import _options
-
-    lvl = get_level(level["level"])
-    # refused here, before it becomes a task: a failed task's file is reused by the next run with its key
-    _options(lvl, dict(level["options"]))
-    task = {
-        "positions": np.asarray(positions, dtype=float),
-        "model": dict(model),
-        "run": dict(run),
-        "detectors": None if detectors is None else _task_detectors(detectors, model),
-        "level": level["level"],
-        "options": dict(level["options"]),
-    }
-    if lenses:
-        from .lens import lenses_of
-
-        lenses_of(lenses, model.get("laser", Model.laser))  # refused here, naming the lens
-        task["lenses"] = {str(k): dict(v) for k, v in lenses.items()}
-    if lvl.stochastic:
-        task["seed"] = realization_seeds(seed, realization)[1]
-    return task
-
-
-def _task_detectors(detectors: Mapping[str, Any], model: Mapping[str, Any]) -> dict[str, np.ndarray]:
-    """Directions as given (so that task keys do not move by a rounding), angle tables turned into
-    vectors; every entry validated, naming the detector."""
-    resolved = detector_directions(detectors, model.get("laser", Model.laser))
-    return {k: resolved[str(k)] if isinstance(v, Mapping) else np.asarray(v, float)
-            for k, v in detectors.items()}
-
-
-def stack(
-    index: Mapping[tuple, Mapping[str, Any]],
-    results: Mapping[str, xr.Dataset],
-    labels: Sequence[str],
-    realizations: int,
-    observables: Sequence[str] = (),
-    grid: Sequence[tuple[str, Sequence]] = (),
-    last_time: bool = False,
-    grid_values: Sequence[Sequence] | None = None,
-) -> xr.Dataset:
-    """Per-task results into one Dataset with dimensions (grid..., level, realization, time?, detector).
-
-    ``last_time`` keeps only the last saved time of a dynamics run (its late-time value).
-    ``grid_values`` (per grid dimension, the values the study gave, where the coordinates are indices of
-    list values such as vectors) name the grid points in messages.
-
-    ``index`` maps (grid indices..., label, realization) to the task; per-emitter variables are reduced
-    to ``excited_mean`` (mean population) because N may differ across the grid. A failed task (its
-    level refused the model, or the solve failed) gives NaN and its message in ``failures``. The variable
-    ``warnings`` counts the warnings each task's level issued about its own run (NaN for a failed task),
-    and the attribute ``warnings`` lists them as "grid values, level, realization k (task KEY): message".
-    A level's own diagnostics that have the shape of the emission rate (per time, or scalars of a steady
-    state) are kept too, NaN for the other levels.
-    """
-    template = next((results[task_key(t)] for t in index.values()
-                     if results[task_key(t)].attrs.get("task_status", "done") == "done"
-                     and "emission_rate" in results[task_key(t)]), None)
-    if template is None:
-        msgs = {results[task_key(t)].attrs.get("error", "") for t in index.values()}
-        raise ValueError("every task failed: " + "; ".join(sorted(msgs)))
-    done = [results[task_key(t)] for t in index.values() if "emission_rate" in results[task_key(t)]]
-    if template.attrs.get("calculation") == "correlations":
-        # two-time curves (beyondmf.correlations); mean field has only its elastic part: NaN elsewhere
-        names = [n for n in CORRELATION_VARIABLES if any(n in ds for ds in done)]
-    else:
-        # the lens powers are kept whenever there are lenses
-        lens = ("lens_power", "lens_power_coherent", "lens_power_incoherent")
-        names = list(dict.fromkeys([*SCALAR_VARIABLES, *(o for o in (*observables, *lens) if o in template)]))
-    bases = {n: next(ds[n] for ds in done if n in ds) for n in names}  # shape, dtype and attributes
-    stochastic = any(f"{n}_stderr" in results[task_key(t)] for t in index.values() for n in names)
-    if stochastic:
-        names += [f"{n}_stderr" for n in names]
-    # a level's own diagnostics over time (twa's vacuum_excitation, qsd_product's exchange_leak, …): kept,
-    # NaN for the levels that do not report them
-    shape_of = template["emission_rate"].dims
-    diagnostics = sorted({n for t in index.values() for n, v in results[task_key(t)].data_vars.items()
-                          if n not in names and n != "warnings" and v.dims == shape_of
-                          and np.issubdtype(v.dtype, np.floating)})
-    outer = [len(v) for _, v in grid] + [len(labels), realizations]
-    arrays, failures, said = {}, [], []
-    means = (["excited_mean", *(["excited_mean_stderr"] if stochastic else [])] if "excited" in template
-             else [])
-    for name in names + diagnostics + means:
-        base = (template["emission_rate"] if name in diagnostics or name in means
-                else bases[name.removesuffix("_stderr")])
-        arrays[name] = (base.dims, np.full(outer + list(base.shape), np.nan, dtype=base.dtype))
-    counts = np.full(outer, np.nan)
-
-    given = grid_values or [values for _, values in grid]
-
-    def where(key_tuple: tuple) -> str:  # a task in words: grid values, level, realization
-        point = [f"{g}={format_value(values[i])}"
-                 for (g, _), values, i in zip(grid, given, key_tuple[:-2], strict=True)]
-        return ", ".join([*point, str(key_tuple[-2]), f"realization {key_tuple[-1]}"])
-
-    for key_tuple, task in index.items():
-        ds = results[task_key(task)]
-        if "emission_rate" not in ds:
-            failures.append(f"{where(key_tuple)} (task {task_key(task)}): {ds.attrs.get('error', 'failed')}"
-                            + _FAILURE_NOTE.get(failure_of(ds), ""))
-            continue
-        idx = tuple(key_tuple[:-2]) + (labels.index(key_tuple[-2]), key_tuple[-1])
-        for name in names + diagnostics:
-            if name in ds:
-                arrays[name][1][idx] = ds[name].values
-        if means:
-            arrays["excited_mean"][1][idx] = ds["excited"].mean("atom").values
-        if stochastic and "excited_stderr" in ds:
-            # the emitters' errors are correlated (the same samples): their mean bounds the error of the mean
-            arrays["excited_mean_stderr"][1][idx] = ds["excited_stderr"].mean("atom").values
-        messages = list(ds.attrs.get("warnings", []))
-        counts[idx] = len(messages)
-        said.extend(f"{where(key_tuple)} (task {task_key(task)}): {m}" for m in messages)
-    dims = [g for g, _ in grid] + ["level", "realization"]
-    coords = {g: np.asarray(v) for g, v in grid}
-    coords.update(level=list(labels), realization=np.arange(realizations))
-    for c in ("time", "delay", "frequency", "detector", "direction", "lens", "lens_axis", "lens_na",
-              "lens_half_angle"):
-        have = next((ds for ds in done if c in ds.coords), None)  # mean field has no delays
-        if have is not None:
-            coords[c] = have[c]
-    data = {n: (dims + list(d), a) for n, (d, a) in arrays.items()}
-    out = xr.Dataset(data, coords=coords)
-    for n in names:
-        base = dict(bases[n.removesuffix("_stderr")].attrs)
-        out[n].attrs = stderr_attrs(base) if n.endswith("_stderr") else base
-    for n in diagnostics:
-        first = next(results[task_key(t)][n] for t in index.values() if n in results[task_key(t)])
-        out[n].attrs = dict(first.attrs, role=DIAGNOSTIC)
-    if means:
-        out["excited_mean"].attrs.update(units="1", long_name="mean excited population over emitters")
-    if stochastic:
-        out["excited_mean_stderr"].attrs.update(
-            units="1",
-            long_name="mean of the emitters' standard errors: an upper bound of the standard error of "
-                      "excited_mean (the emitters' errors are correlated)")
-    out["warnings"] = xr.DataArray(counts, dims=dims, coords={d: coords[d] for d in dims}).assign_attrs(
-        units="1",
-        long_name="warnings the level issued about this run (its own diagnostics; NaN: the task failed)")
-    if "time" in out.dims and last_time:
-        out = out.isel(time=-1)
-    elif "time" in out.dims:
-        out = out.assign(_burst_observables(out))
-    out.attrs["failures"] = failures
-    out.attrs["warnings"] = said
-    if "calculation" in template.attrs and all(ds.attrs.get("calculation") == template.attrs["calculation"]
-                                               for ds in done):
-        out.attrs["calculation"] = template.attrs["calculation"]
-    out.attrs.update(shared_parameters(index, labels, results))
-    return out
-
-
-# What a failure message in ``failures`` adds about its cause (`beyondmf.tasks.failure_kind`).
-_FAILURE_NOTE = {
-    INPUT: " [caused by the input: kept, a rerun gives the same]",
-    MACHINE: " [caused by the machine's state: not kept, the next run computes it again]",
-}
-
-
-def shared_parameters(index: Mapping[tuple, Mapping[str, Any]], labels: Sequence[str],
-                      results: Mapping[str, xr.Dataset] | None = None) -> dict[str, Any]:
-    """What the tasks of a merged result have in common, for its attributes: the package versions, the
-    level and options behind each label (given, and ``as_run``: with the defaults and what "auto" chose, read
-    from a finished task of ``results``), every model argument that all tasks share (those a grid varies
-    are listed in ``model_varied``; their values are in the grid coordinates), and the run and detectors
-    where every task has the same (the study text, where there is one, has everything)."""
-    from .results import provenance
-    from .tasks import _plain, model_defaults
-
-    tasks = list(index.values())
-    out: dict[str, Any] = dict(provenance())
-    by_label: dict[str, list] = {}
-    for key_tuple, task in index.items():
-        by_label.setdefault(key_tuple[-2], []).append(task)
-    out["level_options"] = {}
-    for label in labels:
-        group = by_label.get(label, [])
-        if not group:
-            continue
-        options = [_plain(t["options"]) for t in group]
-        names = sorted({k for o in options for k in o})
-        same = {k: options[0][k] for k in names if all(k in o and o[k] == options[0][k] for o in options)}
-        entry = {"level": group[0]["level"], "options": same}
-        varied = [k for k in names if k not in same]
-        if varied:  # a grid over these options: their values are in the grid coordinates
-            entry["varied"] = varied
-        # every option as the level ran it (defaults included) and what "auto" chose, from a finished task
-        finished = (results[task_key(t)].attrs for t in group) if results is not None else ()
-        ran = next((a for a in finished if a.get("task_status", "done") == "done" and "options" in a), None)
-        if ran is not None:
-            entry["as_run"] = {k: v for k, v in _plain(ran["options"]).items() if k not in varied}
-            for chosen in ("solver", "dt", "chunk"):
-                if chosen in ran and chosen not in varied:
-                    entry["as_run"][f"{chosen}_chosen"] = _plain(ran[chosen])
-        out["level_options"][label] = entry
-    for part in ("run", "detectors"):
-        values = {repr(_plain(t.get(part))) for t in tasks}
-        if len(values) == 1 and tasks[0].get(part) is not None:
-            out[part] = _plain(tasks[0][part])
-    # every argument of Model, the defaults written out, except those the grid varies (in its coordinates)
-    models = [{**_plain(model_defaults()), **_plain(t.get("model") or {})} for t in tasks]
-    keys = sorted({k for m in models for k in m})
-    out["model"] = {k: _complex_back(models[0][k]) for k in keys
-                    if all(k in m and repr(m[k]) == repr(models[0][k]) for m in models)}
-    varied = [k for k in keys if k not in out["model"]]
-    if varied:
-        out["model_varied"] = varied
-    sizes = {len(t["positions"]) for t in tasks}
-    if len(sizes) == 1:
-        out["N"] = sizes.pop()
-    return out
-
-
-def _complex_back(value: Any) -> Any:
-    """A task's {"re": a, "im": b} (its canonical form of a complex number) as the complex a + bj, so that the
-    attribute can be passed back to `beyondmf.Model` as it is."""
-    if isinstance(value, dict) and set(value) == {"re", "im"}:
-        return complex(value["re"], value["im"])
-    if isinstance(value, list):
-        return [_complex_back(v) for v in value]
-    if isinstance(value, dict):
-        return {k: _complex_back(v) for k, v in value.items()}
-    return value
-
-
-def _burst_observables(ds: xr.Dataset) -> dict[str, xr.DataArray]:
-    """Scalars of a dynamics run: peak rate, its time, and photons emitted in the window.
-
-    emission_rate_peak = max_t P(t) (its error: the sampling error at the peak's time),
-    peak_time = argmax_t P(t) (on the saved time grid), emitted = ∫P dt (trapezoid rule; its error
-    ∫σ_P dt, an upper bound since errors at neighbouring times are correlated).
-    """
-    p = ds["emission_rate"]
-    valid = p.notnull().all("time")
-    at = p.fillna(-np.inf).argmax("time")
-    out = {
-        "emission_rate_peak": p.max("time").assign_attrs(units="photons per 1/Γ0",
-                                                         long_name="peak emission rate max_t P(t)"),
-        "peak_time": ds["time"][at].drop_vars("time").where(valid).assign_attrs(
-            units="1/Γ0", long_name="time of the peak emission rate"),
-        "emitted": p.integrate("time").assign_attrs(units="photons", long_name="photons emitted, ∫P dt"),
-    }
-    if "emission_rate_stderr" in ds:
-        se = ds["emission_rate_stderr"]
-        out["emission_rate_peak_stderr"] = se.isel(time=at).drop_vars("time")
-        out["emitted_stderr"] = se.integrate("time")
-    return out
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -497,7 +202,7 @@ class CompareSpec:
 
 
 def _parse_compare(value, where: str) -> CompareSpec:
-    from .compare import OBSERVABLES
+    from ..compare import OBSERVABLES
 
     if not isinstance(value, dict):
         raise _fail(where, "a table", value)
@@ -557,7 +262,7 @@ def _parse_convergence(value, where: str) -> ConvergenceSpec:
 
 def check_convergence(study: Study, ds: xr.Dataset) -> dict[str, xr.Dataset]:
     """The [convergence] tables of a finished sweep (`beyondmf.convergence.assess_sweep`)."""
-    from .convergence import assess_sweep
+    from ..convergence import assess_sweep
 
     spec: ConvergenceSpec = study.extra["convergence"]
     if spec.dim not in ds.dims:
@@ -611,7 +316,7 @@ def _planning_bar(items, total: int, what: str):
     takes minutes to check and build; a small one says nothing)."""
     from tqdm.auto import tqdm
 
-    from . import _config
+    from .. import _config
 
     return tqdm(items, total=total, desc=what, unit="point", delay=PLANNING_BAR_DELAY_S, leave=False,
                 disable=_config.QUIET)
@@ -631,7 +336,7 @@ def plan_estimate(study: Study) -> dict[str, float]:
     realizations), the largest ``n`` of emitters and ``points`` (report times) over the grid, and
     ``bytes``: the memory the run's results take while they are merged (every task's results, the
     stacked arrays and the per-emitter variables; roughly, and rather more than less)."""
-    from .study import emitter_count, results_bytes
+    from ..memory import results_bytes
 
     spec: SweepSpec | None = study.extra.get("sweep")
     if study.run.calculation == "correlations":  # curves over the delays and frequencies, per detector
@@ -663,7 +368,7 @@ def check_plan(study: Study, large: bool = False, enforce: bool = True) -> None:
     """Refuse a study too large to plan: beyond `MAX_TASKS` tasks without ``large`` (StudyError), or
     whose estimated results exceed this machine's free memory (MemoryError, with the estimate).
     ``enforce`` False (the full study of a --quick run, validated but not run) skips both."""
-    from .memory import require
+    from ..memory import require
 
     if not enforce:
         return
@@ -703,7 +408,7 @@ def _check_sections(study: Study, raw: Mapping[str, Any]) -> None:
         raise StudyError("sweep.keep: 'last_time' keeps the late-time value of a dynamics run, and a "
                          f"{study.run.calculation} study has no time axis; remove it")
     if spec is not None and study.run.calculation == "correlations":
-        from .correlations import REFUSED
+        from ..correlations import REFUSED
 
         for name in levels:  # refused before any task runs (each would be a failed task)
             if name in REFUSED:
@@ -778,7 +483,7 @@ _FINER_WHEN_SMALLER = ("dt", "rtol", "atol")
 
 
 def _check_refinement_order(dim: str, values: Sequence) -> None:
-    from .convergence import strictly_monotonic
+    from ..convergence import strictly_monotonic
 
     if not all(isinstance(v, int | float) and not isinstance(v, bool) for v in values):
         return  # e.g. dt = ["auto", 0.01]: no order to check; assess skips such a parameter too
@@ -958,6 +663,7 @@ def is_sweep(study: Study) -> bool:
     return "sweep" in study.extra or "compare" in study.extra
 
 
+
 # ---------------------------------------------------------------------------------------------------
 # From a study to tasks
 
@@ -1014,166 +720,3 @@ def cloud_scale(kind: str, n: int, density: float, size) -> float:
     shape = {"ellipsoid": 4 / 3 * np.pi, "box": 1.0, "gaussian": (2 * np.pi) ** 1.5}[kind]
     vol = float(np.prod(size)) * shape
     return float((n / (density * vol)) ** (1 / 3))
-
-
-def study_tasks(study: Study) -> tuple[dict[tuple, dict], list[str], int, list[tuple[str, list]], dict]:
-    """Every task of a sweep study: (index → task, level labels, K, grid dims, per-point parameters)."""
-    spec: SweepSpec = study.extra.get("sweep") or SweepSpec({}, 1, 0)
-    raw = study.extra.get("raw")
-    if raw is None:
-        raw = tomllib.loads(study.source)
-    dims = spec.dims()
-    own = _own_draws(study)
-    index, labels, params = {}, None, {}
-    for idx, point in _planning_bar(_grid_points(spec), spec.points(), "building tasks"):
-        st = _point_study(raw, point)
-        table = level_table(st.levels)
-        labels = labels or list(table)
-        model = {"dipole": list(st.emitters.dipole), "coupling": st.emitters.coupling, "rabi": st.drive.rabi,
-                 "detuning": st.drive.detuning, "laser": list(st.drive.laser)}
-        if st.drive.beam() is not None:
-            model["beam"] = st.drive.beam()
-        if st.drive.windows is not None:
-            model["envelope"] = [list(w) for w in st.drive.windows]
-        if st.run.calculation == "steady":
-            run = {"calculation": "steady"}
-        elif st.run.calculation == "correlations":
-            freqs = st.run.frequencies()
-            run = {"calculation": "correlations", "delays": st.run.delays(),
-                   **({} if freqs is None else {"frequencies": freqs})}
-        else:
-            run = {"calculation": "evolve", "times": st.run.times(), "initial": st.run.initial}
-        dets = st.detector_directions()
-        params[idx] = {"rabi": st.drive.rabi, "N": int(st.geometry.params.get("n", 0))}
-        for r in range(spec.realizations):
-            geo = st.geometry
-            if geo.kind in _RANDOM and not own:
-                geo = type(geo)(geo.kind, {**geo.params, "seed": realization_seeds(spec.seed, r)[0]})
-            try:
-                pos = geo.positions()
-            except ValueError as err:
-                raise StudyError(f"geometry: {err} (grid point {point})") from None
-            drawn = dict(model, detuning=st.drive.detunings(len(pos), geo.params.get("seed", 0) if own
-                                                             else realization_seeds(spec.seed, r)[0]))
-            for label, lv in table.items():
-                task = build_task(pos, drawn, run, dets, lv, spec.seed, r, st.lenses)
-                if own and "seed" in task and st.run.seed is not None:
-                    task["seed"] = st.run.seed
-                index[(*idx, label, r)] = task
-    return index, labels, spec.realizations, dims, params
-
-
-def _own_draws(study: Study) -> bool:
-    """A study without [sweep] and [compare] (a plain study run as tasks, e.g. with --workers) is one
-    realization of its own cloud and seed, as `run_study` would run it; a sweep draws realization k from
-    sweep.seed (`realization_seeds`) and refuses geometry.seed and run.seed."""
-    return "sweep" not in study.extra and "compare" not in study.extra
-
-
-def _realization_seeds(study: Study, index: Mapping[tuple, Mapping], k: int) -> dict[str, xr.DataArray]:
-    """The seeds each realization used, so that one run can be redone from results.nc alone: the seed of
-    its position draw (the ``seed`` argument of the `beyondmf.geometry` function) and the sampling seed of
-    its stochastic levels (``seed`` of `evolve`/`steady`); −1 where there is none."""
-    spec: SweepSpec = study.extra.get("sweep") or SweepSpec({}, 1, 0)
-    own = _own_draws(study)
-    random = study.geometry.kind in _RANDOM
-    position = [(int(study.geometry.params.get("seed", 0)) if own else realization_seeds(spec.seed, r)[0])
-                if random else -1 for r in range(k)]
-    sampling = [-1] * k
-    for key_tuple, task in index.items():
-        if "seed" in task:
-            sampling[key_tuple[-1]] = int(task["seed"])
-    fixed = "" if random else "; -1: none, the positions are a lattice or given points"
-    return {
-        "position_seed": xr.DataArray(np.array(position, dtype=np.int64), dims="realization", attrs={
-            "units": "1", "long_name": "seed of the realization's position draw (the seed argument of the "
-                                       "beyondmf.geometry function of the study's geometry.kind)" + fixed}),
-        "sampling_seed": xr.DataArray(np.array(sampling, dtype=np.int64), dims="realization", attrs={
-            "units": "1", "long_name": "sampling seed of the realization's stochastic levels (the seed "
-                                       "argument of evolve/steady); -1: no stochastic level"}),
-    }
-
-
-def run_sweep(
-    study: Study,
-    out: str | Path,
-    executor=None,
-    progress: bool = True,
-    on_done: Callable[[str, str], None] | None = None,
-    on_ready: Callable[[int], None] | None = None,
-    on_start: Callable[[int, int], None] | None = None,
-) -> xr.Dataset:
-    """Run (or resume) every task of ``study`` and write the merged DIR/results.nc.
-
-    ``on_ready(number of tasks)`` is called once every task is built and validated, before any runs;
-    ``on_start(to run, total)`` once the finished tasks in DIR/tasks are known.
-
-    DIR is locked meanwhile (a second run on it is refused, `beyondmf.outdir`), and a results.nc there
-    that beyondmf did not write is refused before anything is computed (`beyondmf.outdir.NotOurFiles`).
-    Without [compare] the result has dimensions (grid..., level, realization, ...); with it, the
-    `beyondmf.compare.summarize` reduction (level dimension, corrections, verdicts) plus the
-    per-realization values as ``X_realizations``.
-    """
-    from .outdir import claim, lock
-
-    out = Path(out)
-    check_plan(study, large=True)  # the memory of the results (the task count was checked when read)
-    with lock(out):
-        claim(out, ["results.nc"])
-        return _run_sweep_in(study, out, executor, progress, on_done, on_ready, on_start)
-
-
-def _run_sweep_in(study, out: Path, executor, progress, on_done, on_ready, on_start) -> xr.Dataset:
-    from .compare import OBSERVABLES, summarize
-    from .executors import execute
-    from .outdir import save_ours
-
-    index, labels, k, dims, params = study_tasks(study)
-    cmp: CompareSpec | None = study.extra.get("compare")
-    observables = cmp.observables if cmp else OBSERVABLES
-    if on_ready:
-        on_ready(len({task_key(t) for t in index.values()}))
-    results = execute(list(index.values()), out, executor, progress, on_done, on_start)
-    spec = study.extra.get("sweep")
-    last = bool(spec and spec.keep == "last_time")
-    per = stack(index, results, labels, k, observables, dims, last_time=last,
-                grid_values=list(spec.grid.values()) if spec else None)
-    for (name, _), path in zip(dims, spec.grid if spec else [], strict=True):
-        units, long_name, _label = grid_quantity(path)
-        per[name].attrs.update(parameter=path, long_name=long_name, **({"units": units} if units else {}))
-        if any(isinstance(v, list) for v in spec.grid[path]):  # index coordinates: the values they stand for
-            per[name].attrs["values"] = json.dumps(spec.grid[path])
-    if "N" in per.dims or any(p["N"] for p in params.values()):
-        ns = np.array([params[i]["N"] for i in itertools.product(*(range(len(v)) for _, v in dims))])
-        per["n_emitters"] = ([d for d, _ in dims], ns.reshape([len(v) for _, v in dims]),
-                             {"units": "1", "long_name": "number of emitters N"})
-    if cmp is not None:
-        if cmp.baseline not in labels:
-            raise StudyError(f"compare.baseline: {cmp.baseline!r} is not among the study's levels "
-                             f"({', '.join(labels)})")
-        ds = summarize(per, cmp.baseline, cmp.tolerance, cmp.confidence, observables)
-        for name in observables:
-            ds[f"{name}_realizations"] = per[name]
-        for name in ("excited_mean", "n_emitters"):
-            if name in per:
-                ds[name] = per[name].mean("realization") if "realization" in per[name].dims else per[name]
-        for name, var in per.data_vars.items():  # the levels' diagnostics, per realization
-            if var.attrs.get("role") == DIAGNOSTIC:
-                ds[name] = var
-    else:
-        ds = per
-    ds.update(_realization_seeds(study, index, k))
-    ds.attrs.update(
-        study=study.source,
-        title=study.title,
-        quick=int(bool(study.extra.get("quick"))),
-        tasks=len({task_key(t) for t in index.values()}),
-        tasks_failed=len({task_key(t) for t in index.values()
-                          if results[task_key(t)].attrs.get("task_status") == "failed"}),
-        levels_run=list(labels),
-        available_levels=list(available_levels()),
-        failures=per.attrs.get("failures", []),
-        warnings=per.attrs.get("warnings", []),
-    )
-    save_ours(ds, out / "results.nc")
-    return ds

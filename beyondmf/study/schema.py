@@ -1,9 +1,10 @@
-"""Study files: one model, its detectors, a calculation and the levels to run it at, in TOML.
+"""Study files: one model, its detectors, a calculation and the levels to run it at, in TOML: the schema
+of the sections every study has.
 
-The schema is ours and documented in docs/study-files.md. `read_study` parses and validates a file into a
-`Study`; any problem is a `StudyError` whose one-line message starts with the key at fault, e.g.
-``geometry.widths: expected 3 positive numbers, got [1, -2, 3]``. `run_study` runs the study at every
-level it lists and returns one Dataset with a ``level`` dimension.
+The schema is ours and documented in docs/study-files.md. `beyondmf.study.read_study` parses and validates
+a file into a `Study`; any problem is a `StudyError` whose one-line message starts with the key at fault, e.g.
+``geometry.widths: expected 3 positive numbers, got [1, -2, 3]``. `beyondmf.study.single.run_study` runs
+a study of one model at every level it lists and returns one Dataset with a ``level`` dimension.
 
 Each top-level table is parsed by one function registered with `section`; a new section (a parameter
 sweep, a comparison) is one more registered function, and its parsed value lands in ``Study.extra``.
@@ -14,7 +15,6 @@ is computed.
 
 from __future__ import annotations
 
-import time
 import tomllib
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -22,22 +22,19 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import xarray as xr
 
-from . import geometry as geo
-from .api import draw_seed, evolve, steady
-from .couplings import KINDS as COUPLING_KINDS
-from .integrate import SolveError
-from .levels.base import available_levels, detector_direction, get_level
-from .model import Model
+from .. import geometry as geo
+from ..couplings import KINDS as COUPLING_KINDS
+from ..levels.base import available_levels, detector_direction, get_level
+from ..model import Model
 
 __all__ = [
     "StudyError",
     "Study",
-    "read_study",
     "parse_study",
     "parse_table",
-    "run_study",
+    "emitter_count",
+    "study_text",
     "section",
     "study_check",
     "detector_direction",
@@ -311,7 +308,7 @@ def _parse_detectors(table: dict, where: str) -> dict[str, Detector]:
 def _parse_lenses(table: dict, where: str) -> dict[str, dict[str, Any]]:
     """[lenses.NAME] tables (`beyondmf.lens.lenses_of`), checked with the default laser here and with the
     study's own laser once the drive is known (`_lenses_fit`)."""
-    from .lens import lenses_of
+    from ..lens import lenses_of
 
     if not table:
         raise StudyError(f"{where}: expected at least one lens, e.g. [lenses.front] angle = 0, na = 0.5")
@@ -624,15 +621,6 @@ def parse_table(raw: dict[str, Any], text: str = "", path: Path | None = None) -
     return study
 
 
-def read_study(path: str | Path, quick: bool = False, large: bool = False) -> Study:
-    """Read and validate the study file at ``path``, every section of it ([sweep], [compare],
-    [convergence] and [quick] included); ``quick`` applies its [quick] overrides, ``large`` confirms a study
-    of more tasks than the planning limit. The one reader of study files, also ``beyondmf.read_study``."""
-    from . import sweep  # the task sections are defined there, on top of this module
-
-    return sweep.read_study(path, quick=quick, large=large)
-
-
 def study_text(p: Path) -> str:
     """The text of the study file ``p``, or a `StudyError` that says why it cannot be read."""
     if p.is_dir():
@@ -648,24 +636,6 @@ def study_text(p: Path) -> str:
         raise StudyError(f"{p}: cannot read the study file ({err.strerror or err})") from None
 
 
-def _fill_missing(datasets: list[xr.Dataset]) -> list[xr.Dataset]:
-    """Give every Dataset the variables of all of them (NaN where a level has none, e.g. stderr)."""
-    protos: dict[str, xr.DataArray] = {}
-    for ds in datasets:
-        for name, var in ds.data_vars.items():
-            protos.setdefault(name, var)
-    out = []
-    for ds in datasets:
-        missing = {}
-        for name, proto in protos.items():
-            if name not in ds:
-                dtype = np.result_type(proto.dtype, np.float64)
-                shape = tuple(ds.sizes.get(d, proto.sizes[d]) for d in proto.dims)
-                missing[name] = (proto.dims, np.full(shape, np.nan, dtype=dtype), proto.attrs)
-        out.append(ds.assign(missing) if missing else ds)
-    return out
-
-
 def emitter_count(geometry: Geometry) -> int:
     """The number of emitters of a geometry, without drawing it."""
     p = geometry.params
@@ -674,124 +644,3 @@ def emitter_count(geometry: Geometry) -> int:
     if "n" in p:
         return int(p["n"])
     return int(np.prod([p[k] for k in ("nx", "ny", "nz") if k in p], dtype=object))
-
-
-def results_bytes(n: int, points: int, detectors: int, levels: int, stochastic: bool, copies: int = 3) -> int:
-    """An estimate of the memory of the results of ``levels`` runs of ``n`` emitters at ``points`` report
-    times: per time, the per-emitter excited and coherence (3N numbers), about 12 numbers per detector and
-    16 more (rates, g2, diagnostics), twice as many with the standard errors of a sampled level; times
-    ``copies`` (a level's output, its Dataset, the merged one). An exact integer (no overflow)."""
-    per_time = 3 * n + 12 * detectors + 16
-    return copies * 8 * int(points) * per_time * (2 if stochastic else 1) * int(levels)
-
-
-def check_run_size(study: Study) -> None:
-    """Refuse (MemoryError, with the estimate) a study of one model whose results would not fit in this
-    machine's free memory, before any array of report times is made (``[run] points = 10⁹`` grew to
-    17 GB before it was killed)."""
-    from .memory import require
-
-    points = 1 if study.run.calculation == "steady" else study.run.points
-    n = emitter_count(study.geometry)
-    stochastic = any(get_level(name).stochastic for name in study.levels)
-    need = results_bytes(n, points, len(study.detectors or {"forward": None}), len(study.levels), stochastic)
-    what = f"the results of {len(study.levels)} level(s) for {n:,} emitters at {points:,} report times"
-    require(need, what, hint="use fewer report times ([run] points) or emitters, or a larger machine")
-
-
-# What a level's run may raise when it cannot do this model (refusal, failed solve, too big): with
-# ``keep_going`` these are recorded and the other levels still run; anything else is a bug and propagates.
-_LEVEL_FAILURES = (ValueError, SolveError, MemoryError)
-
-
-def run_study(
-    study: Study,
-    on_level: Callable[[str, str, float | None], None] | None = None,
-    keep_going: bool = False,
-) -> xr.Dataset:
-    """Run ``study`` at each of its levels; one Dataset with a ``level`` dimension.
-
-    ``on_level(name, "start" | "done" | "failed", seconds)`` is called around each level (for progress
-    lines). The top-level attributes are those every level has with the same value (the model parameters,
-    the calculation); all of each level's attributes (options, solver statistics, sample counts) are kept
-    per level in the attribute ``levels`` (level name → its attributes); the study file's text is in
-    ``study``. A study without ``run.seed`` draws one seed for all its sampled levels, recorded as
-    ``run_seed``; ``seed = run_seed`` in [run] reproduces the run.
-
-    A level that cannot do the model (it refuses it, its solve fails, it does not fit in memory) raises,
-    and nothing is returned. With ``keep_going`` the other levels still run instead: the result has the
-    levels that finished, in the study's order, and ``attrs["failures"]`` holds one line
-    ``"<level>: <message>"`` per level that did not; if no level finished, the first failure is raised.
-    """
-    check_run_size(study)
-    model = study.build_model()
-    detectors = study.detector_directions()
-    results, names, failures, first_error = [], [], [], None
-    seed = study.run.seed
-    if seed is None and any(get_level(name).stochastic for name in study.levels):
-        # one drawn seed for every sampled level, recorded as run_seed: [run] seed = run_seed reruns it
-        seed = draw_seed()
-    for name, options in study.levels.items():
-        if on_level:
-            on_level(name, "start", None)
-        t0 = time.perf_counter()
-        try:
-            if study.run.calculation == "correlations":
-                from .correlations import correlations
-
-                # meanfield has only the elastic line: it runs without delays and frequencies
-                elastic = name == "meanfield"
-                ds = correlations(model, name, None if elastic else study.run.delays(), detectors=detectors,
-                                  frequencies=None if elastic else study.run.frequencies(), **options)
-            elif study.run.calculation == "steady":
-                ds = steady(model, name, detectors=detectors, seed=seed, lenses=study.lenses, **options)
-            else:
-                ds = evolve(model, name, study.run.times(), initial=study.run.initial, detectors=detectors,
-                            seed=seed, lenses=study.lenses, **options)
-        except Exception as err:
-            from .memory import as_memory_error
-
-            oom = as_memory_error(err)  # an XLA allocation failure is a MemoryError like any other
-            if oom is None and not isinstance(err, _LEVEL_FAILURES):
-                raise
-            if oom is not None and oom is not err:
-                err = oom
-                if not keep_going:
-                    raise oom from None
-            if not keep_going:
-                raise
-            first_error = first_error or err
-            failures.append(f"{name}: {' '.join(str(err).split())}")
-            if on_level:
-                on_level(name, "failed", time.perf_counter() - t0)
-            continue
-        ds.attrs["wall_time_s"] = time.perf_counter() - t0
-        if on_level:
-            on_level(name, "done", ds.attrs["wall_time_s"])
-        results.append(ds)
-        names.append(name)
-    if not results:
-        raise first_error
-    per_level = {name: dict(ds.attrs) for name, ds in zip(names, results, strict=True)}
-    combined = xr.concat(
-        _fill_missing(results),
-        dim=xr.DataArray(names, dims="level", name="level"),
-        data_vars="all",
-        coords="minimal",
-        compat="override",
-        combine_attrs="drop_conflicts",
-    )
-    # drop_conflicts keeps an attribute that only some levels have (twa's samples, dt): it is not shared
-    combined.attrs = {k: v for k, v in combined.attrs.items()
-                      if k != "level" and all(k in ds.attrs for ds in results)}
-    combined.attrs.update(
-        levels=per_level,
-        study=study.source,
-        title=study.title,
-        geometry=study.geometry.kind,
-        geometry_parameters=study.geometry.params,
-        failures=failures,
-        run_seed=-1 if seed is None else seed,
-        quick=int(bool(study.extra.get("quick"))),  # 1: run with the study's [quick] overrides (--quick)
-    )
-    return combined
