@@ -290,8 +290,8 @@ def _cmd_run(args) -> int:
 
 def _run_one_model(study, out: Path, args, t0: float) -> int:
     """A study of one model, in this process: every level, then results.nc and the figures."""
+    from .figures import plot_all
     from .outdir import save_ours
-    from .plotting import plot_all
     from .study import run_study
 
     def on_level(name: str, stage: str, seconds: float | None) -> None:
@@ -377,7 +377,7 @@ def _run_tasks(study, out: Path, args, t0: float) -> int:
 
 def _report_tasks(study, ds, out: Path, args, t0: float) -> None:
     """After a task run: what was written, failures, warnings, figures, convergence, verdicts."""
-    from .correction_plots import plot_sweep
+    from .figures import plot_sweep
 
     _status(f"wrote {out / 'results.nc'} ({ds.attrs['tasks']} tasks)")
     _remove_earlier_outputs(out, convergence="convergence" in study.extra)

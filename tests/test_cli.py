@@ -499,7 +499,8 @@ def test_run_help_names_the_files_that_are_written(capsys):
     # and those are the names the plotting code uses
     import inspect
 
-    from beyondmf import correction_plots, plotting
+    from beyondmf.figures import runs as plotting
+    from beyondmf.figures import sweeps as correction_plots
 
     for module, names in ((plotting, FIGURES), (correction_plots, ("values.png", "corrections.png",
                                                                     "correction_map.png"))):

@@ -288,7 +288,7 @@ def test_correction_figure_fits_its_corrections_and_labels_the_grid(tmp_path, mo
     """The y-range follows the corrections drawn (it was a fixed ±1.5, on which a few % lay flat on
     zero), never narrower than the tolerance; a grid spanning a decade is logarithmic, and a density
     axis says n·λ0³."""
-    from beyondmf import correction_plots
+    from beyondmf.figures import sweeps as correction_plots
 
     density = np.array([0.1, 0.5, 2.0])
     rng = np.random.default_rng(0)
@@ -322,7 +322,7 @@ def test_correction_figure_fits_its_corrections_and_labels_the_grid(tmp_path, mo
 def test_a_log_grid_is_labelled_at_its_points_and_negative_g2_keeps_a_linear_axis(tmp_path, monkeypatch):
     """Minor tick labels of a log axis ran into each other ("3×10⁻¹4×10⁻¹…"); a g2 spanning a factor 100
     was put on a log axis even when some values were negative, which then vanished."""
-    from beyondmf import correction_plots
+    from beyondmf.figures import sweeps as correction_plots
 
     figures = {}
     monkeypatch.setattr(correction_plots, "_save", lambda fig, path: figures.setdefault(path.name, fig))
@@ -364,7 +364,7 @@ def test_figures_colour_curves_by_level_and_style_them_by_grid_point(tmp_path, m
     per grid point, with a grey legend of the styles, in values.png and corrections.png (which drew the
     grid's first point only before); the style legend and the level legend never cover each other, also
     when the time panel is the first one, which carries the level legend."""
-    from beyondmf import correction_plots
+    from beyondmf.figures import sweeps as correction_plots
 
     figures = {}
     monkeypatch.setattr(correction_plots, "_save", lambda fig, path: figures.setdefault(path.name, fig))

@@ -344,8 +344,8 @@ frequency_points = 9
 def test_study_file_calculation_and_figure(tmp_path):
     """calculation = 'correlations' in a study file: exact gives Kimble–Mandel's g2(τ) (as above),
     meanfield its elastic line (1/(1 + s) for one emitter, where mean field is exact); the figure."""
+    from beyondmf.figures import plot_correlations
     from beyondmf.study import parse_study, run_study
-    from beyondmf.twotime.plots import plot_correlations
 
     ds = run_study(parse_study(_STUDY), keep_going=True)
     assert ds.attrs["failures"] == []
@@ -408,7 +408,7 @@ def test_a_sweep_of_correlations_equals_the_calls_it_stands_for(tmp_path):
     """[sweep] with calculation = 'correlations': every grid point and level equals `correlations` called
     on that model (the data contract: one result whatever the route), a second run recomputes no task, and
     the figures are one panel per grid point."""
-    from beyondmf.correction_plots import plot_sweep
+    from beyondmf.figures import plot_sweep
     from beyondmf.sweep import read_study, run_sweep
 
     path = tmp_path / "s.toml"

@@ -1,4 +1,4 @@
-"""The figures of a single-model study (`beyondmf.plotting`): what they draw, checked on the figure objects.
+"""The figures of a single-model study (`beyondmf.figures.runs`): what they draw, checked on the figures.
 
 The datasets here are laid out like `beyondmf.study.run_study` results, with made-up numbers: these tests
 check the drawing, not physics.
@@ -13,7 +13,7 @@ import xarray as xr
 from matplotlib.collections import PolyCollection
 from matplotlib.container import BarContainer
 
-from beyondmf import plotting
+from beyondmf.figures import runs as plotting
 
 
 @pytest.fixture

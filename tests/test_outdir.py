@@ -159,7 +159,9 @@ def test_every_figure_the_command_draws_is_a_name_it_claims_and_removes():
     import inspect
     import re
 
-    from beyondmf import cli, correction_plots, plotting
+    from beyondmf import cli
+    from beyondmf.figures import runs as plotting
+    from beyondmf.figures import sweeps as correction_plots
 
     source = inspect.getsource(plotting) + inspect.getsource(correction_plots)
     drawn = set(re.findall(r'"([a-z0-9_]+\.png)"', source))

@@ -17,9 +17,9 @@ import numpy as np  # noqa: E402
 import xarray as xr  # noqa: E402
 from matplotlib.ticker import NullFormatter  # noqa: E402
 
-from .compare import summarize  # noqa: E402
-from .plotting import study_title  # noqa: E402
-from .study.sections import format_value, grid_quantity  # noqa: E402
+from ..compare import summarize  # noqa: E402
+from ..study.sections import format_value, grid_quantity  # noqa: E402
+from .runs import study_title  # noqa: E402
 
 __all__ = ["plot_sweep"]
 
@@ -319,7 +319,7 @@ def plot_sweep(ds: xr.Dataset, directory: str | Path) -> list[Path]:
     directory = Path(directory)
     directory.mkdir(parents=True, exist_ok=True)
     if ds.attrs.get("calculation") == "correlations":  # curves over delay and frequency, per grid point
-        from .twotime.plots import plot_correlation_sweep
+        from .correlations import plot_correlation_sweep
 
         return plot_correlation_sweep(ds, directory)
     s = _summary(ds)

@@ -285,7 +285,7 @@ def plot_all(ds: xr.Dataset, directory: str | Path) -> list[Path]:
     d = Path(directory)
     d.mkdir(parents=True, exist_ok=True)
     if ds.attrs.get("calculation") == "correlations":  # two-time statistics (beyondmf.correlations)
-        from .twotime.plots import plot_correlations
+        from .correlations import plot_correlations
 
         return [plot_correlations(ds, d / "correlations.png", study_title(ds)),
                 plot_geometry(ds, d / "geometry.png")]
