@@ -2,6 +2,9 @@
 
 One `Model`, two entry points (`evolve`, `steady`), levels chosen by name; every level returns the same
 `xarray.Dataset` (conventions.md, "the data contract").
+
+Importing beyondmf switches JAX to 64-bit precision (``jax_enable_x64``) for the whole process: a
+requirement of its solvers (see ``beyondmf._config``).
 """
 
 from . import (

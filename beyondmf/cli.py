@@ -2,7 +2,8 @@
 
     beyondmf run STUDY.toml --out DIR [--quick] [--large] [--workers N | --scheduler ADDRESS]
                                           results.nc and PNG figures in DIR (tasks/ for a sweep)
-    beyondmf levels                       the registered levels and their options
+    beyondmf run STUDY.toml --dry-run     its tasks, each level's memory and a time from a short probe
+    beyondmf levels                       the registered levels and their options, one line each
     beyondmf bench [--full] [--suite NAME ...] [--out FILE]
 
 Errors a user can fix (a bad study file, an unknown suite, a model a level refuses, too little memory)
@@ -95,9 +96,12 @@ def build_parser() -> argparse.ArgumentParser:
         "convergence_<observable>.png. Ctrl-C stops with exit status 130.",
     )
     r.add_argument("study", metavar="STUDY.toml", help="the study file")
-    r.add_argument("--out", required=True, metavar="DIR",
+    r.add_argument("--out", metavar="DIR",
                    help="directory for results.nc and the figures (a DIR holding files of those names that "
-                   "beyondmf did not write, or used by another run, is refused)")
+                   "beyondmf did not write, or used by another run, is refused); required unless --dry-run")
+    r.add_argument("--dry-run", action="store_true",
+                   help="list the tasks, the memory each level needs and a time estimated from a short probe "
+                   "of each level on this machine, then stop (nothing is written)")
     r.add_argument("--no-plots", action="store_true",
                    help="write no figures (only results.nc, and tasks/ and convergence.nc where they apply)")
     r.add_argument("--quick", action="store_true",
@@ -114,6 +118,7 @@ def build_parser() -> argparse.ArgumentParser:
     ex.add_argument("--scheduler", metavar="ADDRESS",
                     help="run the tasks on the dask scheduler at ADDRESS, e.g. tcp://10.0.0.5:8786")
 
+    p.run_parser = r  # for the one requirement argparse cannot state: --out unless --dry-run
     lv = sub.add_parser(
         "levels",
         help="list the registered levels and their options",
@@ -262,10 +267,13 @@ def _cmd_run(args) -> int:
 
     if args.workers is not None and args.workers < 1:
         raise _UsageError(f"--workers: expected a positive number of workers, got {args.workers}")
-    if not args.out.strip():  # Path("") is "."; an empty --out is a slip (an unset variable), not "here"
+    # Path("") is "."; an empty --out is a slip (an unset variable), not "here"
+    if args.out is not None and not args.out.strip():
         raise _UsageError("--out: give a directory for results.nc and the figures, e.g. --out out/study "
                           "(--out . writes into the current directory)")
     study = read_study(args.study, quick=args.quick, large=args.large)
+    if args.dry_run:
+        return _dry_run(study)
     out = Path(args.out)
     as_tasks = is_sweep(study) or args.workers is not None or args.scheduler is not None
     # memory of the results, before any directory is made (the task count was checked when read)
@@ -286,6 +294,33 @@ def _cmd_run(args) -> int:
         # leave no empty directory behind a run that wrote nothing (a scheduler that did not answer...)
         _remove_empty(created if tasks_existed else [*created, out / "tasks"])
         raise
+
+
+def _dry_run(study) -> int:
+    """``run --dry-run``: the plan of the study (`beyondmf.sweep.plan`), printed; nothing written."""
+    from .memory import size_text
+    from .sweep.plan import plan_study
+
+    _status("dry run: probing each level on its first task (nothing is written)")
+    count, plans = plan_study(study)
+    print(f"{study.title or 'study'}: {count} distinct task(s) of {study.run.calculation}")
+    rows = [("level", "tasks", "N", "memory", "probe (this machine)", "estimate")]
+    for p in plans:
+        mem = "not estimated" if p.memory is None else size_text(p.memory)
+        if p.probe_error:
+            probe, est = f"{p.probe}: failed ({p.probe_error})", "-"
+        elif p.warm is None:
+            probe, est = p.probe or "not probed", "-"
+        else:
+            probe = f"{p.probe}: {p.cold:.2g} s, again {p.warm:.2g} s"
+            est = f"~{p.per_task:.2g} s a task, ~{p.total:.2g} s in all (compile ~{p.compile:.2g} s)"
+        rows.append((p.label, str(p.tasks), str(p.emitters), mem, probe, est))
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    for r in rows:
+        print("  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip())
+    print("(estimates scale the probe by time span and samples; adaptive steps make them a guide to the "
+          "order of magnitude; each --workers process compiles once)")
+    return 0
 
 
 def _run_one_model(study, out: Path, args, t0: float) -> int:
@@ -436,17 +471,21 @@ def _report_convergence(study, ds, out: Path, plots: bool) -> None:
 
 
 def _cmd_levels(args) -> int:
-    from . import available_levels, level_options
+    from . import available_levels, get_level, level_options
+    from .levels.base import option_help
 
-    levels = {name: {"summary": summary, "options": level_options(name)}
+    levels = {name: {"summary": summary, "options": level_options(name),
+                     "help": {opt: option_help(get_level(name), opt) for opt in level_options(name)}}
               for name, summary in available_levels().items()}
     if args.json:
         print(json.dumps(levels, indent=2, default=str))
         return 0
     for name, info in levels.items():
         print(f"{name}: {info['summary']}")
+        width = max((len(f"{o} = {d!r}") for o, d in info["options"].items()), default=0)
         for opt, default in info["options"].items():
-            print(f"    {opt} = {default!r}")
+            text = info["help"][opt]
+            print(f"    {f'{opt} = {default!r}':<{width}}  {text}".rstrip())
     return 0
 
 
@@ -551,7 +590,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     Ctrl-C ends the process at once with status 130 (`_hard_exit`); with ``argv`` given (a caller in
     Python, the tests) it returns 130 instead.
     """
-    args = build_parser().parse_args(argv)
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command == "run" and args.out is None and not args.dry_run:
+        parser.run_parser.error("the following arguments are required: --out (or give --dry-run)")
     from . import _config
 
     quiet_before, _config.QUIET = _config.QUIET, bool(getattr(args, "quiet", False)) or _config.QUIET

@@ -33,13 +33,13 @@ ODE_OPTIONS: dict[str, Any] = {
     "progress": "auto",
 }
 SOLVERS = {
-    "tsit5": diffrax.Tsit5,
-    "dopri5": diffrax.Dopri5,
-    "dopri8": diffrax.Dopri8,
-    "kvaerno3": diffrax.Kvaerno3,
-    "kvaerno5": diffrax.Kvaerno5,
+    "Tsit5": diffrax.Tsit5,
+    "Dopri5": diffrax.Dopri5,
+    "Dopri8": diffrax.Dopri8,
+    "Kvaerno3": diffrax.Kvaerno3,
+    "Kvaerno5": diffrax.Kvaerno5,
 }
-IMPLICIT = ("kvaerno3", "kvaerno5")
+IMPLICIT = ("Kvaerno3", "Kvaerno5")
 # Above this many real unknowns a dense Jacobian (what the implicit solvers factorise) costs more than
 # the explicit steps it saves.
 IMPLICIT_MAX_SIZE = 3000
@@ -68,9 +68,9 @@ class SolveError(RuntimeError):
 _RESULT_NAMES = list(diffrax.RESULTS._name_to_item)
 _ADVICE = {
     "max_steps_reached": "raise max_steps, or relax rtol/atol; if the cloud is dense, enforce a larger "
-    "min_distance or use solver='kvaerno5' (small N)",
+    "min_distance or use solver='Kvaerno5' (small N)",
     "dt_min_reached": "the step size collapsed below dtmin: the equations are stiff or the state diverges; "
-    "try solver='kvaerno5' (small N), a larger min_distance, or a looser rtol (e.g. 1e-5)",
+    "try solver='Kvaerno5' (small N), a larger min_distance, or a looser rtol (e.g. 1e-5)",
     "nonfinite": "the state became NaN or infinite: the level's equations diverged here; check the model "
     "(very close emitters, huge Rabi frequency) or use a lower rtol",
 }
@@ -96,7 +96,12 @@ def check_ode_options(options: dict[str, Any], defaults: dict[str, Any]) -> None
         raise OptionError("progress", f"must be 'auto', true or false, got {options.get('progress')!r}")
     if "solver" in defaults and options.get("solver") != "auto" and options.get("solver") not in SOLVERS:
         known = ", ".join(SOLVERS)
-        raise OptionError("solver", f"must be 'auto' or one of {known}, got {options.get('solver')!r}")
+        got = options.get("solver")
+        spelled = {k.lower(): k for k in SOLVERS}.get(got.lower()) if isinstance(got, str) else None
+        if spelled:  # the integrator library's class names, spelled as there (docs/study-files.md)
+            raise OptionError("solver", f"{got!r} is spelled {spelled!r} (the class name in diffrax)")
+        raise OptionError("solver", f"must be 'auto' or one of {known} (diffrax's integrators, "
+                          f"spelled as there), got {got!r}")
 
 
 def pick_solver(name: str, size: int, stiffness: float, implicit_ok: bool = True) -> str:
@@ -108,12 +113,12 @@ def pick_solver(name: str, size: int, stiffness: float, implicit_ok: bool = True
     """
     if name == "auto":
         stiff = stiffness > STIFF_RATIO and size <= IMPLICIT_MAX_SIZE and implicit_ok
-        name = "kvaerno5" if stiff else "tsit5"
+        name = "Kvaerno5" if stiff else "Tsit5"
     if name not in SOLVERS:
         check_ode_options({"solver": name}, {"solver": "auto"})  # raises, naming the known solvers
     if name not in IMPLICIT and stiffness > STIFF_RATIO:
         advice = "draw the cloud with a larger min_distance" + (
-            ", or use solver='kvaerno5' for small N" if implicit_ok else "")
+            ", or use solver='Kvaerno5' for small N" if implicit_ok else "")
         _note(
             f"stiff equations: coupling rates up to {stiffness:.3g} Γ0 (close emitters) force explicit "
             f"steps of ~{1 / stiffness:.2g}/Γ0 with solver {name!r}; {advice}"

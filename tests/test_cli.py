@@ -6,7 +6,9 @@ as a user would, to check the module entry point and the exit status seen by a s
 
 from __future__ import annotations
 
+import json
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -54,18 +56,21 @@ def _replace(text: str, old: str, new: str) -> str:
 
 
 def test_quickstart_study_runs_and_writes_results_and_figures(tmp_path, capsys):
+    """The first command a newcomer runs answers the package's question: mean field against cumulant2 on
+    the same three draws of one cloud, with a verdict per observable (issue: quickstart with a verdict)."""
     code, err = _run(["run", QUICKSTART, "--out", tmp_path], capsys)
     assert code == 0, err
-    assert "level meanfield: started" in err and "level meanfield: finished in" in err
+    assert "verdicts against cumulant2 (tolerance 0.1" in err
+    verdict_line = next(line for line in err.splitlines() if line.strip().startswith("meanfield:"))
+    assert all(f"{obs} " in verdict_line for obs in ("emission_rate", "intensity", "g2", "g2_total"))
     ds = beyondmf.load(tmp_path / "results.nc")
-    assert list(ds["level"].values) == ["meanfield"]
-    assert ds.sizes["emitter"] == 200 and ds.sizes["time"] == 201
+    assert list(ds["level"].values) == ["cumulant2", "meanfield"]
+    assert ds.sizes["realization"] == 3 and ds.sizes["time"] == 201
     assert list(ds["detector"].values) == ["forward", "sixty"]
     assert ds["time"].values[-1] == pytest.approx(20.0)
-    assert np.all(np.isfinite(ds["emission_rate"].values[:, 1:]))
-    assert "levels" in ds.attrs and "meanfield" in ds.attrs["levels"]
-    assert ds.attrs["study"] == QUICKSTART.read_text()
-    for name in FIGURES:
+    assert np.all(np.isfinite(ds["emission_rate"].values[..., 1:]))
+    assert ds.attrs["baseline"] == "cumulant2"
+    for name in ("values.png", "corrections.png"):
         png = tmp_path / name
         assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n", name
 
@@ -205,7 +210,7 @@ def test_levels_may_be_a_list_of_names():
 def test_quickstart_file_parses():
     study = read_study(QUICKSTART)
     assert study.geometry.kind == "gaussian" and study.geometry.params["n"] == 200
-    assert study.run.t_end == 20.0 and list(study.levels) == ["meanfield"]
+    assert study.run.t_end == 20.0 and list(study.levels) == ["cumulant2", "meanfield"]
 
 
 @pytest.mark.parametrize("command", [[], ["run"], ["levels"], ["bench"]])
@@ -223,6 +228,39 @@ def test_levels_command_lists_registered_levels_and_options(capsys):
     for name in beyondmf.available_levels():
         assert out.count(f"{name}: ") == 1
     assert "rtol = 1e-06" in out
+
+
+def test_levels_command_describes_every_option_in_a_line(capsys):
+    """`beyondmf levels` gives each option of each level a one-line description (issue: the command line
+    describes every option); the JSON form carries the same text."""
+    assert cli.main(["levels", "--json"]) == 0
+    levels = json.loads(capsys.readouterr().out)
+    for name, info in levels.items():
+        assert set(info["help"]) == set(info["options"]), name
+        for opt, text in info["help"].items():
+            assert text and "\n" not in text, (name, opt)
+
+
+def test_dry_run_lists_tasks_memory_and_a_probed_time_and_writes_nothing(tmp_path, capsys):
+    study = tmp_path / "small.toml"
+    study.write_text(SMALL + "[levels.cumulant2]\n")
+    before = sorted(tmp_path.iterdir())
+    code = cli.main(["run", str(study), "--dry-run"])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert sorted(tmp_path.iterdir()) == before  # nothing written, no --out needed
+    assert "2 distinct task(s) of evolve" in out
+    rows = {line.split()[0]: line for line in out.splitlines()[2:4]}
+    assert set(rows) == {"meanfield", "cumulant2"}
+    for line in rows.values():
+        assert re.search(r"\d+(\.\d+)? (KiB|MiB|bytes)", line) and "s a task" in line and "in all" in line
+
+
+def test_run_without_out_or_dry_run_is_a_usage_error(capsys):
+    with pytest.raises(SystemExit) as info:
+        cli.main(["run", str(QUICKSTART)])
+    assert info.value.code == cli.EXIT_USAGE
+    assert "--out (or give --dry-run)" in capsys.readouterr().err
 
 
 def test_bench_refuses_an_unknown_suite_before_measuring(capsys):
@@ -305,7 +343,11 @@ def test_ctrl_c_ends_a_single_model_run_with_status_130_and_says_what_was_kept(t
     import time
 
     out = tmp_path / "new" / "out"
-    proc = _started_python_m(["run", QUICKSTART, "--out", out], stderr=subprocess.PIPE)
+    study_file = tmp_path / "disc.toml"  # one model, one level: a run of several seconds, not as tasks
+    study_file.write_text(_replace(_replace(_replace(SMALL, "n = 12", "n = 200"), "widths = [1.0, 1.0, 0.2]",
+                                            "widths = [2.0, 2.0, 0.3]"), "t_end = 4.0\npoints = 21",
+                                   "t_end = 20.0\npoints = 201"))
+    proc = _started_python_m(["run", study_file, "--out", out], stderr=subprocess.PIPE)
     try:
         lines = []
         for line in proc.stderr:
@@ -555,7 +597,7 @@ def test_warnings_are_printed_as_one_line_for_the_user(tmp_path, capsys):
     path = tmp_path / "s.toml"
     path.write_text('title = "two very close emitters"\n[geometry]\nkind = "line"\nn = 2\nspacing = 0.02\n'
                     '[drive]\nrabi = 1.0\n[run]\nt_end = 1.0\npoints = 3\n[levels.meanfield]\n'
-                    'solver = "tsit5"\n')
+                    'solver = "Tsit5"\n')
     assert cli.main(["run", str(path), "--out", str(tmp_path / "o"), "--no-plots"]) == 0
     err = capsys.readouterr().err
     assert "beyondmf run: warning: stiff equations: coupling rates up to" in err
@@ -661,6 +703,7 @@ def test_quiet_run_prints_no_status_lines_and_version_names_the_package(tmp_path
     code, err = _run(["run", QUICKSTART, "--out", tmp_path, "--quiet", "--no-plots"], capsys)
     assert code == 0, err
     assert "started" not in err and "finished" not in err and "wrote" not in err, err
+    assert "verdicts against cumulant2" in err and "running" not in err, err
     assert (tmp_path / "results.nc").is_file()
     with pytest.raises(SystemExit) as stop:
         cli.main(["--version"])

@@ -78,7 +78,7 @@ def test_windowed_envelope_switches_the_drive_off():
 def test_explicit_solver_warns_on_stiff_cloud():
     pos = [[0, 0, 0], [0, 0, 0.01], [1, 0, 0]]
     with pytest.warns(UserWarning, match="stiff"):
-        bm.evolve(bm.Model(pos, rabi=0.5), "meanfield", [0, 0.1], solver="tsit5")
+        bm.evolve(bm.Model(pos, rabi=0.5), "meanfield", [0, 0.1], solver="Tsit5")
 
 
 def test_failed_solve_says_what_to_try():
@@ -132,7 +132,7 @@ def test_stiff_pair_auto_is_explicit_and_agrees_with_scipy():
     ref = _scipy_meanfield(m, times)
     with pytest.warns(UserWarning, match="stiff.*min_distance$"):
         ds = bm.evolve(m, "meanfield", times)
-    assert ds.attrs["solver"] == "tsit5" and ds.attrs["bound_excess"] < 1e-6
+    assert ds.attrs["solver"] == "Tsit5" and ds.attrs["bound_excess"] < 1e-6
     np.testing.assert_allclose(ds.emission_rate.values, ref, rtol=2e-6, atol=1e-9)
 
 
@@ -153,4 +153,4 @@ def test_steady_state_never_runs_unannounced():
     """A step budget: max_steps bounds the whole search, with an error that names it."""
     m = bm.Model(bm.geometry.gaussian_cloud(8, 0.3, seed=2, min_distance=0.1), rabi=1.0)
     with pytest.raises(SolveError, match="max_steps"):
-        bm.steady(m, "meanfield", max_steps=5, solver="tsit5")
+        bm.steady(m, "meanfield", max_steps=5, solver="Tsit5")

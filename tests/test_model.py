@@ -128,7 +128,10 @@ def test_memory_need_is_refused_before_allocating(monkeypatch):
         ("meanfield", {"rtol": -1}, "rtol must be a positive number"),
         ("meanfield", {"max_steps": -1}, "max_steps must be a positive integer"),
         ("exact", {"atol": "tiny"}, "atol must be a positive number"),
-        ("cumulant2", {"solver": "rk4"}, "solver must be 'auto' or one of tsit5.*got 'rk4'"),
+        ("cumulant2", {"solver": "rk4"}, "solver must be 'auto' or one of Tsit5.*got 'rk4'"),
+        # the integrators are diffrax's, spelled as its classes are (common practice: one name per thing)
+        ("meanfield", {"solver": "tsit5"},
+         "solver 'tsit5' is spelled 'Tsit5' \\(the class name in diffrax\\)"),
         ("twa", {"samples": -10}, "samples must be an integer ≥ 2"),
         ("twa", {"max_failed": "0.1"}, r"max_failed must be a fraction in \[0, 1\)"),
         ("twa", {"window": 0}, "window must be a positive time"),

@@ -31,7 +31,7 @@ def _caught(fn):
 
 def test_a_warning_from_evolve_points_at_the_callers_line_and_is_recorded():
     model = bm.Model(CLOSE_PAIR, rabi=0.1)
-    ds, got = _caught(lambda: bm.evolve(model, "meanfield", np.linspace(0, 0.01, 3), solver="tsit5"))
+    ds, got = _caught(lambda: bm.evolve(model, "meanfield", np.linspace(0, 0.01, 3), solver="Tsit5"))
     assert got, "the explicit solver on a stiff pair should warn"
     assert {w.filename for w in got} == {__file__}
     assert any(STIFF in text for text in ds.attrs["warnings"])
@@ -39,7 +39,7 @@ def test_a_warning_from_evolve_points_at_the_callers_line_and_is_recorded():
 
 def test_a_warning_under_compare_levels_points_at_the_callers_line():
     def run():
-        return compare_levels(CLOSE_PAIR, {"mf": {"level": "meanfield", "solver": "tsit5"}}, baseline="mf",
+        return compare_levels(CLOSE_PAIR, {"mf": {"level": "meanfield", "solver": "Tsit5"}}, baseline="mf",
                               model={"rabi": 0.1}, times=np.linspace(0, 0.01, 3))
 
     _, got = _caught(run)
@@ -53,7 +53,7 @@ def test_warnings_print_above_the_progress_bar_not_inside_its_line():
         "import numpy as np\n"
         "from beyondmf.sweep import compare_levels\n"
         f"compare_levels(np.array({CLOSE_PAIR.tolist()}),\n"
-        "               {'mf': {'level': 'meanfield', 'solver': 'tsit5'}}, baseline='mf',\n"
+        "               {'mf': {'level': 'meanfield', 'solver': 'Tsit5'}}, baseline='mf',\n"
         "               model={'rabi': 0.1}, times=np.linspace(0, 0.01, 3), progress=True)\n"
     )
     err = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True,
@@ -96,11 +96,11 @@ def test_on_a_dask_worker_the_warnings_are_recorded_in_the_result_but_not_printe
 
     model = bm.Model(CLOSE_PAIR, rabi=0.1)
     times = np.linspace(0, 0.01, 3)
-    explicit = functools.partial(bm.evolve, solver="tsit5")
+    explicit = functools.partial(bm.evolve, solver="Tsit5")
     ds, printed = _caught(lambda: _on_worker(explicit, model, "meanfield", times))
     assert not printed
     assert any(STIFF in said for said in ds.attrs["warnings"])
-    ds, printed = _caught(lambda: bm.evolve(model, "meanfield", times, solver="tsit5"))  # elsewhere: printed
+    ds, printed = _caught(lambda: bm.evolve(model, "meanfield", times, solver="Tsit5"))  # elsewhere: printed
     assert printed and any(STIFF in said for said in ds.attrs["warnings"])
 
 

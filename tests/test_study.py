@@ -188,7 +188,7 @@ BAD_OPTIONS = [
     ("cumulant2", "atol = -0.001", "a positive number"),
     ("exact", "max_steps = 0", "a positive integer"),
     ("dicke", "dtmin = -1", "a positive number"),
-    ("meanfield", 'solver = "rk4"', "'auto' or one of tsit5"),
+    ("meanfield", 'solver = "rk4"', "'auto' or one of Tsit5"),
     ("meanfield", 'progress = "yes"', "'auto', true or false"),
 ]
 

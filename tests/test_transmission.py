@@ -370,7 +370,7 @@ def test_a_scan_whose_steady_state_search_fails_names_the_drive():
 
     m = bm.Model(bm.geometry.gaussian_cloud(8, 0.3, seed=2, min_distance=0.1), rabi=1.0)
     with pytest.raises(SolveError, match=r"at the drive Ω = 1\+0j, Δ = -1.*max_steps"):
-        _quiet(bm.drive_scan, m, "meanfield", detuning=[-1.0, 1.0], max_steps=5, solver="tsit5")
+        _quiet(bm.drive_scan, m, "meanfield", detuning=[-1.0, 1.0], max_steps=5, solver="Tsit5")
 
 
 @pytest.mark.parametrize("level", ["jumps", "qsd_product"])

@@ -66,7 +66,7 @@ def bench_cumulant2(full: bool, machine: Machine) -> list[Row]:
     case = f"cloud N={n_cloud}, t=0..10"
     rows += [
         Row("cumulant2", case, "evolve wall time", wall, "s",
-            f"Gaussian cloud, peak density ≈ 1/λ0³, s = 2, tsit5, includes compile; "
+            f"Gaussian cloud, peak density ≈ 1/λ0³, s = 2, Tsit5, includes compile; "
             f"{ds.attrs['accepted_steps']} steps; target < 900 s at N = 1000"),
         Row("cumulant2", case, "peak resident memory", _peak_rss_gib(), "GiB",
             "getrusage maxrss of the whole benchmark process"),
@@ -193,7 +193,7 @@ def radius_large(n: int = 10_000, radius: float = 1.5, t_end: float = 10.0) -> l
     args = near.near_args(model, radius, "first_order")
     nbr, mask = np.asarray(args["nbr"]), np.asarray(args["mask"])
     y0 = near.near_product_state(np.tile([0.0, 0.0, -1.0], (n, 1)), nbr, mask)
-    solver = pick_solver("tsit5", y0.size, model.stiffness())
+    solver = pick_solver("Tsit5", y0.size, model.stiffness())
     opts = {"rtol": 1e-6, "atol": 1e-8, "max_steps": 200_000, "dtmin": 1e-9, "progress": False}
     times = np.linspace(0, t_end, 3)
     rhs = near.NEAR_RHS["first_order"](model.envelope)

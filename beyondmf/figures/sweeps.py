@@ -24,13 +24,15 @@ from .runs import study_title  # noqa: E402
 __all__ = ["plot_sweep"]
 
 _MARK = {"holds": "✓", "fails": "✗", "undecided": "?", "undefined": "–", "baseline": ""}
-_LABEL = {"emission_rate": "emission rate P (Γ0)", "g2_total": "g2 of all light", "g2": "g2",
-          "intensity": "intensity (Γ0/sr)", "emission_rate_peak": "peak rate (Γ0)",
-          "peak_time": "time of the peak (1/Γ0)", "emitted": "photons emitted",
-          "optical_depth": "optical depth −ln|t|²", "transmission_power": "transmission |t|²",
-          "lens_power": "power into the lens (Γ0)",
-          "lens_power_coherent": "coherent power into the lens (Γ0)",
-          "lens_power_incoherent": "incoherent power into the lens (Γ0)"}
+# observable → (quantity, unit): the unit goes on the value panels only, never on a relative correction
+_QUANTITY = {"emission_rate": ("emission rate P", "Γ0"), "g2_total": ("g2 of all light", ""),
+             "g2": ("g2", ""),
+             "intensity": ("intensity", "Γ0/sr"), "emission_rate_peak": ("peak rate", "Γ0"),
+             "peak_time": ("time of the peak", "1/Γ0"), "emitted": ("photons emitted", ""),
+             "optical_depth": ("optical depth −ln|t|²", ""), "transmission_power": ("transmission |t|²", ""),
+             "lens_power": ("power into the lens", "Γ0"),
+             "lens_power_coherent": ("coherent power into the lens", "Γ0"),
+             "lens_power_incoherent": ("incoherent power into the lens", "Γ0")}
 _CLIP = 1.5  # relative corrections are drawn within ±150 %: beyond that the baseline has plainly failed
 _COLUMNS = 3  # panels per row
 
@@ -118,8 +120,11 @@ def _pick(s: xr.Dataset, name: str, det: tuple[str, str] | None, level) -> tuple
     return v, u
 
 
-def _title(name: str, det: tuple[str, str] | None) -> str:
-    return _LABEL.get(name, name) + (f" ({det[1]})" if det else "")
+def _title(name: str, det: tuple[str, str] | None, unit: bool = True) -> str:
+    """A panel's title: the quantity, its unit unless ``unit`` is False (a relative correction has none),
+    and the detector or lens."""
+    quantity, u = _QUANTITY.get(name, (name, ""))
+    return quantity + (f" ({u})" if u and unit else "") + (f", {det[1]}" if det else "")
 
 
 def _save(fig, path: Path) -> Path:
@@ -196,6 +201,7 @@ def _values_figure(s: xr.Dataset, path: Path) -> Path:
                 ax.bar(k, float(v), yerr=float(u), capsize=4, label=_name(s, lv), color=_color(s, lv))
                 ax.set_xticks([])
         ax.set_title(_title(name, det), fontsize=9)
+        ax.set_ylabel(_title(name, None), fontsize=8)
         # g2 spanning orders of magnitude on a log axis, but only if every value is positive: a sampled
         # g2 can be negative (noise, or a level's failure), and a log axis would silently drop it
         vals = s[name].values[np.isfinite(s[name].values)]
@@ -265,7 +271,8 @@ def _correction_lines(s: xr.Dataset, path: Path) -> Path:
         ax.axhline(0, color="k", lw=0.5)
         lim = min(top, _CLIP) * 1.1
         ax.set_ylim(-lim, lim)
-        ax.set_title(f"correction of {_title(name, det)}", fontsize=9)
+        ax.set_title(f"correction of {_title(name, det, unit=False)}", fontsize=9)
+        ax.set_ylabel("relative correction", fontsize=8)
     if others:
         _legends(axes, time_panels, tags, {"fontsize": 8, "title": f"vs {base}", "title_fontsize": 8})
     fig.suptitle(f"relative corrections (X − X_{base})/X_{base}, {s.attrs['confidence']:.0%} intervals, "
@@ -304,7 +311,7 @@ def _correction_maps(s: xr.Dataset, path: Path) -> Path:
             ax.set_xlabel(_axis_label(s, gx))
             ax.set_ylabel(_axis_label(s, gy))
             at = " at the last time" if "time" in rest else ""
-            ax.set_title(f"{_name(s, lv)}: correction of {_title(name, det)}{at}", fontsize=8)
+            ax.set_title(f"{_name(s, lv)}: correction of {_title(name, det, unit=False)}{at}", fontsize=8)
             fig.colorbar(im, ax=ax, shrink=0.8)
     flag = (", ! runs warned" if "warned_realizations" in s
             and int(s["warned_realizations"].sum()) else "")

@@ -373,6 +373,8 @@ class SpinSampling(Level):
     title: ClassVar[str]
     calculus: ClassVar[str]
     equations: ClassVar[SpinEquations]
+    #: N × N real matrices a level keeps beyond the shared couplings (qsd_product: its squared couplings)
+    extra_matrices: ClassVar[int] = 0
     options: ClassVar[dict[str, Any]] = {
         "samples": 1000,
         "dt": "auto",
@@ -422,6 +424,16 @@ class SpinSampling(Level):
     def level_args(self, model: Model, args: dict[str, Any]) -> dict[str, Any]:
         """The arrays the equations read, from `spin_args`; a level may add its own."""
         return args
+
+    def memory_bytes(self, model: Model, options: dict[str, Any]) -> int:
+        """The coupling matrices (and a level's own, `extra_matrices` of N × N) plus one chunk of samples
+        (two detectors counted); a chunk "auto" fills the budget `CHUNK_BYTES` at most."""
+        n = model.n
+        per_sample = 8 * (14 * 3 * n + 6 * n + 8 * 2 * n)
+        chunk = options.get("chunk", "auto")
+        if chunk == "auto":
+            chunk = int(max(1, min(int(options.get("samples", 1000)), CHUNK_BYTES // per_sample)))
+        return 8 * n * n * (6 + self.extra_matrices) + int(chunk) * per_sample
 
     def _setup(self, model: Model, probes: Probes, options: dict[str, Any]):
         samples, frac = options["samples"], float(options["max_failed"])

@@ -196,6 +196,37 @@ class SampleProgress:
             self._bar.close()
 
 
+# One line per option, shown by `beyondmf levels`; a level's own ``option_help`` takes precedence.
+OPTION_HELP: dict[str, str] = {
+    "solver": "ODE integrator: 'auto' (chosen from the stiffness) or a diffrax class name (Tsit5, Dopri5, "
+              "Dopri8, Kvaerno3, Kvaerno5)",
+    "rtol": "relative tolerance of the adaptive step control",
+    "atol": "absolute tolerance of the adaptive step control",
+    "max_steps": "most steps a solve may take before it fails with SolveError",
+    "dtmin": "smallest step (1/Γ0); a step-size collapse below it fails the solve",
+    "progress": "progress bar: 'auto' (only on a terminal), true or false; never changes a result",
+    "samples": "number of samples (trajectories) averaged; errors fall as 1/sqrt(samples)",
+    "dt": "largest fixed time step (1/Γ0), or 'auto' from the fastest rates of the model",
+    "chunk": "samples integrated at once, or 'auto' from a 1 GiB memory budget; changes only rounding",
+    "settle_time": "steady: time (1/Γ0) integrated from the ground state before the state is read",
+    "max_failed": "fraction of samples allowed to diverge before the run fails",
+    "window": "steady: averaging window (1/Γ0) after settle_time",
+    "window_points": "steady: times averaged in the window, per sample",
+    "vacuum_check": "control samples of the undriven ground state that measure the method's drift: 'auto' "
+                    "(as many as the run, at least 64), 0 (off) or an integer ≥ 2",
+    "pair_radius": "λ0: pairs closer than it keep full pair equations, farther ones follow far_pairs; "
+                   "None = every pair dynamical",
+    "far_pairs": "rule for pairs beyond pair_radius: 'first_order' (driven by the couplings, every pair "
+                 "counted) or 'drop' (set to zero)",
+}
+
+
+def option_help(level: Level, option: str) -> str:
+    """The one-line description of ``option`` of ``level`` (empty when neither the level nor the shared
+    table has one: a level of another package may not describe its options)."""
+    return getattr(level, "option_help", {}).get(option) or OPTION_HELP.get(option, "")
+
+
 class Level(ABC):
     """One level of description. Subclasses set the class attributes and implement two methods.
 
@@ -206,10 +237,18 @@ class Level(ABC):
     name: ClassVar[str]
     summary: ClassVar[str]
     options: ClassVar[dict[str, Any]] = {}
+    #: one line per option where the shared table (`OPTION_HELP`) does not say it or says it otherwise
+    option_help: ClassVar[dict[str, str]] = {}
     stochastic: ClassVar[bool] = False
     #: what to do when a run leaves the physical bounds (`beyondmf.physicality`): the end of that warning
     when_unphysical: ClassVar[str] = ("compare with an exact level ('exact' for N ≲ 9, 'jumps' for "
                                       "N ≲ 12–14) on a smaller cluster of the same density")
+
+    def memory_bytes(self, model: Model, options: dict[str, Any]) -> int | None:
+        """The most memory (bytes) a run of ``model`` at this level takes, the estimate the level checks
+        against the free memory before it allocates (``beyondmf run --dry-run`` prints it); None where the
+        level does not estimate it. ``options`` hold every option of the level (defaults filled in)."""
+        return None
 
     def check(self, model: Model) -> None:  # noqa: B027 - optional hook
         """Refuse, with a ValueError that says why, a model this level cannot treat."""

@@ -259,9 +259,16 @@ class Cumulant2(Level):
             raise OptionError("far_pairs", f"must be one of {', '.join(_near.FAR_RULES)}, got "
                               f"{options.get('far_pairs')!r}")
 
-    def _prepare(self, model: Model, probes: Probes, options):
+    def memory_bytes(self, model: Model, options) -> int:
+        radius = _radius_of(options, model)
+        if radius is not None:
+            return _near_bytes(model, radius, options["far_pairs"])
         # 2 coupling matrices, the state (5 N²) and ~7 solver stages of it, and ~20 N² temporaries
-        require(8 * model.n**2 * (2 + 5 * 9 + 20), f"cumulant2 for {model.n} emitters")
+        return 8 * model.n**2 * (2 + 5 * 9 + 20)
+
+    def _prepare(self, model: Model, probes: Probes, options):
+        need = self.memory_bytes(model, {**options, "pair_radius": None})
+        require(need, f"cumulant2 for {model.n} emitters")
         solver = pick_solver(options["solver"], 5 * model.n**2, model.stiffness())
         gamma = jnp.asarray(model.Gamma)
         return solver, cumulant2_args(model), (jnp.asarray(probes.weights), gamma)
@@ -355,6 +362,17 @@ def _radius_of(options, model: Model | None = None):
     return float(radius)
 
 
+def _near_bytes(model: Model, radius: float, far: str) -> int:
+    """Memory of the near-pair run: the neighbour-list state and its solver stages, the far-pair matrices,
+    the per-emitter K×K blocks, the dense moments and estimator temporaries at saved times."""
+    n = model.n
+    nbr, _, _ = _near.neighbours(model.positions, radius)
+    k = nbr.shape[1]
+    dense_obs = 8 * n**2 * (4 * 2 + 30 * 2)
+    far_mats = 8 * n**2 * 3 if far == "first_order" else 0
+    return 8 * n * _near.near_size(k) * 10 + far_mats + 8 * n * k * k * 4 + dense_obs
+
+
 def _near_run(model: Model, probes: Probes, options, times, initial) -> Moments:
     radius, far = _radius_of(options), options["far_pairs"]
     if model.complex_couplings:
@@ -364,12 +382,9 @@ def _near_run(model: Model, probes: Probes, options, times, initial) -> Moments:
         raise ValueError("cumulant2 with pair_radius needs a constant drive envelope (the far-pair rule of "
                          "the observables uses the drive at the saved times); use pair_radius=None")
     n = model.n
+    require(_near_bytes(model, radius, far), f"cumulant2 (pair_radius {radius:g}) for {n} emitters")
     nbr, mask, _ = _near.neighbours(model.positions, radius)
     k = nbr.shape[1]
-    dense_obs = 8 * n**2 * (4 * 2 + 30 * 2)  # dense moments and the estimator's temporaries at saved times
-    far_mats = 8 * n**2 * 3 if far == "first_order" else 0
-    require(8 * n * _near.near_size(k) * 10 + far_mats + 8 * n * k * k * 4 + dense_obs,
-            f"cumulant2 (pair_radius {radius:g}) for {n} emitters")
     args = _near.near_args(model, radius, far)
     solver = pick_solver(options["solver"], n * _near.near_size(k), model.stiffness())
     om = jnp.asarray(model.rabi_sites)

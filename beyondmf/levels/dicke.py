@@ -215,17 +215,23 @@ class Dicke(Level):
                 + ". Use level 'exact' (small N) or 'jumps' for this model"
             )
 
+    def memory_bytes(self, model: Model, options, band: bool = False) -> int:
+        """The full symmetric-space density matrix (the dynamics), or its band (a steady state of a
+        constant uniform drive, ``band``), with ~16 copies in the solver."""
+        size = 4 * (model.n + 1) if band else 2 * (model.n + 1) ** 2
+        return 8 * size * 16
+
     def _prepare(self, model: Model, probes: Probes, options, band: bool = False):
         n = model.n
         size = 4 * (n + 1) if band else 2 * (n + 1) ** 2
         what = "band" if band else "density matrix"
-        require(8.0 * size * 16, f"the symmetric-space {what} of {n} emitters")
+        require(self.memory_bytes(model, options, band), f"the symmetric-space {what} of {n} emitters")
         solver = options["solver"]
         if solver == "auto":
             # the ladder's fastest rate is ~N²/4 (mid-ladder), far above model.stiffness() = N/2
             # (the band form is O(N) per step: many explicit steps stay cheaper than an implicit solve)
             stiff = n * n / 4 > STIFF_RATIO and size <= IMPLICIT_MAX_SIZE and not band
-            solver = "kvaerno5" if stiff else "tsit5"
+            solver = "Kvaerno5" if stiff else "Tsit5"
         solver = pick_solver(solver, size, 0.0)
         a = jnp.asarray(_ladder(n))
         k = jnp.arange(n + 1, dtype=float)

@@ -193,6 +193,9 @@ class Exact(Level):
     summary = "full Lindblad density matrix (exact; small N: memory ~16·4^N·(6N + 12) bytes)"
     options = dict(ODE_OPTIONS)
 
+    def memory_bytes(self, model: Model, options) -> int:
+        return _memory(model.n)
+
     def _prepare(self, model: Model, probes: Probes, options):
         require(_memory(model.n), f"the exact density matrix of {model.n} emitters")
         solver = pick_solver(options["solver"], 2 * 4**model.n, model.stiffness())

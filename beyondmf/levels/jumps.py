@@ -186,6 +186,16 @@ class Jumps(Level):
             raise OptionError("settle_time",
                               f"must be a positive time (1/Γ0), got {options['settle_time']!r}")
 
+    def memory_bytes(self, model: Model, options) -> int:
+        """A chunk of trajectories with at most N jump channels each, and the effective Hamiltonian's
+        propagator; a chunk "auto" is at most 256 trajectories and the budget of `CHUNK_BYTES`."""
+        n, d = model.n, 2**model.n
+        per_traj = 16 * d * (8 + 3 * n + n * n + 2 * 2)  # two detectors' weights counted
+        chunk = options.get("chunk", "auto")
+        if chunk == "auto":
+            chunk = int(max(1, min(int(options.get("samples", 1000)), CHUNK_BYTES // per_traj, 256)))
+        return int(chunk) * per_traj + 16 * d * n
+
     def _setup(self, model: Model, probes: Probes, options):
         n, d = model.n, 2**model.n  # d an exact integer: the estimates below never overflow
         samples = int(options["samples"])

@@ -102,10 +102,12 @@ class MeanField(Level):
     summary = "product state of classical dipoles (one-body moments); exact for N = 1 and weak drive"
     options = dict(ODE_OPTIONS)
 
-    def _prepare(self, model: Model, probes: Probes, options):
+    def memory_bytes(self, model: Model, options) -> int:
         # beyond the model's own J and Γ: real/imag splits of complex ones, one N×N temporary per save
-        extra = 5 if model.complex_couplings else 1
-        require(8 * model.n**2 * extra, f"mean field for {model.n} emitters")
+        return 8 * model.n**2 * (5 if model.complex_couplings else 1)
+
+    def _prepare(self, model: Model, probes: Probes, options):
+        require(self.memory_bytes(model, options), f"mean field for {model.n} emitters")
         # "auto" is Tsit5: mean field's stiffness is the oscillation of J (docs/meanfield.md, Numerics)
         solver = pick_solver(options["solver"], 3 * model.n, model.stiffness(), implicit_ok=False)
         args = coupling_args(model)

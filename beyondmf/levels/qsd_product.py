@@ -188,6 +188,7 @@ class ProductStateDiffusion(SpinSampling):
     equations = SpinEquations(noise=_diffusion_noise, correction=_stratonovich_correction, project=_unit,
                               observe=_exchange_leak)
     initial_samples = staticmethod(sample_pure)
+    extra_matrices = 2
 
     def level_args(self, model, args: dict[str, Any]) -> dict[str, Any]:
         require(16 * model.n**2, f"the squared coupling matrices of 'qsd_product' for {model.n} emitters")

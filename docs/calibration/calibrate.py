@@ -5,7 +5,10 @@ docs/twa.md §9 and docs/qsd_product.md §4.
 
 GRID names a set of clusters (below). Each cluster is a uniform ball of 6 emitters at density n·λ0³ (seed
 given, minimum distance 0.08 λ0), optionally with emitter 1 moved to 0.078 λ0 from emitter 0 (a close pair),
-x-polarised dipoles, a resonant laser along z at Ω = 0.3, 1 and 3. Each level's steady state (seed 5 for the
+x-polarised dipoles, a resonant laser along z at Ω = 0.3, 1 and 3. The grid ``detuned``, drawn after the
+rules were set, has balls of 4 and 7 emitters at n·λ0³ = 0.1, 1 and 10 (seed 31, each with and without the
+close pair) under detuned drives (Ω, Δ) = (0.3, 1), (1, −1) and (5, 2).
+Each level's steady state (seed 5 for the
 sampled levels, their defaults otherwise) is compared with level "exact"; a run is *wrong* when the emission
 rate or an intensity (forward, side) is off by more than 5 % or a g2 (forward, all light) by more than 10 %,
 and *warned* when the level issued any warning about it. It prints one markdown table per level and the
@@ -38,6 +41,10 @@ GRIDS = {
     "meanfield-second": [(0.5, (21,), True), (4.0, (21, 22), True), (8.0, (21, 22), True)],
     "qsd-clusters": [(0.5, (11, 21), False), (2.0, (11, 12), False), (8.0, (11, 21), False)],
 }
+# A third set, drawn after the rules were set: 4 and 7 emitters, n·λ0³ from 0.1 to 10, detuned drives
+# (DETUNED_CASES) from weak to strong; (N, density, seeds, with a close-pair variant).
+DETUNED = {"detuned": [(n, d, (31,), True) for n in (4, 7) for d in (0.1, 1.0, 10.0)]}
+DETUNED_CASES = (("steady", 0.3, 1.0), ("steady", 1.0, -1.0), ("steady", 5.0, 2.0))  # (start, Ω, Δ)
 # Rings of N = 3–6 emitters in the xy plane, dipoles along z, nearest-neighbour distance d (λ0), the laser
 # along x in the plane (the forward detector along it, the side one along y): every emitter has two equally
 # strong partners, the three-emitter correlations a close pair alone does not have.
@@ -62,14 +69,16 @@ def clusters(grid: str):
         for d, n in RINGS[grid]:
             yield f"ring N={n} d={d:g}", "—", False, ring(n, d), (0, 0, 1), (1, 0, 0)
         return
-    for density, seeds, close in GRIDS[grid]:
-        radius = (6 / (4 / 3 * np.pi * density)) ** (1 / 3)
+    sets = DETUNED[grid] if grid in DETUNED else [(6, *entry) for entry in GRIDS[grid]]
+    for n, density, seeds, close in sets:
+        radius = (n / (4 / 3 * np.pi * density)) ** (1 / 3)
         for seed in seeds:
             for with_pair in (False, True) if close else (False,):
-                pos = bm.geometry.ellipsoid_cloud(6, radius, seed=seed, min_distance=0.08)
+                pos = bm.geometry.ellipsoid_cloud(n, radius, seed=seed, min_distance=0.08)
                 if with_pair:
                     pos[1] = pos[0] + np.array([0.06, 0.05, 0.0])
-                yield f"{density:g}", seed, with_pair, pos, (1, 0, 0), (0, 0, 1)
+                label = f"{density:g}" if grid not in DETUNED else f"N={n} {density:g}"
+                yield label, seed, with_pair, pos, (1, 0, 0), (0, 0, 1)
 
 
 def errors(ds, ex) -> dict[str, float]:
@@ -104,17 +113,22 @@ def wrong(err: dict[str, float]) -> bool:
 
 def main() -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("grid", choices=sorted(GRIDS) + sorted(RINGS))
+    p.add_argument("grid", choices=sorted(GRIDS) + sorted(RINGS) + sorted(DETUNED))
     p.add_argument("--levels", nargs="+", default=["meanfield", "cumulant2", "twa", "qsd_product"])
     p.add_argument("--dynamics", action="store_true", help="dynamics from the ground and the inverted state")
     a = p.parse_args()
-    cases = DYNAMICS if a.dynamics else tuple(("steady", r) for r in RABI)
+    if a.dynamics:
+        cases = tuple((start, r, 0.0) for start, r in DYNAMICS)
+    elif a.grid in DETUNED:
+        cases = DETUNED_CASES
+    else:
+        cases = tuple(("steady", r, 0.0) for r in RABI)
     rows = {lv: [] for lv in a.levels}
     counts = {lv: {} for lv in a.levels}
     for density, seed, pair, pos, dipole, laser in clusters(a.grid):
         detectors = {"forward": laser, "side": (0, 1, 0)}
-        for start, rabi in cases:
-            model = bm.Model(pos, dipole=dipole, rabi=rabi, detuning=0.0, laser=laser)
+        for start, rabi, detuning in cases:
+            model = bm.Model(pos, dipole=dipole, rabi=rabi, detuning=detuning, laser=laser)
 
             def run(level, model=model, start=start, detectors=detectors):
                 with warnings.catch_warnings():
@@ -128,26 +142,28 @@ def main() -> None:
                 try:
                     ds = run(lv)
                 except SolveError as fail:  # no steady state found where exact has one: wrong, not silent
-                    print(f"<!-- {lv} {density} {seed} {pair} {start} {rabi:g}: {fail} -->")
+                    print(f"<!-- {lv} {density} {seed} {pair} {start} {rabi:g} {detuning:g}: {fail} -->")
                     counts[lv][("raised", "wrong")] = counts[lv].get(("raised", "wrong"), 0) + 1
                     rows[lv].append(f"| {density} | {seed} | {'yes' if pair else 'no'} | "
                                     f"{model.coupling_norm():.2f} | {strongest_pair(model):.2f} | "
-                                    f"{strongest_triad(model):.2f} | {start} | {rabi:g} | "
+                                    f"{strongest_triad(model):.2f} | {start} | {rabi:g} | {detuning:g} | "
                                     f"no steady state found (SolveError) | wrong | raised |")
                     continue
                 err = errors(ds, ex) if start == "steady" else dynamic_errors(ds, ex)
                 verdict = "wrong" if wrong(err) else "right"
                 said = "warned" if ds.attrs["warnings"] else "silent"
                 if ds.attrs["warnings"]:
-                    print(f"<!-- {lv} {density} {seed} {pair} {start} {rabi:g}: {ds.attrs['warnings']} -->")
+                    print(f"<!-- {lv} {density} {seed} {pair} {start} {rabi:g} {detuning:g}: "
+                          f"{ds.attrs['warnings']} -->")
                 counts[lv][(said, verdict)] = counts[lv].get((said, verdict), 0) + 1
                 cells = " | ".join(f"{100 * v:+.1f}".replace("-", "−") for v in err.values())
                 rows[lv].append(f"| {density} | {seed} | {'yes' if pair else 'no'} | "
                                 f"{model.coupling_norm():.2f} | {strongest_pair(model):.2f} | "
-                                f"{strongest_triad(model):.2f} | {start} | {rabi:g} | {cells} | "
+                                f"{strongest_triad(model):.2f} | {start} | {rabi:g} | {detuning:g} | "
+                                f"{cells} | "
                                 f"{verdict} | {said} |")
     head = ("| n·λ0³ | seed | close pair | ‖iJ + ½Γ‖ (Γ0) | strongest pair (Γ0) | second partner (Γ0) "
-            "| from | Ω | " + " | ".join(f"{k} %" for k in err)
+            "| from | Ω | Δ | " + " | ".join(f"{k} %" for k in err)
             + " | verdict | warnings |")
     for lv in a.levels:
         print(f"\n### {lv} ({a.grid})\n\n{head}\n|{' --- |' * (head.count('|') - 1)}")
